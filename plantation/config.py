@@ -1,0 +1,115 @@
+"""Structured configuration: the schema behind the YAML files in ``configs/``.
+
+Hydra validates every YAML file against these dataclasses, so a misspelt key
+is an error rather than a silent default. Library code takes these typed
+objects (never a DictConfig); :func:`to_object` converts at the edge.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from typing import Any, TypeVar
+
+from omegaconf import MISSING, DictConfig, OmegaConf
+from omegaconf.errors import OmegaConfBaseException
+
+from plantation.errors import ConfigError
+
+T = TypeVar("T")
+
+
+@dataclass
+class ScalingRule:
+    """Reflectance = stored value × scale + offset, for dates from ``start`` on.
+
+    ``start`` is an ISO date (YYYY-MM-DD) or None for "from the first date".
+    Several rules describe processing changes, e.g. a fixed −0.1 offset added
+    by a new processing baseline from a given day.
+    """
+
+    start: str | None = None
+    scale: float = 1.0
+    offset: float = 0.0
+
+
+@dataclass
+class MaskConfig:
+    """Where the quality (QA) information of each date lives.
+
+    For a GeoTIFF folder, ``band`` is the 1-based band number of the QA band
+    inside every file (after the reflectance bands). For a cube, ``variable``
+    names a (time, y, x) integer variable. A pixel is invalid when any bit in
+    ``invalid_bits`` (0 = least significant) is set.
+    """
+
+    band: int | None = None
+    variable: str | None = None
+    invalid_bits: list[int] = field(default_factory=lambda: [0, 1, 2])
+
+
+@dataclass
+class TileConfig:
+    """One tile of a region: a folder of dated GeoTIFFs or one NetCDF/Zarr cube."""
+
+    name: str = MISSING
+    path: str = MISSING
+    #: Optional truth rasters (simulated regions only), used by benchmarks.
+    truth: str | None = None
+
+
+@dataclass
+class LabelsConfig:
+    """Reference points labelled by interpreters."""
+
+    path: str | None = None
+    #: CRS of the ``x``/``y`` columns of a CSV file (vector files carry their own).
+    crs: str | None = "EPSG:4326"
+
+
+@dataclass
+class RegionConfig:
+    """Everything the tool needs to know about one region's imagery."""
+
+    name: str = MISSING
+    #: ``geotiff_folder`` (one GeoTIFF per date, date in the file name) or ``cube``.
+    format: str = "geotiff_folder"
+    tiles: list[TileConfig] = field(default_factory=list)
+    #: Band roles in file order; indices need blue, red, nir, swir1, swir2.
+    bands: list[str] = field(default_factory=lambda: ["blue", "green", "red", "nir", "swir1", "swir2"])
+    #: Stored value meaning "no data"; None = take it from each file.
+    nodata: float | None = None
+    mask: MaskConfig = field(default_factory=MaskConfig)
+    scaling: list[ScalingRule] = field(default_factory=lambda: [ScalingRule()])
+    #: Name of the reflectance variable in a cube.
+    cube_variable: str = "reflectance"
+    labels: LabelsConfig = field(default_factory=LabelsConfig)
+    #: Spatial chunk (pixels) for lazy reading: bounds memory per task.
+    chunk: int = 512
+
+
+def register_configs() -> None:
+    """Register the schemas with Hydra's ConfigStore (call before composing)."""
+    from hydra.core.config_store import ConfigStore
+
+    from plantation.simulate import SimulationConfig
+
+    cs = ConfigStore.instance()
+    cs.store(group="region", name="region_schema", node=RegionConfig)
+    cs.store(group="sim", name="sim_schema", node=SimulationConfig)
+
+
+def to_object(cfg: Any, cls: type[T]) -> T:
+    """Turn a (possibly partial) DictConfig into a validated dataclass instance.
+
+    Raises:
+        ConfigError: a key is unknown, a value has the wrong type, or a
+            required value (``???``) is missing.
+    """
+    try:
+        merged = OmegaConf.merge(OmegaConf.structured(cls), cfg if isinstance(cfg, DictConfig) else OmegaConf.create(cfg))
+        obj = OmegaConf.to_object(merged)
+    except OmegaConfBaseException as exc:
+        raise ConfigError(f"{cls.__name__}: {str(exc).splitlines()[0]}") from exc
+    if not isinstance(obj, cls):
+        raise ConfigError(f"expected a {cls.__name__} configuration, got {type(obj).__name__}")
+    return obj

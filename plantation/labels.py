@@ -1,0 +1,222 @@
+"""Reference points labelled by interpreters, checked and placed on the imagery grid.
+
+Accepted files:
+
+* CSV with columns ``x``, ``y``, ``label``, ``onset_year`` (coordinates in the
+  CRS the region config names, EPSG:4326 by default: x = longitude,
+  y = latitude);
+* GeoPackage or GeoJSON points with attributes ``label`` and ``onset_year``
+  (their own CRS is used).
+
+Labels are one of :data:`LABEL_NAMES`. ``onset_year`` (the calendar year in
+which forest was cleared for the plantation) is required for ``conversion``,
+must lie inside the imagery's years, and is ignored for the other labels.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from pyproj import CRS, Transformer
+
+from plantation.errors import InputNotFoundError, LabelError
+from plantation.region import Grid
+
+#: Label names in code order (code = index + 1; 0 is reserved for "no data").
+LABEL_NAMES: tuple[str, ...] = ("stable_forest", "conversion", "old_plantation", "other")
+LABEL_CODES: dict[str, int] = {n: i + 1 for i, n in enumerate(LABEL_NAMES)}
+
+_VECTOR_SUFFIXES = (".gpkg", ".geojson", ".json")
+
+
+@dataclass
+class LabelSet:
+    """Validated reference points on the imagery grid.
+
+    Attributes:
+        points: one row per labelled pixel with columns ``label`` (str),
+            ``code`` (int, see :data:`LABEL_CODES`), ``onset_year`` (int,
+            0 unless ``label == "conversion"``), ``tile`` (tile name),
+            ``row``/``col`` (pixel indices in that tile), ``x``/``y``
+            (coordinates in the imagery CRS) and ``source`` (the file's line
+            or feature number, for messages).
+        fingerprint: SHA-256 of the sorted (tile, row, col, label, onset)
+            records: two label sets with the same content share it.
+        path: the file read.
+    """
+
+    points: pd.DataFrame
+    fingerprint: str
+    path: Path
+
+    def counts(self) -> dict[str, int]:
+        """Number of points per label (every label present, zeros included)."""
+        c = self.points["label"].value_counts()
+        return {n: int(c.get(n, 0)) for n in LABEL_NAMES}
+
+
+def _read_table(path: Path, csv_crs: str | None) -> tuple[pd.DataFrame, CRS, str]:
+    """Raw table with x, y, label, onset_year and the unit of its row numbers."""
+    if not path.exists():
+        raise InputNotFoundError(f"{path}: labels file does not exist")
+    suffix = path.suffix.lower()
+    if suffix == ".csv":
+        if csv_crs is None:
+            raise LabelError(f"{path}: no CRS for the x/y columns; set region.labels.crs (e.g. EPSG:4326)")
+        try:
+            table = pd.read_csv(path, dtype={"label": str})
+        except pd.errors.EmptyDataError:
+            raise LabelError(f"{path}: the labels file is empty") from None
+        except (pd.errors.ParserError, UnicodeDecodeError) as exc:
+            raise LabelError(f"{path}: cannot parse as CSV ({str(exc).splitlines()[0]})") from None
+        table.columns = [str(c).strip() for c in table.columns]
+        missing = [c for c in ("x", "y", "label", "onset_year") if c not in table.columns]
+        if missing:
+            raise LabelError(f"{path}: missing column(s) {missing}; expected x, y, label, onset_year")
+        # Line numbers as a text editor shows them: the header is line 1.
+        table["source"] = np.arange(len(table)) + 2
+        for col in ("x", "y"):
+            num = pd.to_numeric(table[col], errors="coerce")
+            bad = num.isna()
+            if bad.any():
+                line = int(table.loc[bad, "source"].iloc[0])
+                raise LabelError(f"{path}: line {line}: {col} {table.loc[bad, col].iloc[0]!r} is not a number")
+            table[col] = num.astype(float)
+        try:
+            crs = CRS.from_user_input(csv_crs)
+        except Exception:
+            raise LabelError(f"{path}: region.labels.crs {csv_crs!r} is not a CRS pyproj knows") from None
+        return table, crs, "line"
+    if suffix in _VECTOR_SUFFIXES:
+        import pyogrio
+        import shapely
+
+        try:
+            meta, _, geom, fields = pyogrio.raw.read(path)
+        except Exception as exc:  # pyogrio raises several error types for unreadable files
+            raise LabelError(f"{path}: cannot read as a vector file ({str(exc).splitlines()[0]})") from None
+        if meta["crs"] is None:
+            raise LabelError(f"{path}: the file has no CRS; assign one when exporting it")
+        names = list(meta["fields"])
+        missing = [c for c in ("label", "onset_year") if c not in names]
+        if missing:
+            raise LabelError(f"{path}: missing attribute(s) {missing}; expected label, onset_year")
+        pts = shapely.from_wkb(geom)
+        kinds = shapely.get_type_id(pts)
+        if len(pts) and (kinds != shapely.GeometryType.POINT).any():
+            i = int(np.flatnonzero(kinds != shapely.GeometryType.POINT)[0])
+            raise LabelError(f"{path}: feature {i + 1}: geometry is not a point")
+        table = pd.DataFrame(
+            {
+                "x": shapely.get_x(pts),
+                "y": shapely.get_y(pts),
+                "label": fields[names.index("label")],
+                "onset_year": fields[names.index("onset_year")],
+                "source": np.arange(len(pts)) + 1,
+            }
+        )
+        return table, CRS.from_user_input(meta["crs"]), "feature"
+    raise LabelError(f"{path}: unsupported labels format {suffix!r}; use .csv, .gpkg or .geojson")
+
+
+def read_labels(path: str | Path, *, grids: dict[str, Grid], years: Sequence[int], csv_crs: str | None = "EPSG:4326") -> LabelSet:
+    """Read, check and place reference points on the imagery.
+
+    Args:
+        path: CSV, GeoPackage or GeoJSON file.
+        grids: tile name → grid; every point must fall inside one tile.
+        years: the calendar years the imagery covers; conversion onsets must
+            lie among them.
+        csv_crs: CRS of a CSV's x/y columns.
+
+    Returns:
+        A :class:`LabelSet`. Points repeated with identical values are kept once.
+
+    Raises:
+        LabelError: empty file, missing columns, unknown label, missing or
+            out-of-range onset year, no CRS, a point outside every tile, or
+            the same pixel labelled twice with different values. The message
+            names the file and line (CSV) or feature (vector) number.
+    """
+    path = Path(path)
+    table, crs, unit = _read_table(path, csv_crs)
+    if table.empty:
+        raise LabelError(f"{path}: the labels file has no rows")
+
+    labels = table["label"].astype(str).str.strip()
+    unknown = ~labels.isin(LABEL_NAMES)
+    if unknown.any():
+        i = int(np.flatnonzero(unknown.to_numpy())[0])
+        raise LabelError(f"{path}: {unit} {table['source'].iloc[i]}: unknown label {labels.iloc[i]!r}; expected one of {list(LABEL_NAMES)}")
+    onset = pd.to_numeric(table["onset_year"], errors="coerce")
+    conv = (labels == "conversion").to_numpy()
+    lo, hi = int(min(years)), int(max(years))
+    bad_missing = conv & onset.isna().to_numpy()
+    if bad_missing.any():
+        i = int(np.flatnonzero(bad_missing)[0])
+        raise LabelError(f"{path}: {unit} {table['source'].iloc[i]}: conversion needs an onset_year (got {table['onset_year'].iloc[i]!r})")
+    ov = onset.to_numpy()
+    bad_range = conv & ((ov < lo) | (ov > hi) | (ov != np.round(ov)))
+    if bad_range.any():
+        i = int(np.flatnonzero(bad_range)[0])
+        raise LabelError(f"{path}: {unit} {table['source'].iloc[i]}: onset_year {table['onset_year'].iloc[i]!r} is outside the imagery's years {lo}–{hi}")
+
+    # Reproject to the imagery CRS (all tiles share one CRS) and find each point's tile.
+    first = next(iter(grids.values()))
+    to_img = Transformer.from_crs(crs, CRS.from_user_input(first.crs.to_wkt()), always_xy=True)
+    xs, ys = to_img.transform(table["x"].to_numpy(), table["y"].to_numpy())
+    xs, ys = np.asarray(xs, dtype=float), np.asarray(ys, dtype=float)
+    tile = np.full(len(table), "", dtype=object)
+    rows = np.full(len(table), -1, dtype=np.int64)
+    cols = np.full(len(table), -1, dtype=np.int64)
+    for name, g in grids.items():
+        inv = ~g.transform
+        c, r = inv * (xs, ys)
+        r, c = np.floor(r).astype(np.int64), np.floor(c).astype(np.int64)
+        inside = (r >= 0) & (r < g.height) & (c >= 0) & (c < g.width) & (tile == "")
+        tile[inside], rows[inside], cols[inside] = name, r[inside], c[inside]
+    outside = tile == ""
+    if outside.any():
+        i = int(np.flatnonzero(outside)[0])
+        raise LabelError(
+            f"{path}: {unit} {table['source'].iloc[i]}: point ({table['x'].iloc[i]}, {table['y'].iloc[i]}) in {crs.to_string()} "
+            f"is outside the imagery ({int(outside.sum())} point(s) outside); check the coordinates' CRS"
+        )
+
+    points = pd.DataFrame(
+        {
+            "label": labels.to_numpy(),
+            "code": labels.map(LABEL_CODES).to_numpy(dtype=np.uint8),
+            "onset_year": np.where(conv, np.nan_to_num(ov), 0).astype(np.int16),
+            "tile": tile.astype(str),
+            "row": rows,
+            "col": cols,
+            "x": xs,
+            "y": ys,
+            "source": table["source"].to_numpy(),
+        }
+    )
+    key = ["tile", "row", "col"]
+    dup = points.duplicated(key, keep=False)
+    if dup.any():
+        clash = points[dup].groupby(key)[["label", "onset_year"]].nunique().max(axis=1) > 1
+        if clash.any():
+            t, r, c = clash[clash].index[0]
+            at = points[(points.tile == t) & (points.row == r) & (points.col == c)]
+            srcs = ", ".join(str(s) for s in at["source"])
+            vals = ", ".join(f"{lab}/{yr}" for lab, yr in zip(at["label"], at["onset_year"], strict=True))
+            raise LabelError(f"{path}: {unit}s {srcs} label the same pixel (tile {t}, row {r}, col {c}) differently: {vals}")
+        points = points.drop_duplicates(key, keep="first").reset_index(drop=True)
+    return LabelSet(points=points, fingerprint=fingerprint(points), path=path)
+
+
+def fingerprint(points: pd.DataFrame) -> str:
+    """SHA-256 over the sorted (tile, row, col, label, onset_year) records."""
+    rec = points[["tile", "row", "col", "label", "onset_year"]].sort_values(["tile", "row", "col"])
+    text = rec.to_csv(index=False, lineterminator="\n")
+    return hashlib.sha256(text.encode()).hexdigest()

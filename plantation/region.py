@@ -1,0 +1,341 @@
+"""Read a region's multi-date imagery lazily into xarray.
+
+A region is a list of tiles. Each tile is either
+
+* a folder of GeoTIFFs, one per acquisition or composite, with the date as
+  ``YYYY-MM-DD`` somewhere in the file name, all on one grid, bands in the
+  order the region config lists them (plus an optional QA band), or
+* a NetCDF (``.nc``) or Zarr (``.zarr``) cube with a variable of dims
+  ``(time, band, y, x)`` and a CF grid mapping that gives its CRS.
+
+Nothing is read at open time but file headers: values come as dask arrays
+chunked in space, so a tile larger than memory is processed window by window.
+Stored integers become reflectance (unitless, float32) through the region's
+:class:`~plantation.config.ScalingRule` list, resolved per date.
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Sequence
+from dataclasses import dataclass
+from datetime import date
+from pathlib import Path
+
+import numpy as np
+import rasterio
+import xarray as xr
+from affine import Affine
+from rasterio.crs import CRS
+
+from plantation.config import RegionConfig, ScalingRule, TileConfig
+from plantation.errors import ConfigError, InputNotFoundError, RegionError
+
+_DATE = re.compile(r"(\d{4})-(\d{2})-(\d{2})")
+_RASTER_SUFFIXES = (".tif", ".tiff")
+
+
+@dataclass(frozen=True)
+class Grid:
+    """A raster grid: CRS, affine transform (pixel corner → CRS units) and shape."""
+
+    crs: CRS
+    transform: Affine
+    height: int
+    width: int
+
+    @property
+    def bounds(self) -> tuple[float, float, float, float]:
+        """(left, bottom, right, top) in CRS units."""
+        west, south, east, north = rasterio.transform.array_bounds(self.height, self.width, self.transform)
+        return (west, south, east, north)
+
+    @property
+    def pixel_area_m2(self) -> float:
+        """Area of one pixel in m² for a projected CRS in metres.
+
+        Raises:
+            RegionError: the CRS is geographic (areas then vary by latitude;
+                compute them geodesically instead).
+        """
+        if not self.crs.is_projected:
+            raise RegionError(f"grid CRS {self.crs.to_string()} is geographic; pixel area is not constant")
+        factor = self.crs.linear_units_factor[1]
+        return abs(self.transform.a * self.transform.e - self.transform.b * self.transform.d) * factor**2
+
+    def same_as(self, other: Grid) -> bool:
+        return (
+            self.crs == other.crs
+            and self.height == other.height
+            and self.width == other.width
+            and self.transform.almost_equals(other.transform)
+        )
+
+    def describe(self) -> str:
+        return f"{self.width}x{self.height} px, {self.crs.to_string()}, origin ({self.transform.c:g}, {self.transform.f:g}), pixel {self.transform.a:g}"
+
+
+@dataclass
+class TileStack:
+    """One tile's imagery, lazily loaded.
+
+    Attributes:
+        name: tile name from the region config.
+        reflectance: float32 DataArray, dims (time, band, y, x), unitless
+            surface reflectance; NaN where ``valid`` is False.
+        valid: bool DataArray, dims (time, y, x): True where every band has
+            data and no QA bit in ``invalid_bits`` is set.
+        grid: the tile's grid (same for every date).
+    """
+
+    name: str
+    reflectance: xr.DataArray
+    valid: xr.DataArray
+    grid: Grid
+
+    @property
+    def dates(self) -> np.ndarray:
+        """Acquisition dates as ``datetime64[D]``, ascending."""
+        return np.asarray(self.reflectance["time"].values, dtype="datetime64[D]")
+
+    @property
+    def years(self) -> np.ndarray:
+        """Distinct calendar years covered, ascending."""
+        return np.unique(self.dates.astype("datetime64[Y]").astype(int) + 1970)
+
+
+def parse_date_from_name(path: Path) -> date:
+    """The ``YYYY-MM-DD`` date in a file name.
+
+    Raises:
+        RegionError: no such pattern, or it is not a calendar date.
+    """
+    m = _DATE.search(path.name)
+    if m is None:
+        raise RegionError(f"{path}: no date YYYY-MM-DD in the file name")
+    try:
+        return date(int(m[1]), int(m[2]), int(m[3]))
+    except ValueError as exc:
+        raise RegionError(f"{path}: cannot parse date {m[0]!r} in the file name ({exc})") from None
+
+
+def scaling_for_dates(dates: Sequence[date] | np.ndarray, rules: Sequence[ScalingRule]) -> tuple[np.ndarray, np.ndarray]:
+    """Scale and offset that apply on each date.
+
+    The rule with the latest ``start`` on or before a date wins; a rule with
+    ``start=None`` applies from the beginning.
+
+    Returns:
+        (scale, offset), float64 arrays of len(dates).
+
+    Raises:
+        ConfigError: no rule covers some date, or a start date is malformed
+            or repeated.
+    """
+    if not rules:
+        raise ConfigError("region.scaling: at least one rule is needed")
+    starts: list[np.datetime64] = []
+    for i, r in enumerate(rules):
+        if r.start is None:
+            starts.append(np.datetime64("0001-01-01"))
+            continue
+        try:
+            starts.append(np.datetime64(date.fromisoformat(str(r.start)), "D"))
+        except ValueError:
+            raise ConfigError(f"region.scaling[{i}].start: {r.start!r} is not a date YYYY-MM-DD") from None
+    order = np.argsort(np.array(starts))
+    sorted_starts = np.array(starts)[order]
+    if len(np.unique(sorted_starts)) != len(sorted_starts):
+        raise ConfigError("region.scaling: two rules start on the same date")
+    d = np.asarray(dates, dtype="datetime64[D]")
+    pos = np.searchsorted(sorted_starts, d, side="right") - 1
+    if (pos < 0).any():
+        first = d[pos < 0][0]
+        raise ConfigError(f"region.scaling: no rule covers {first}; add a rule with start: null")
+    picked = order[pos]
+    scale = np.array([rules[i].scale for i in picked], dtype=np.float64)
+    offset = np.array([rules[i].offset for i in picked], dtype=np.float64)
+    return scale, offset
+
+
+def qa_invalid(qa: xr.DataArray, bits: Sequence[int]) -> xr.DataArray:
+    """True where any of ``bits`` is set in an integer QA array."""
+    mask = 0
+    for b in bits:
+        if not 0 <= int(b) < 32:
+            raise ConfigError(f"region.mask.invalid_bits: bit {b} is outside 0..31")
+        mask |= 1 << int(b)
+    return (qa.astype(np.int64) & mask) != 0
+
+
+def _grid_of(src: rasterio.io.DatasetReader, path: Path) -> Grid:
+    if src.crs is None:
+        raise RegionError(f"{path}: the file has no CRS; assign one (e.g. gdal_edit.py -a_srs EPSG:XXXX)")
+    return Grid(src.crs, src.transform, src.height, src.width)
+
+
+def _finish(name: str, raw: xr.DataArray, invalid: xr.DataArray, dates: list[date], region: RegionConfig, grid: Grid) -> TileStack:
+    """Apply scaling, NaN out invalid pixels, attach coordinates and CRS."""
+    scale, offset = scaling_for_dates(dates, region.scaling)
+    times = np.array(dates, dtype="datetime64[ns]")
+    raw = raw.assign_coords(time=times, band=list(region.bands))
+    invalid = invalid.assign_coords(time=times)
+    s = xr.DataArray(scale.astype(np.float32), dims="time", coords={"time": times})
+    o = xr.DataArray(offset.astype(np.float32), dims="time", coords={"time": times})
+    # Convert once to float32: the loaders would otherwise widen to float64.
+    refl = raw.astype(np.float32) * s + o
+    valid = ~invalid
+    refl = refl.where(valid)
+    refl.name = "reflectance"
+    valid.name = "valid"
+    for arr in (refl, valid):
+        arr.attrs.update(crs=grid.crs.to_string(), transform=tuple(grid.transform)[:6])
+    refl.attrs["units"] = "1"
+    return TileStack(name=name, reflectance=refl, valid=valid, grid=grid)
+
+
+def _open_geotiff_folder(tile: TileConfig, region: RegionConfig) -> TileStack:
+    import rioxarray  # noqa: F401  (registers the engine used by open_rasterio)
+
+    folder = Path(tile.path)
+    if not folder.is_dir():
+        raise InputNotFoundError(f"{folder}: tile {tile.name!r} folder does not exist")
+    files = sorted(p for p in folder.iterdir() if p.suffix.lower() in _RASTER_SUFFIXES)
+    if not files:
+        raise RegionError(f"{folder}: no GeoTIFF files (*.tif) in the tile folder")
+    by_date: dict[date, Path] = {}
+    for f in files:
+        d = parse_date_from_name(f)
+        if d in by_date:
+            raise RegionError(f"{f}: date {d} repeats (also in {by_date[d].name}); keep one file per date")
+        by_date[d] = f
+    n_refl = len(region.bands)
+    qa_band = region.mask.band
+    if qa_band is not None and qa_band != n_refl + 1:
+        raise ConfigError(f"region.mask.band: {qa_band} must follow the {n_refl} reflectance bands (band {n_refl + 1})")
+    expected = n_refl + (1 if qa_band else 0)
+    dates = sorted(by_date)
+    grid: Grid | None = None
+    nodatas: list[float | None] = []
+    first = by_date[dates[0]]
+    for d in dates:
+        f = by_date[d]
+        try:
+            with rasterio.open(f) as src:
+                g = _grid_of(src, f)
+                if src.count != expected:
+                    roles = ", ".join(region.bands) + (" + QA" if qa_band else "")
+                    raise RegionError(f"{f}: has {src.count} bands, the region config expects {expected} ({roles})")
+                nodatas.append(src.nodata)
+        except rasterio.errors.RasterioIOError as exc:
+            raise RegionError(f"{f}: cannot read as a raster ({exc})") from None
+        if grid is None:
+            grid = g
+        elif not g.same_as(grid):
+            raise RegionError(f"{f}: grid {g.describe()} differs from {first.name}'s {grid.describe()}")
+    if grid is None:  # unreachable: files is non-empty
+        raise RegionError(f"{folder}: no readable GeoTIFF")
+    chunks = {"band": -1, "y": region.chunk, "x": region.chunk}
+    arrays = [rioxarray.open_rasterio(by_date[d], chunks=chunks, lock=False, cache=False) for d in dates]
+    cube = xr.concat([a.drop_vars("spatial_ref", errors="ignore") for a in arrays], dim="time", join="override")
+    raw = cube.isel(band=slice(0, n_refl))
+    nodata = region.nodata if region.nodata is not None else nodatas[0]
+    invalid = xr.zeros_like(raw.isel(band=0), dtype=bool)
+    if nodata is not None:
+        invalid = (raw == nodata).any("band")
+    if np.issubdtype(raw.dtype, np.floating):
+        invalid = invalid | raw.isnull().any("band")
+    if qa_band:
+        invalid = invalid | qa_invalid(cube.isel(band=qa_band - 1), region.mask.invalid_bits)
+    invalid = invalid.drop_vars("band", errors="ignore")
+    return _finish(tile.name, raw.drop_vars("band"), invalid, dates, region, grid)
+
+
+def _open_cube(tile: TileConfig, region: RegionConfig) -> TileStack:
+    import rioxarray  # noqa: F401  (adds .rio to xarray objects)
+
+    path = Path(tile.path)
+    if not path.exists():
+        raise InputNotFoundError(f"{path}: tile {tile.name!r} cube does not exist")
+    chunks = {"y": region.chunk, "x": region.chunk}
+    try:
+        if path.suffix == ".zarr" or path.is_dir():
+            ds = xr.open_zarr(path, chunks=chunks, decode_coords="all")
+        else:
+            ds = xr.open_dataset(path, chunks=chunks, decode_coords="all")
+    except (OSError, ValueError) as exc:
+        raise RegionError(f"{path}: cannot open as NetCDF or Zarr ({exc})") from None
+    var = region.cube_variable
+    if var not in ds:
+        raise RegionError(f"{path}: no variable {var!r}; it has {sorted(map(str, ds.data_vars))} (set region.cube_variable)")
+    da = ds[var]
+    if tuple(da.dims) != ("time", "band", "y", "x"):
+        raise RegionError(f"{path}: variable {var!r} has dims {tuple(da.dims)}; expected ('time', 'band', 'y', 'x'), use transpose")
+    if da.sizes["band"] != len(region.bands):
+        raise RegionError(f"{path}: has {da.sizes['band']} bands, the region config expects {len(region.bands)} ({', '.join(region.bands)})")
+    if da["band"].dtype.kind in "US":
+        names = [str(b) for b in da["band"].values]
+        missing = [b for b in region.bands if b not in names]
+        if missing:
+            raise RegionError(f"{path}: band(s) {missing} are not in the cube's bands {names}")
+        da = da.sel(band=list(region.bands))
+    crs = da.rio.crs or ds.rio.crs
+    if crs is None:
+        raise RegionError(f"{path}: the cube has no CRS (write one with rioxarray's .rio.write_crs)")
+    grid = Grid(CRS.from_user_input(crs), da.rio.transform(recalc=True), da.sizes["y"], da.sizes["x"])
+    times = da["time"].values.astype("datetime64[D]")
+    uniq, counts = np.unique(times, return_counts=True)
+    if (counts > 1).any():
+        raise RegionError(f"{path}: date {uniq[counts > 1][0]} repeats on the time axis")
+    if (np.diff(times.astype(np.int64)) < 0).any():
+        da = da.sortby("time")
+        times = da["time"].values.astype("datetime64[D]")
+    dates = [date.fromisoformat(str(t)) for t in times]
+    nodata = region.nodata if region.nodata is not None else da.rio.nodata
+    invalid = da.isnull().any("band") if np.issubdtype(da.dtype, np.floating) else xr.zeros_like(da.isel(band=0), dtype=bool)
+    if nodata is not None:
+        invalid = invalid | (da == nodata).any("band")
+    if region.mask.variable:
+        if region.mask.variable not in ds:
+            raise RegionError(f"{path}: no QA variable {region.mask.variable!r}")
+        invalid = invalid | qa_invalid(ds[region.mask.variable].sortby("time"), region.mask.invalid_bits)
+    keep = ["time", "y", "x"]
+    invalid = invalid.drop_vars([c for c in invalid.coords if c not in keep])
+    raw = da.drop_vars([c for c in da.coords if c not in keep])
+    return _finish(tile.name, raw, invalid, dates, region, grid)
+
+
+def open_tile(tile: TileConfig, region: RegionConfig) -> TileStack:
+    """Open one tile lazily. See the module docstring for the layouts.
+
+    Raises:
+        InputNotFoundError: the tile's path does not exist.
+        RegionError: files disagree (grid, band count, dates) or lack a CRS.
+        ConfigError: the region config is inconsistent.
+    """
+    if region.format == "geotiff_folder":
+        return _open_geotiff_folder(tile, region)
+    if region.format == "cube":
+        return _open_cube(tile, region)
+    raise ConfigError(f"region.format: {region.format!r} is not one of ['geotiff_folder', 'cube']")
+
+
+def open_region(region: RegionConfig) -> list[TileStack]:
+    """Open every tile of a region. Tiles must share CRS and dates.
+
+    Raises:
+        RegionError: a tile's CRS or dates differ from the first tile's.
+    """
+    if not region.tiles:
+        raise ConfigError(f"region {region.name!r}: no tiles listed")
+    names = [t.name for t in region.tiles]
+    if len(set(names)) != len(names):
+        raise ConfigError(f"region {region.name!r}: tile names repeat: {names}")
+    stacks = [open_tile(t, region) for t in region.tiles]
+    ref = stacks[0]
+    for s, t in zip(stacks[1:], region.tiles[1:], strict=True):
+        if s.grid.crs != ref.grid.crs:
+            raise RegionError(f"{t.path}: CRS {s.grid.crs.to_string()} differs from tile {ref.name!r}'s {ref.grid.crs.to_string()}")
+        if not np.array_equal(s.dates, ref.dates):
+            raise RegionError(f"{t.path}: dates differ from tile {ref.name!r}'s; all tiles need the same dates")
+    return stacks

@@ -1,0 +1,22 @@
+"""Simulate a region: `python scripts/simulate.py [sim=toy] [out=toy_tiles]`."""
+
+import hydra
+from omegaconf import DictConfig
+
+from plantation.cli import guarded
+from plantation.config import register_configs, to_object
+
+register_configs()
+
+
+@hydra.main(version_base="1.3", config_path="../configs", config_name="simulate")
+@guarded
+def main(cfg: DictConfig) -> None:
+    from plantation.simulate import SimulationConfig, write_region
+
+    out = write_region(to_object(cfg.sim, SimulationConfig), cfg.out, progress=cfg.progress)
+    print(f"simulated region written to {out}/")
+
+
+if __name__ == "__main__":
+    main()
