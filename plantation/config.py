@@ -106,10 +106,14 @@ def to_object(cfg: Any, cls: type[T]) -> T:
             required value (``???``) is missing.
     """
     try:
-        merged = OmegaConf.merge(OmegaConf.structured(cls), cfg if isinstance(cfg, DictConfig) else OmegaConf.create(cfg))
+        # Merge from plain containers: a key forced in with ``+key=`` is then
+        # checked against the schema like any other.
+        src = OmegaConf.to_container(cfg, resolve=True) if isinstance(cfg, DictConfig) else cfg
+        merged = OmegaConf.merge(OmegaConf.structured(cls), src)
         obj = OmegaConf.to_object(merged)
     except OmegaConfBaseException as exc:
-        raise ConfigError(f"{cls.__name__}: {str(exc).splitlines()[0]}") from exc
+        key = getattr(exc, "full_key", None)
+        raise ConfigError(f"{cls.__name__}: {key + ': ' if key else ''}{str(exc).splitlines()[0]}") from exc
     if not isinstance(obj, cls):
         raise ConfigError(f"expected a {cls.__name__} configuration, got {type(obj).__name__}")
     return obj

@@ -159,12 +159,12 @@ def read_labels(path: str | Path, *, grids: dict[str, Grid], years: Sequence[int
     bad_missing = conv & onset.isna().to_numpy()
     if bad_missing.any():
         i = int(np.flatnonzero(bad_missing)[0])
-        raise LabelError(f"{path}: {unit} {table['source'].iloc[i]}: conversion needs an onset_year (got {table['onset_year'].iloc[i]!r})")
+        raise LabelError(f"{path}: {unit} {table['source'].iloc[i]}: conversion needs an onset_year (the field is empty or not a number)")
     ov = onset.to_numpy()
     bad_range = conv & ((ov < lo) | (ov > hi) | (ov != np.round(ov)))
     if bad_range.any():
         i = int(np.flatnonzero(bad_range)[0])
-        raise LabelError(f"{path}: {unit} {table['source'].iloc[i]}: onset_year {table['onset_year'].iloc[i]!r} is outside the imagery's years {lo}–{hi}")
+        raise LabelError(f"{path}: {unit} {table['source'].iloc[i]}: onset_year {table['onset_year'].iloc[i]} is outside the imagery's years {lo}–{hi}")
 
     # Reproject to the imagery CRS (all tiles share one CRS) and find each point's tile.
     first = next(iter(grids.values()))

@@ -1,0 +1,56 @@
+"""Every config composes against its schema; typos are errors, not silent defaults."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+from hydra import compose, initialize_config_dir
+from hydra.errors import ConfigCompositionException
+
+from plantation.config import RegionConfig, register_configs, to_object
+from plantation.errors import ConfigError
+from plantation.simulate import SimulationConfig, check_config
+from plantation.survey import SurveyConfig
+
+CONFIGS = Path(__file__).resolve().parents[1] / "configs"
+register_configs()
+
+
+def _compose(name: str, overrides: list[str] | None = None):
+    with initialize_config_dir(config_dir=str(CONFIGS), version_base="1.3"):
+        return compose(config_name=name, overrides=overrides or [])
+
+
+@pytest.mark.parametrize("region", sorted(p.stem for p in (CONFIGS / "region").glob("*.yaml")))
+def test_every_region_config_composes(region):
+    cfg = to_object(_compose("survey", [f"region={region}"]), SurveyConfig)
+    assert isinstance(cfg.region, RegionConfig) and cfg.region.tiles
+
+
+@pytest.mark.parametrize("sim", sorted(p.stem for p in (CONFIGS / "sim").glob("*.yaml")))
+def test_every_sim_config_composes_and_checks(sim):
+    cfg = to_object(_compose("simulate", [f"sim={sim}"]).sim, SimulationConfig)
+    check_config(cfg)
+
+
+def test_typo_in_override_is_an_error():
+    with pytest.raises(ConfigCompositionException, match="Could not override 'region.nodat'"):
+        _compose("survey", ["region.nodat=0"])
+    # A key forced in with + is caught when the config becomes typed.
+    with pytest.raises(ConfigError, match="nodat"):
+        to_object(_compose("survey", ["+region.nodat=0"]), SurveyConfig)
+
+
+def test_wrong_type_is_an_error():
+    with pytest.raises(ConfigCompositionException, match="region.chunk"):
+        _compose("survey", ["region.chunk=big"])
+    with pytest.raises(ConfigError, match="chunk"):
+        to_object({"name": "x", "chunk": "big"}, RegionConfig)
+
+
+def test_sim_config_checks():
+    with pytest.raises(ConfigError, match="cloud_share_by_month needs 12 values"):
+        check_config(SimulationConfig(cloud_share_by_month=[0.5] * 11))
+    with pytest.raises(ConfigError, match="label_shares: unknown label"):
+        check_config(SimulationConfig(label_shares={"forest": 1.0}))

@@ -1,0 +1,186 @@
+"""The region reader on tiny stacks with known values, and every bad imagery input."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import pytest
+import rasterio
+import rioxarray  # noqa: F401
+import xarray as xr
+from affine import Affine
+
+from plantation.config import MaskConfig, RegionConfig, ScalingRule, TileConfig
+from plantation.errors import ConfigError, InputNotFoundError, RegionError
+from plantation.region import open_region, open_tile, scaling_for_dates
+from tests.conftest import BANDS, CRS, DATES, TRANSFORM, write_stack
+
+
+def test_reads_dims_scaling_and_grid(make_region, tiny_values):
+    region = make_region()
+    st = open_tile(region.tiles[0], region)
+    assert st.reflectance.dims == ("time", "band", "y", "x")
+    assert st.reflectance.shape == (5, 6, 8, 8)
+    assert st.reflectance.dtype == np.float32
+    assert st.reflectance.chunks is not None, "reading must be lazy (dask)"
+    assert list(st.reflectance["band"].values) == BANDS
+    np.testing.assert_allclose(st.reflectance.values, tiny_values * 1e-4, rtol=1e-6)
+    assert st.grid.crs.to_epsg() == 32650
+    assert st.grid.transform == TRANSFORM
+    assert st.grid.pixel_area_m2 == pytest.approx(900.0)  # 30 m pixel = 0.09 ha (common practice)
+    assert [str(d) for d in st.dates] == DATES
+    assert st.years.tolist() == [2015, 2016, 2017]
+
+
+def test_valid_mask_from_qa_bits_and_nodata(make_region, tiny_values):
+    qa = np.zeros((5, 8, 8), np.int16)
+    qa[1, 2, 3] = 1  # cloud
+    qa[2, 4, 4] = 2  # shadow
+    qa[3, 0, 0] = 8  # bit 3: not among invalid bits -> still valid
+    vals = tiny_values.copy()
+    vals[4, 3, 5, 6] = -9999  # one band at nodata invalidates the pixel
+    st = open_tile((r := make_region(values=vals, qa=qa)).tiles[0], r)
+    valid = st.valid.values
+    assert valid.sum() == 5 * 64 - 3
+    assert not valid[1, 2, 3] and not valid[2, 4, 4] and not valid[4, 5, 6]
+    assert valid[3, 0, 0]
+    assert np.isnan(st.reflectance.values[1, :, 2, 3]).all()
+    assert np.isfinite(st.reflectance.values[3, :, 0, 0]).all()
+
+
+def test_scaling_rules_remove_a_processing_offset(make_region, tiny_values):
+    vals = tiny_values.copy()
+    vals[2:] += 1000  # a new processing baseline from 2016-02-14 adds 1000
+    rules = [ScalingRule(start=None, scale=1e-4, offset=0.0), ScalingRule(start="2016-01-01", scale=1e-4, offset=-0.1)]
+    region = make_region(values=vals, scaling=rules)
+    st = open_tile(region.tiles[0], region)
+    np.testing.assert_allclose(st.reflectance.values, tiny_values * 1e-4, atol=1e-6)
+
+
+def test_scaling_for_dates_latest_rule_wins():
+    rules = [ScalingRule("2020-01-01", 2.0, 0.5), ScalingRule(None, 1.0, 0.0), ScalingRule("2018-06-01", 3.0, 0.1)]
+    scale, offset = scaling_for_dates(np.array(["2017-01-01", "2018-06-01", "2019-12-31", "2020-01-01"], dtype="datetime64[D]"), rules)
+    assert scale.tolist() == [1.0, 3.0, 3.0, 2.0]
+    assert offset.tolist() == [0.0, 0.1, 0.1, 0.5]
+    with pytest.raises(ConfigError, match="no rule covers 2017-01-01"):
+        scaling_for_dates(np.array(["2017-01-01"], dtype="datetime64[D]"), [ScalingRule("2018-01-01", 1.0, 0.0)])
+    with pytest.raises(ConfigError, match="not a date"):
+        scaling_for_dates(np.array(["2017-01-01"], dtype="datetime64[D]"), [ScalingRule("2018-13-01", 1.0, 0.0)])
+
+
+def test_cube_netcdf_and_zarr_match_geotiff_folder(make_region, tiny_values, tmp_path):
+    region = make_region()
+    ref = open_tile(region.tiles[0], region)
+    ys = TRANSFORM.f + TRANSFORM.e * (np.arange(8) + 0.5)
+    xs = TRANSFORM.c + TRANSFORM.a * (np.arange(8) + 0.5)
+    da = xr.DataArray(
+        tiny_values[:, ::-1].copy(),  # bands stored in reverse: the reader must reorder by name
+        dims=("time", "band", "y", "x"),
+        coords={"time": np.array(DATES, dtype="datetime64[ns]"), "band": BANDS[::-1], "y": ys, "x": xs},
+        name="reflectance",
+    ).rio.write_crs(CRS)
+    ds = da.to_dataset()
+    nc, zr = tmp_path / "cube.nc", tmp_path / "cube.zarr"
+    ds.to_netcdf(nc)
+    ds.to_zarr(zr)
+    for path in (nc, zr):
+        cube = RegionConfig(name="c", format="cube", tiles=[TileConfig(name="t1", path=str(path))], bands=BANDS, nodata=-9999, mask=MaskConfig(band=None), scaling=[ScalingRule(None, 1e-4, 0.0)])
+        st = open_tile(cube.tiles[0], cube)
+        assert st.grid.same_as(ref.grid), path
+        np.testing.assert_allclose(st.reflectance.values, ref.reflectance.values, rtol=1e-6)
+        assert [str(d) for d in st.dates] == DATES
+
+
+# ---------------------------------------------------------------- bad input
+
+
+def test_missing_folder(make_region, tmp_path):
+    region = make_region()
+    region.tiles[0].path = str(tmp_path / "nope")
+    with pytest.raises(InputNotFoundError, match="nope: tile 't1' folder does not exist"):
+        open_tile(region.tiles[0], region)
+
+
+def test_grid_mismatch_names_the_file(make_region, tmp_path, tiny_values):
+    region = make_region()
+    write_stack(tmp_path / "t1", ["2018-08-15"], tiny_values[:1], np.zeros((1, 8, 8)), transform=Affine(30.0, 0.0, 600030.0, 0.0, -30.0, 200010.0))
+    with pytest.raises(RegionError, match=r"scene_2018-08-15\.tif: grid .* differs from scene_2015-02-14\.tif"):
+        open_tile(region.tiles[0], region)
+
+
+def test_file_without_crs(make_region, tmp_path, tiny_values):
+    region = make_region()
+    write_stack(tmp_path / "t1", ["2018-08-15"], tiny_values[:1], np.zeros((1, 8, 8)), crs=None)
+    with pytest.raises(RegionError, match=r"scene_2018-08-15\.tif: the file has no CRS"):
+        open_tile(region.tiles[0], region)
+
+
+@pytest.mark.parametrize(("name", "message"), [("scene_2018-13-40.tif", "cannot parse date '2018-13-40'"), ("scene_latest.tif", "no date YYYY-MM-DD")])
+def test_bad_date_in_name(make_region, tmp_path, name, message):
+    region = make_region()
+    (tmp_path / "t1" / "scene_2015-02-14.tif").rename(tmp_path / "t1" / name)
+    with pytest.raises(RegionError, match=message):
+        open_tile(region.tiles[0], region)
+
+
+def test_repeated_date(make_region, tmp_path):
+    region = make_region()
+    src = tmp_path / "t1" / "scene_2015-02-14.tif"
+    (tmp_path / "t1" / "other_2015-02-14.tif").write_bytes(src.read_bytes())
+    with pytest.raises(RegionError, match="date 2015-02-14 repeats"):
+        open_tile(region.tiles[0], region)
+
+
+def test_band_count_differs_from_config(make_region):
+    region = make_region(bands=BANDS[:5], mask=MaskConfig(band=None))
+    with pytest.raises(RegionError, match=r"scene_2015-02-14\.tif: has 7 bands, the region config expects 5"):
+        open_tile(region.tiles[0], region)
+
+
+def test_tiles_with_different_dates(make_region, tmp_path, tiny_values):
+    region = make_region()
+    other = write_stack(tmp_path / "t2", DATES[:4], tiny_values[:4], np.zeros((4, 8, 8)))
+    region.tiles.append(TileConfig(name="t2", path=str(other)))
+    with pytest.raises(RegionError, match="dates differ from tile 't1'"):
+        open_region(region)
+
+
+def test_unknown_format(make_region):
+    region = make_region(format="jp2_pile")
+    with pytest.raises(ConfigError, match="'jp2_pile' is not one of"):
+        open_tile(region.tiles[0], region)
+
+
+def test_cube_with_wrong_dims(tmp_path):
+    da = xr.DataArray(np.zeros((6, 2, 4, 4), np.int16), dims=("band", "time", "y", "x"), name="reflectance").rio.write_crs(CRS)
+    path = tmp_path / "bad.nc"
+    da.to_dataset().to_netcdf(path)
+    cube = RegionConfig(name="c", format="cube", tiles=[TileConfig(name="t", path=str(path))], bands=BANDS)
+    with pytest.raises(RegionError, match=r"bad\.nc: variable 'reflectance' has dims \('band', 'time', 'y', 'x'\)"):
+        open_tile(cube.tiles[0], cube)
+
+
+def test_geotiff_reader_reads_only_headers_at_open(make_region, monkeypatch):
+    """Opening must not read pixel data: a tile larger than memory stays on disk."""
+    region = make_region()
+    calls = []
+    real = rasterio.io.DatasetReader.read
+
+    def spy(self, *a, **k):
+        calls.append(self.name)
+        return real(self, *a, **k)
+
+    monkeypatch.setattr(rasterio.io.DatasetReader, "read", spy)
+    st = open_tile(region.tiles[0], region)
+    assert calls == []
+    st.reflectance.isel(time=0, x=slice(0, 4), y=slice(0, 4)).values  # now it reads
+    assert calls
+
+
+def test_reading_many_windows_on_disk_is_equal_to_whole(make_region, tiny_values, tmp_path: Path):
+    region = make_region()
+    st = open_tile(region.tiles[0], region)
+    parts = [st.reflectance.isel(y=slice(r, r + 4), x=slice(c, c + 4)).values for r in (0, 4) for c in (0, 4)]
+    whole = np.block([[parts[0], parts[1]], [parts[2], parts[3]]])
+    np.testing.assert_array_equal(whole, st.reflectance.values)

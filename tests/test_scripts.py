@@ -1,0 +1,57 @@
+"""The entry points, run as a user runs them: outputs, exit codes, one-line errors, nothing written on bad input."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+import rasterio
+
+ROOT = Path(__file__).resolve().parents[1]
+
+
+def run(script: str, *overrides: str) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, str(ROOT / "scripts" / script), *overrides], cwd=ROOT, capture_output=True, text=True, timeout=600)
+
+
+@pytest.mark.slow
+def test_survey_on_the_toy_region(tmp_path):
+    out = tmp_path / "survey"
+    res = run("survey.py", f"out_dir={out}")
+    assert res.returncode == 0, res.stderr
+    assert str(out) in res.stdout
+    summary = json.loads((out / "survey.json").read_text())
+    assert summary["labels"]["counts"]["conversion"] > 500
+    # Wet-season months see fewer clear views than dry-season ones.
+    by_month = summary["clear_share_by_month"]
+    assert by_month["2"] < 0.4 < by_month["8"]
+    with rasterio.open(out / "clear_count_t01.tif") as src:
+        assert src.crs.to_epsg() == 32650 and src.nodata == -1
+        counts = src.read(1)
+    assert 0 < counts.mean() < 48
+    for name in ("labels.gpkg", "index_series.png", "clear_views.png"):
+        assert (out / name).stat().st_size > 1000
+    assert not list(tmp_path.glob("*.partial"))
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize(
+    ("overrides", "message"),
+    [
+        (["region.labels.path=__LABELS__"], "line 3: unknown label 'forest'"),
+        (["region.bands=[blue,green,red,nir,swir1]"], "must follow the 5 reflectance bands"),
+        (["region.tiles.0.path=no/such/folder"], "no/such/folder: tile 't01' folder does not exist"),
+    ],
+)
+def test_survey_bad_input_one_line_error_nothing_written(tmp_path, overrides, message):
+    labels = tmp_path / "bad.csv"
+    labels.write_text("x,y,label,onset_year\n117.94,1.55,stable_forest,\n117.95,1.55,forest,\n")
+    out = tmp_path / "survey"
+    res = run("survey.py", f"out_dir={out}", *[o.replace("__LABELS__", str(labels)) for o in overrides])
+    assert res.returncode == 1
+    lines = res.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("error: ") and message in lines[0], res.stderr
+    assert not out.exists() and not list(tmp_path.glob("survey*"))
