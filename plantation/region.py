@@ -64,12 +64,7 @@ class Grid:
         return abs(self.transform.a * self.transform.e - self.transform.b * self.transform.d) * factor**2
 
     def same_as(self, other: Grid) -> bool:
-        return (
-            self.crs == other.crs
-            and self.height == other.height
-            and self.width == other.width
-            and self.transform.almost_equals(other.transform)
-        )
+        return self.crs == other.crs and self.height == other.height and self.width == other.width and self.transform.almost_equals(other.transform)
 
     def describe(self) -> str:
         return f"{self.width}x{self.height} px, {self.crs.to_string()}, origin ({self.transform.c:g}, {self.transform.f:g}), pixel {self.transform.a:g}"
@@ -273,7 +268,7 @@ def _open_cube(tile: TileConfig, region: RegionConfig) -> TileStack:
         raise RegionError(f"{path}: variable {var!r} has dims {tuple(da.dims)}; expected ('time', 'band', 'y', 'x'), use transpose")
     if da.sizes["band"] != len(region.bands):
         raise RegionError(f"{path}: has {da.sizes['band']} bands, the region config expects {len(region.bands)} ({', '.join(region.bands)})")
-    if da["band"].dtype.kind in "US":
+    if da["band"].dtype.kind in "USO":
         names = [str(b) for b in da["band"].values]
         missing = [b for b in region.bands if b not in names]
         if missing:

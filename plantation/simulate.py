@@ -36,10 +36,10 @@ import hashlib
 import json
 import shutil
 from collections.abc import Iterator
-from typing import Any
 from dataclasses import asdict, dataclass, field
 from datetime import date, timedelta
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -139,6 +139,7 @@ class SimulationConfig:
     label_error: float = 0.05
     # Writing
     block: int = 256
+    zlevel: int = 9
 
 
 def check_config(cfg: SimulationConfig) -> None:
@@ -681,7 +682,7 @@ def _profile(cfg: SimulationConfig, ti: int, tj: int, count: int, dtype: str, no
         "nodata": nodata,
         "compress": "deflate",
         "predictor": 2,
-        "zlevel": 9,
+        "zlevel": cfg.zlevel,
         "interleave": "pixel",
     }
     if tiled:
@@ -764,7 +765,7 @@ def _write_labels(cfg: SimulationConfig, sim: Simulator, folder: Path) -> None:
 
     rng = np.random.default_rng(np.random.SeedSequence([cfg.seed, 4]))
     frames = []
-    for name, ti, tj in tile_names(cfg):
+    for name, _, _ in tile_names(cfg):
         with rasterio.open(folder / name / "truth.tif") as src:
             cls, onset = src.read(1), src.read(2)
             transform = src.transform
@@ -802,7 +803,16 @@ def _write_labels(cfg: SimulationConfig, sim: Simulator, folder: Path) -> None:
     onset_text = np.where(label == "conversion", onset.astype(str), "")
     pd.DataFrame({"x": np.round(lon, 7), "y": np.round(lat, 7), "label": label, "onset_year": onset_text}).to_csv(folder / "labels.csv", index=False, lineterminator="\n")
     pd.DataFrame(
-        {"tile": s["tile"], "row": s["row"], "col": s["col"], "label": label, "onset_year": np.where(label == "conversion", onset, 0), "true_label": true_label, "true_onset_year": true_onset, "is_error": wrong}
+        {
+            "tile": s["tile"],
+            "row": s["row"],
+            "col": s["col"],
+            "label": label,
+            "onset_year": np.where(label == "conversion", onset, 0),
+            "true_label": true_label,
+            "true_onset_year": true_onset,
+            "is_error": wrong,
+        }
     ).to_csv(folder / "labels_truth.csv", index=False, lineterminator="\n")
 
 

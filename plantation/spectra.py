@@ -140,7 +140,7 @@ def prosail_bands(canopy: CanopyType, lai: float, vigour: float, soil: float) ->
     return band_average(np.asarray(spec))
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def _coarse_table(canopy: CanopyType) -> np.ndarray:
     """PROSAIL on the node grid: (lai, vigour, soil, band) float64."""
     out = np.empty((LAI_NODES.size, VIGOUR_NODES.size, SOIL_NODES.size, len(OLI_BANDS_UM)))

@@ -108,7 +108,14 @@ def _write_points(labels: LabelSet, crs_wkt: str, path: Path) -> None:
     p = labels.points
     geom = shapely.to_wkb(shapely.points(p["x"].to_numpy(), p["y"].to_numpy()))
     fields = ["label", "onset_year", "tile", "row", "col", "source"]
-    data = [p["label"].to_numpy(dtype=object), p["onset_year"].to_numpy(np.int32), p["tile"].to_numpy(dtype=object), p["row"].to_numpy(np.int32), p["col"].to_numpy(np.int32), p["source"].to_numpy(np.int32)]
+    data = [
+        p["label"].to_numpy(dtype=object),
+        p["onset_year"].to_numpy(np.int32),
+        p["tile"].to_numpy(dtype=object),
+        p["row"].to_numpy(np.int32),
+        p["col"].to_numpy(np.int32),
+        p["source"].to_numpy(np.int32),
+    ]
     pyogrio.raw.write(path, geom, data, fields, crs=crs_wkt, geometry_type="Point", driver="GPKG", layer="labels")
 
 
@@ -186,7 +193,15 @@ def run(cfg: SurveyConfig) -> Path:
     summary = {
         "region": region.name,
         "tiles": [
-            {"name": s.name, "grid": s.grid.describe(), "crs": s.grid.crs.to_string(), "pixel_area_m2": s.grid.pixel_area_m2 if s.grid.crs.is_projected else None, "dates": len(s.dates), "first": str(s.dates[0]), "last": str(s.dates[-1])}
+            {
+                "name": s.name,
+                "grid": s.grid.describe(),
+                "crs": s.grid.crs.to_string(),
+                "pixel_area_m2": s.grid.pixel_area_m2 if s.grid.crs.is_projected else None,
+                "dates": len(s.dates),
+                "first": str(s.dates[0]),
+                "last": str(s.dates[-1]),
+            }
             for s in stacks
         ],
         "years": [int(stacks[0].years[0]), int(stacks[0].years[-1])],

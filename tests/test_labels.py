@@ -9,12 +9,12 @@ import pyogrio
 import pytest
 import shapely
 from pyproj import Transformer
+from rasterio.crs import CRS as RioCRS
 
 from plantation.errors import LabelError
 from plantation.labels import read_labels
 from plantation.region import Grid
 from tests.conftest import CRS, TRANSFORM, pixel_centre
-from rasterio.crs import CRS as RioCRS
 
 GRIDS = {"t1": Grid(RioCRS.from_user_input(CRS), TRANSFORM, 8, 8)}
 YEARS = [2015, 2016, 2017]

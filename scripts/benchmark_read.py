@@ -1,0 +1,129 @@
+"""Peak memory and speed of reading a large simulated stack window by window.
+
+Simulates the region once (reused afterwards), then reads it in a fresh
+subprocess so that the figure is the reader's alone, and writes JSON:
+``python scripts/benchmark_read.py`` (see configs/benchmark_read.yaml).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import resource
+import subprocess
+import sys
+import time
+from dataclasses import asdict
+from pathlib import Path
+
+import hydra
+from omegaconf import DictConfig
+
+from plantation.cli import guarded
+from plantation.config import register_configs, to_object
+
+register_configs()
+
+
+def read_windows(folder: str, bands: int, window: int, nodata: int, proc_change: str, proc_offset: float) -> dict:
+    """Read every window of tile t01 once; return timings and peak RSS (MB)."""
+    import numpy as np
+
+    from plantation.config import MaskConfig, RegionConfig, ScalingRule, TileConfig
+    from plantation.indices import ndvi
+    from plantation.region import open_tile
+
+    base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    region = RegionConfig(
+        name="bench",
+        tiles=[TileConfig(name="t01", path=str(Path(folder) / "t01" / "imagery"))],
+        nodata=nodata,
+        mask=MaskConfig(band=bands + 1, invalid_bits=[0, 1, 2]),
+        scaling=[ScalingRule(None, 1e-4, 0.0), ScalingRule(proc_change, 1e-4, proc_offset)],
+        chunk=window,
+    )
+    t0 = time.perf_counter()
+    st = open_tile(region.tiles[0], region)
+    h, w = st.grid.height, st.grid.width
+    n_valid = 0
+    ndvi_sum = 0.0
+    for r in range(0, h, window):
+        for c in range(0, w, window):
+            win = st.reflectance.isel(y=slice(r, r + window), x=slice(c, c + window))
+            vals = win.values  # (time, band, y, x) float32: one window in memory
+            nd = ndvi(vals[:, 3], vals[:, 2])
+            ok = np.isfinite(nd)
+            n_valid += int(ok.sum())
+            ndvi_sum += float(nd[ok].sum())
+    seconds = time.perf_counter() - t0
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    t = len(st.dates)
+    return {
+        "tile_px": [h, w],
+        "dates": t,
+        "bands": bands,
+        "window": window,
+        "baseline_rss_mb": round(base, 1),
+        "peak_rss_mb": round(peak, 1),
+        "window_float32_mb": round(t * bands * window * window * 4 / 2**20, 1),
+        "full_tile_float32_mb": round(t * bands * h * w * 4 / 2**20, 1),
+        "read_seconds": round(seconds, 2),
+        "px_dates_per_s": round(h * w * t / seconds),
+        "mean_valid_ndvi": round(ndvi_sum / max(n_valid, 1), 4),
+        "valid_share": round(n_valid / (h * w * t), 4),
+    }
+
+
+@hydra.main(version_base="1.3", config_path="../configs", config_name="benchmark_read")
+@guarded
+def main(cfg: DictConfig) -> None:
+    from plantation.simulate import BANDS, SimulationConfig, write_region
+
+    sim = to_object(cfg.sim, SimulationConfig)
+    work = Path(cfg.work_dir)
+    meta = work / "simulation.json"
+    sim_seconds = None
+    if not (meta.exists() and json.loads(meta.read_text()) == json.loads(json.dumps(asdict(sim)))):
+        t0 = time.perf_counter()
+        write_region(sim, work)
+        sim_seconds = round(time.perf_counter() - t0, 1)
+        sim_peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    else:
+        sim_peak = None
+    # A fresh process: its peak RSS is the reader's alone.
+    code = "import json, sys; sys.path.insert(0, sys.argv[1]); from benchmark_read import read_windows; print(json.dumps(read_windows(**json.loads(sys.argv[2]))))"
+    kwargs = {
+        "folder": str(work),
+        "bands": len(BANDS),
+        "window": int(cfg.window),
+        "nodata": sim.nodata,
+        "proc_change": sim.processing_change,
+        "proc_offset": -sim.processing_offset_dn * 1e-4,
+    }
+    res = subprocess.run([sys.executable, "-c", code, str(Path(__file__).parent), json.dumps(kwargs)], capture_output=True, text=True)
+    if res.returncode:
+        raise RuntimeError(f"reader subprocess failed:\n{res.stderr}")
+    result = json.loads(res.stdout.strip().splitlines()[-1])
+    result.update(
+        {
+            "region": sim.name,
+            "simulate_seconds": sim_seconds,
+            "simulate_peak_rss_mb": None if sim_peak is None else round(sim_peak, 1),
+            "cpu_count": os.cpu_count(),
+            "target_peak_rss_mb": 2048,
+            "meets_target": result["peak_rss_mb"] < 2048,
+            "peak_over_window_ratio": round(result["peak_rss_mb"] / result["window_float32_mb"], 2),
+            "peak_over_full_tile_ratio": round(result["peak_rss_mb"] / result["full_tile_float32_mb"], 4),
+        }
+    )
+    out = Path(cfg.result)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.with_suffix(".json.partial")
+    tmp.write_text(json.dumps(result, indent=1) + "\n")
+    tmp.rename(out)
+    print(json.dumps(result, indent=1))
+    print(f"written to {out}")
+
+
+if __name__ == "__main__":
+    main()
