@@ -17,6 +17,7 @@ renamed):
 from __future__ import annotations
 
 import json
+import logging
 import shutil
 import warnings
 from dataclasses import dataclass, field
@@ -105,6 +106,8 @@ def _write_points(labels: LabelSet, crs_wkt: str, path: Path) -> None:
     import pyogrio
     import shapely
 
+    # pyogrio logs a line per layer written at INFO; the survey prints its own summary.
+    logging.getLogger("pyogrio").setLevel(logging.WARNING)
     p = labels.points
     geom = shapely.to_wkb(shapely.points(p["x"].to_numpy(), p["y"].to_numpy()))
     fields = ["label", "onset_year", "tile", "row", "col", "source"]
