@@ -171,7 +171,7 @@ def test_sensor_change_and_processing_offset(small_region):
     gain, off = SMALL.sensor_gain[3], SMALL.sensor_offset[3]
     assert np.nanmedian(nir[after_sensor]) == pytest.approx(before * gain + off, abs=0.008)
     assert np.nanmedian(nir[after_proc]) == pytest.approx(before * gain + off, abs=0.008)
-    with rasterio.open(sorted((small_region / "t01" / "imagery").glob("*.tif"))[-1]) as src:
+    with rasterio.open(sorted((small_region / "t01" / "imagery").glob("*-08-*.tif"))[-1]) as src:
         raw = src.read(4)[forest & (src.read(7) == 0)]  # clear views only
     # On disk the stored integers still carry the processing offset.
     expected_dn = (before * gain + off) * 1e4 + SMALL.processing_offset_dn
