@@ -87,6 +87,74 @@ class RegionConfig:
     chunk: int = 512
 
 
+@dataclass
+class SamplesConfig:
+    """How samples are cut from the imagery."""
+
+    neighbourhood: int = 5
+    indices: list[str] = field(default_factory=lambda: ["NDVI", "EVI", "NBR", "NDMI"])
+
+
+@dataclass
+class SplitConfig:
+    """Spatial blocks dealt to train / validation / test."""
+
+    block: int = 32
+    shares: list[float] = field(default_factory=lambda: [0.7, 0.15, 0.15])
+    seed: int = 0
+
+
+@dataclass
+class ModelConfig:
+    """Network size and ensemble."""
+
+    conv_width: int = 32
+    hidden: int = 64
+    dropout: float = 0.1
+    members: int = 3
+
+
+@dataclass
+class TrainingConfig:
+    """Optimisation."""
+
+    seed: int = 0
+    max_epochs: int = 40
+    patience: int = 8
+    batch_size: int = 64
+    lr: float = 3e-3
+    weight_decay: float = 1e-4
+    loss: str = "ce"
+    gce_q: float = 0.7
+    class_weighting: str = "inverse_sqrt"
+    augment: bool = True
+    date_dropout: float = 0.1
+    threads: int = 0
+
+
+@dataclass
+class TrainerConfig:
+    """Arguments of ``lightning.Trainer`` that a user may change."""
+
+    accelerator: str = "cpu"
+    devices: int = 1
+    num_nodes: int = 1
+    strategy: str = "auto"
+    precision: str = "32-true"
+    enable_progress_bar: bool = True
+    log_every_n_steps: int = 10
+    limit_train_batches: float = 1.0
+
+
+@dataclass
+class CalibrationConfig:
+    """What the outputs say."""
+
+    cutoff_year: int = 2020
+    interval_level: float = 0.8
+    conformal_alpha: float | None = 0.2
+
+
 def register_configs() -> None:
     """Register the schemas with Hydra's ConfigStore (call before composing)."""
     from hydra.core.config_store import ConfigStore
@@ -96,6 +164,9 @@ def register_configs() -> None:
     cs = ConfigStore.instance()
     cs.store(group="region", name="region_schema", node=RegionConfig)
     cs.store(group="sim", name="sim_schema", node=SimulationConfig)
+    cs.store(group="model", name="model_schema", node=ModelConfig)
+    cs.store(group="training", name="training_schema", node=TrainingConfig)
+    cs.store(group="trainer", name="trainer_schema", node=TrainerConfig)
 
 
 def to_object(cfg: Any, cls: type[T]) -> T:

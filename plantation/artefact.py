@@ -1,0 +1,159 @@
+"""The exported model: weights in safetensors plus JSON metadata, loadable without pickle.
+
+An artefact is two files side by side:
+
+* ``model.safetensors`` — the tensors of every ensemble member, keys
+  ``member<i>.<parameter name>``;
+* ``model.json`` — everything needed to build the inputs and read the
+  outputs: band roles, scaling rules, indices, dates and years, the network's
+  constructor arguments (normalisation statistics included), the calibration
+  (temperature, per-outcome loss weights, training outcome frequencies,
+  optional conformal threshold), the cutoff year and the package version.
+
+Reading it back uses only ``safetensors`` and ``json``: no code object is
+ever unpickled.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+from safetensors.torch import load_file, save_file
+
+from plantation.errors import InputNotFoundError, PlantationError
+from plantation.model import ConvRecurrentNet
+
+FORMAT = "plantation-model/1"
+
+
+@dataclass
+class Calibration:
+    """How member logits become calibrated outcome probabilities.
+
+    p = softmax((log mean_m softmax(z_m) − log w) / T), where ``w`` are the
+    per-outcome loss weights used in training (dividing them out restores
+    the posteriors of the reference sample) and ``T`` is the temperature
+    fitted on validation data. ``train_prior`` is the outcome frequency of
+    the training sample, the starting point for prior adjustment on a map.
+    """
+
+    temperature: float = 1.0
+    loss_weights: list[float] = field(default_factory=list)
+    train_prior: list[float] = field(default_factory=list)
+    #: Split-conformal threshold on 1 − p(outcome) (None: not calibrated).
+    conformal_qhat: float | None = None
+    conformal_alpha: float | None = None
+
+
+@dataclass
+class ModelCard:
+    """Metadata of an artefact (the content of ``model.json``)."""
+
+    bands: list[str]
+    indices: list[str]
+    scaling: list[dict[str, Any]]
+    dates: list[str]
+    years: list[int]
+    network: dict[str, Any]
+    members: int
+    calibration: Calibration
+    cutoff_year: int
+    interval_level: float
+    region: str
+    labels_fingerprint: str
+    package_version: str
+    format: str = FORMAT
+
+
+@dataclass
+class Artefact:
+    """A loaded artefact: the card and one network per ensemble member (in eval mode)."""
+
+    card: ModelCard
+    members: list[ConvRecurrentNet]
+
+    def member_logits(self, x: torch.Tensor, valid: torch.Tensor) -> torch.Tensor:
+        """(members, b, outcomes) logits of k × k patches."""
+        with torch.inference_mode():
+            return torch.stack([m(x, valid) for m in self.members])
+
+    def calibrated_log_probs(self, member_logits: torch.Tensor) -> torch.Tensor:
+        """Calibrated log-probabilities (…, outcomes) from (members, …, outcomes) logits."""
+        return calibrated_log_probs(member_logits, self.card.calibration)
+
+
+def calibrated_log_probs(member_logits: torch.Tensor, cal: Calibration) -> torch.Tensor:
+    """See :class:`Calibration` for the formula."""
+    lp = torch.logsumexp(torch.log_softmax(member_logits, -1), 0) - np.log(member_logits.shape[0])
+    if cal.loss_weights:
+        lp = lp - torch.log(torch.as_tensor(cal.loss_weights, dtype=lp.dtype))
+    return torch.log_softmax(lp / cal.temperature, -1)
+
+
+def build_network(spec: dict[str, Any]) -> ConvRecurrentNet:
+    """A network from the constructor arguments stored in a card."""
+    return ConvRecurrentNet(**spec)
+
+
+def save(folder: str | Path, card: ModelCard, members: list[ConvRecurrentNet]) -> Path:
+    """Write ``model.safetensors`` and ``model.json`` into ``folder`` (each atomically)."""
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    tensors = {f"member{i}.{k}": v.detach().contiguous().clone() for i, m in enumerate(members) for k, v in m.state_dict().items()}
+    tmp = folder / "model.safetensors.partial"
+    save_file(tensors, str(tmp), metadata={"format": FORMAT})
+    os.replace(tmp, folder / "model.safetensors")
+    tmpj = folder / "model.json.partial"
+    tmpj.write_text(json.dumps(asdict(card), indent=2))
+    os.replace(tmpj, folder / "model.json")
+    return folder
+
+
+def load(folder: str | Path) -> Artefact:
+    """Read an artefact folder written by :func:`save`.
+
+    Raises:
+        InputNotFoundError: a file is missing.
+        PlantationError: the files are not a plantation model or do not match.
+    """
+    folder = Path(folder)
+    meta, weights = folder / "model.json", folder / "model.safetensors"
+    for f in (meta, weights):
+        if not f.is_file():
+            raise InputNotFoundError(f"{f}: model file not found (export a model with scripts/train.py)")
+    try:
+        raw = json.loads(meta.read_text())
+    except json.JSONDecodeError as exc:
+        raise PlantationError(f"{meta}: not valid JSON ({exc.msg}, line {exc.lineno})") from None
+    if raw.get("format") != FORMAT:
+        raise PlantationError(f"{meta}: format {raw.get('format')!r}, expected {FORMAT!r}")
+    raw["calibration"] = Calibration(**raw["calibration"])
+    card = ModelCard(**raw)
+    tensors = load_file(str(weights))
+    members = []
+    for i in range(card.members):
+        net = build_network(card.network)
+        prefix = f"member{i}."
+        state = {k[len(prefix) :]: v for k, v in tensors.items() if k.startswith(prefix)}
+        try:
+            net.load_state_dict(state)
+        except RuntimeError as exc:
+            raise PlantationError(f"{weights}: member {i} does not match {meta.name} ({str(exc).splitlines()[0]})") from None
+        net.eval()
+        members.append(net)
+    return Artefact(card, members)
+
+
+def to_jsonable(a: Any) -> Any:
+    """numpy scalars/arrays → plain Python, for JSON."""
+    if isinstance(a, np.ndarray):
+        return a.tolist()
+    if isinstance(a, np.generic):
+        return a.item()
+    return a

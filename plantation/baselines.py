@@ -1,0 +1,205 @@
+"""What a practitioner would use instead of the network, for side-by-side benchmarks.
+
+Both baselines read the centre pixel's series only and return the same
+outcome distribution as the network (see :mod:`plantation.outcomes`), so one
+scoring code compares all three.
+
+* :class:`AnnualTrees` — gradient-boosted trees (scikit-learn's
+  ``HistGradientBoostingClassifier``) on per-year summaries of the indices:
+  each year's median NDVI, NBR, NDMI, SWIR1 and red, its clear-view count,
+  and the year-to-year changes of NBR and NDVI. The trees predict the
+  outcome (a static class, or conversion in a given year) directly.
+* :class:`BreakRule` — a structural break on the annual median NBR series,
+  found by PELT (Killick, Fearnhead & Eckley 2012, JASA 107: 1590–1598) as
+  implemented in ``ruptures``, plus a rule: the largest drop in segment mean
+  is a conversion in the break year when it is deep enough and NBR then
+  recovers partly (a plantation grows) without returning to the forest level
+  (fire and logging regrow to forest). Without such a break, the nearest
+  class centroid of the series' mean NBR, NDVI and SWIR1 decides. The rule's
+  thresholds are chosen on the training samples by grid search.
+"""
+
+from __future__ import annotations
+
+import itertools
+import warnings
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from plantation.outcomes import N_STATIC, Outcomes
+
+SUMMARY_CHANNELS: tuple[str, ...] = ("NDVI", "NBR", "NDMI", "swir1", "red")
+
+
+def annual_medians(x: np.ndarray, valid: np.ndarray, date_year: np.ndarray, n_years: int) -> tuple[np.ndarray, np.ndarray]:
+    """Per-year median of each channel over valid dates.
+
+    Args:
+        x: (n, time, channel) values; valid: (n, time) bool.
+        date_year: (time,) year index of each date.
+
+    Returns:
+        (medians (n, years, channel) float32, NaN for a year with no clear
+        view; clear counts (n, years) int).
+    """
+    xm = np.where(valid[..., None], x, np.nan)
+    med = np.full((x.shape[0], n_years, x.shape[2]), np.nan, np.float32)
+    count = np.zeros((x.shape[0], n_years), np.int64)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN years stay NaN
+        for y in range(n_years):
+            sel = date_year == y
+            med[:, y] = np.nanmedian(xm[:, sel], axis=1)
+            count[:, y] = valid[:, sel].sum(1)
+    return med, count
+
+
+def _channel_index(channels: Sequence[str], wanted: Sequence[str]) -> list[int]:
+    missing = [c for c in wanted if c not in channels]
+    if missing:
+        raise ValueError(f"baseline needs channel(s) {missing}; the samples have {list(channels)}")
+    return [list(channels).index(c) for c in wanted]
+
+
+def annual_features(x: np.ndarray, valid: np.ndarray, date_year: np.ndarray, n_years: int, channels: Sequence[str]) -> np.ndarray:
+    """The trees' feature matrix (n, features), NaN where a year had no clear view."""
+    ci = _channel_index(channels, SUMMARY_CHANNELS)
+    med, count = annual_medians(x[:, :, ci], valid, date_year, n_years)
+    d_nbr = np.diff(med[:, :, 1], axis=1)
+    d_ndvi = np.diff(med[:, :, 0], axis=1)
+    return np.concatenate([med.reshape(len(x), -1), count, d_nbr, d_ndvi], axis=1).astype(np.float32)
+
+
+@dataclass
+class AnnualTrees:
+    """Gradient-boosted trees on annual summaries (see the module docstring)."""
+
+    max_iter: int = 300
+    learning_rate: float = 0.08
+    seed: int = 0
+    model_: object | None = field(default=None, repr=False)
+    classes_: np.ndarray | None = None
+
+    def fit(self, feats: np.ndarray, target: np.ndarray, n_outcomes: int) -> AnnualTrees:
+        from sklearn.ensemble import HistGradientBoostingClassifier
+
+        self.n_outcomes_ = n_outcomes
+        self.model_ = HistGradientBoostingClassifier(
+            max_iter=self.max_iter, learning_rate=self.learning_rate, early_stopping=True, validation_fraction=0.15, n_iter_no_change=20, random_state=self.seed
+        )
+        self.model_.fit(feats, target)  # type: ignore[attr-defined]
+        self.classes_ = self.model_.classes_  # type: ignore[attr-defined]
+        return self
+
+    def predict_proba(self, feats: np.ndarray) -> np.ndarray:
+        """(n, outcomes) probabilities; outcomes absent from training get 0."""
+        if self.model_ is None or self.classes_ is None:
+            raise RuntimeError("AnnualTrees is not fitted yet; call fit first")
+        p = self.model_.predict_proba(feats)  # type: ignore[attr-defined]
+        out = np.zeros((len(feats), self.n_outcomes_), np.float64)
+        out[:, self.classes_] = p
+        return out
+
+
+def _fill_gaps(series: np.ndarray) -> np.ndarray:
+    """Linear interpolation over NaN years (ends take the nearest value); all-NaN rows become 0."""
+    s = series.copy()
+    n = s.shape[1]
+    t = np.arange(n)
+    for i in np.flatnonzero(np.isnan(s).any(1)):
+        ok = ~np.isnan(s[i])
+        s[i] = np.interp(t, t[ok], s[i, ok]) if ok.any() else 0.0
+    return s
+
+
+def largest_drop(series: np.ndarray, penalty: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """PELT breaks of each row; the break with the largest drop in segment mean.
+
+    Args:
+        series: (n, years) without NaN.
+        penalty: PELT penalty (in squared NBR units, l2 cost).
+
+    Returns:
+        (break year index (−1: no drop), drop size, mean of the segment after
+        the drop), each (n,).
+    """
+    import ruptures as rpt
+
+    n, ny = series.shape
+    year = np.full(n, -1, np.int64)
+    drop = np.zeros(n)
+    after = np.zeros(n)
+    for i in range(n):
+        s = series[i]
+        bkps = rpt.Pelt(model="l2", min_size=1, jump=1).fit(s).predict(pen=penalty)
+        edges = [0, *bkps]
+        means = [s[a:b].mean() for a, b in itertools.pairwise(edges)]
+        for j in range(1, len(means)):
+            d = means[j - 1] - means[j]
+            if d > drop[i]:
+                drop[i], year[i], after[i] = d, edges[j], s[edges[j] :].max()
+    return year, drop, after
+
+
+@dataclass
+class BreakRule:
+    """PELT break on annual NBR with a plantation rule (see the module docstring)."""
+
+    penalties: tuple[float, ...] = (0.002, 0.005, 0.01)
+    drops: tuple[float, ...] = (0.08, 0.12, 0.18, 0.25)
+    recover_min: tuple[float, ...] = (0.0, 0.15, 0.25, 0.35)
+    recover_max: tuple[float, ...] = (0.45, 0.5, 0.55, 0.6, 1.0)
+    params_: dict[str, float] | None = None
+    centroids_: np.ndarray | None = None
+    scale_: np.ndarray | None = None
+
+    @staticmethod
+    def series(x: np.ndarray, valid: np.ndarray, date_year: np.ndarray, n_years: int, channels: Sequence[str]) -> tuple[np.ndarray, np.ndarray]:
+        """(annual NBR without gaps (n, years), static features (n, 3): mean NBR, NDVI, SWIR1)."""
+        ci = _channel_index(channels, ("NBR", "NDVI", "swir1"))
+        med, _ = annual_medians(x[:, :, ci], valid, date_year, n_years)
+        nbr = _fill_gaps(med[:, :, 0].astype(np.float64))
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            static = np.nan_to_num(np.nanmean(med, axis=1))
+        return nbr, static
+
+    def _decide(self, brk: tuple[np.ndarray, np.ndarray, np.ndarray], static: np.ndarray, drop_min: float, rec_lo: float, rec_hi: float) -> np.ndarray:
+        year, drop, after = brk
+        conv = (year >= 0) & (drop >= drop_min) & (after >= rec_lo) & (after <= rec_hi)
+        if self.centroids_ is None:
+            raise RuntimeError("BreakRule is not fitted yet; call fit first")
+        d = (((static[:, None, :] - self.centroids_[None]) / self.scale_) ** 2).sum(-1)
+        return np.where(conv, N_STATIC + np.maximum(year, 0), d.argmin(1))
+
+    def fit(self, nbr: np.ndarray, static: np.ndarray, target: np.ndarray) -> BreakRule:
+        """Choose penalty and thresholds maximising the share of exactly right outcomes on the training samples."""
+        # Scaled so NBR, NDVI and SWIR1 count alike in the distance.
+        self.scale_ = np.where(static.std(0) > 0, static.std(0), 1.0)
+        self.centroids_ = np.stack([static[target == c].mean(0) if (target == c).any() else np.full(static.shape[1], np.inf) for c in range(N_STATIC)])
+        best = (-1.0, {})
+        for pen in self.penalties:
+            brk = largest_drop(nbr, pen)
+            for dmin, lo, hi in itertools.product(self.drops, self.recover_min, self.recover_max):
+                if lo >= hi:
+                    continue
+                acc = float((self._decide(brk, static, dmin, lo, hi) == target).mean())
+                if acc > best[0]:
+                    best = (acc, {"penalty": pen, "drop_min": dmin, "recover_min": lo, "recover_max": hi})
+        self.params_ = best[1]
+        return self
+
+    def predict(self, nbr: np.ndarray, static: np.ndarray) -> np.ndarray:
+        """Outcome index (n,) of each series."""
+        if self.params_ is None:
+            raise RuntimeError("BreakRule is not fitted yet; call fit first")
+        p = self.params_
+        return self._decide(largest_drop(nbr, p["penalty"]), static, p["drop_min"], p["recover_min"], p["recover_max"])
+
+    def predict_proba(self, nbr: np.ndarray, static: np.ndarray, outcomes: Outcomes) -> np.ndarray:
+        """A rule knows no uncertainty: probability 1 on its outcome."""
+        out = np.zeros((len(nbr), outcomes.size))
+        out[np.arange(len(nbr)), self.predict(nbr, static)] = 1.0
+        return out

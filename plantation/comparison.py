@@ -1,0 +1,191 @@
+"""Side-by-side accuracy benchmark: the network against two classical baselines.
+
+``run(cfg)`` trains all three methods on the same samples and splits of the
+training region, then maps a held-out simulated region (another seed: another
+landscape, other clouds) wall to wall and scores each map against that
+region's complete truth rasters (:mod:`plantation.scores`).
+
+The reference sample is stratified, so every method's probabilities reflect
+the sample's outcome frequencies, not the map's. With ``prior_adjust`` the
+model's and the trees' probabilities are re-weighted to the held-out
+region's frequencies estimated from its unlabelled pixels by EM (Saerens et
+al. 2002, see :mod:`plantation.calibration`); the truth is never used.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import tempfile
+import time
+from dataclasses import asdict, dataclass, field, replace
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import rasterio
+import torch
+
+from plantation import artefact as art_io
+from plantation.baselines import AnnualTrees, BreakRule, annual_features
+from plantation.calibration import adjust_priors
+from plantation.config import CalibrationConfig, ModelConfig, RegionConfig, SamplesConfig, SplitConfig, TileConfig, TrainerConfig, TrainingConfig
+from plantation.errors import ConfigError
+from plantation.inference import predict_tile
+from plantation.outcomes import Outcomes, summarise
+from plantation.region import TileStack, open_region
+from plantation.samples import SampleSet, features, year_of
+from plantation.scores import map_scores
+from plantation.simulate import SimulationConfig, tile_names, write_region
+from plantation.train import TrainConfig, fit, load_region_samples, model_card
+
+
+@dataclass
+class ComparisonConfig:
+    """Schema of ``configs/benchmark_accuracy.yaml``."""
+
+    region: RegionConfig = field(default_factory=RegionConfig)
+    samples: SamplesConfig = field(default_factory=SamplesConfig)
+    split: SplitConfig = field(default_factory=SplitConfig)
+    model: ModelConfig = field(default_factory=ModelConfig)
+    training: TrainingConfig = field(default_factory=TrainingConfig)
+    trainer: TrainerConfig = field(default_factory=TrainerConfig)
+    calibration: CalibrationConfig = field(default_factory=CalibrationConfig)
+    eval_sim: SimulationConfig = field(default_factory=SimulationConfig)
+    eval_dir: str = "bench/cache/eval_region"
+    prior_adjust: bool = True
+    window: int = 96
+    out: str = "bench/results/accuracy.json"
+    progress: bool = True
+    # Keys of the training config that the benchmark does not use.
+    out_dir: str = "outputs/train"
+    run_name: str = "run"
+
+
+def train_config(cfg: ComparisonConfig) -> TrainConfig:
+    return TrainConfig(region=cfg.region, samples=cfg.samples, split=cfg.split, model=cfg.model, training=cfg.training, trainer=cfg.trainer, calibration=cfg.calibration)
+
+
+def ensure_region(sim: SimulationConfig, folder: Path, progress: bool) -> Path:
+    """Simulate the evaluation region unless ``folder`` already holds this exact simulation."""
+    stamp = folder / "simulation.json"
+    want = json.dumps(asdict(sim), indent=2, sort_keys=True) + "\n"
+    if stamp.is_file() and stamp.read_text() == want:
+        return folder
+    return write_region(sim, folder, progress=progress)
+
+
+def eval_region_config(train_region: RegionConfig, sim: SimulationConfig, folder: Path) -> RegionConfig:
+    """The training region's reading rules, pointed at the simulated tiles."""
+    tiles = [TileConfig(name=n, path=str(folder / n / "imagery"), truth=str(folder / n / "truth.tif")) for n, _, _ in tile_names(sim)]
+    return replace(train_region, name=f"{sim.name}_seed{sim.seed}", tiles=tiles)
+
+
+def centre_series(s: SampleSet) -> tuple[np.ndarray, np.ndarray]:
+    """(n, time, channel) values and (n, time) validity of each sample's centre pixel."""
+    r = s.x.shape[-1] // 2
+    return s.x[:, :, :, r, r], s.valid[:, :, r, r]
+
+
+def tile_series(stack: TileStack, bands: list[str], index_names: list[str]) -> tuple[np.ndarray, np.ndarray]:
+    """Every pixel's series: (pixels, time, channel) and (pixels, time), row-major."""
+    refl = stack.reflectance.values.astype(np.float32)
+    valid = stack.valid.values.astype(bool)
+    f = features(refl, bands, index_names)  # (t, c, y, x)
+    t, c, h, w = f.shape
+    return f.transpose(2, 3, 0, 1).reshape(h * w, t, c), valid.transpose(1, 2, 0).reshape(h * w, t)
+
+
+def _truth(tile: TileConfig) -> tuple[np.ndarray, np.ndarray]:
+    if not tile.truth:
+        raise ConfigError(f"tile {tile.name!r}: the evaluation region needs truth rasters")
+    with rasterio.open(tile.truth) as src:
+        return src.read(1), src.read(2)
+
+
+def run(cfg: ComparisonConfig) -> dict[str, Any]:
+    """Train, map and score the three methods; write ``cfg.out`` (JSON) atomically."""
+    torch.set_num_threads(cfg.training.threads or (os.cpu_count() or 1))
+    tc = train_config(cfg)
+    _, labels, samples = load_region_samples(tc)
+    outcomes: Outcomes = samples.outcomes
+    train = samples.part("train")
+    date_year = year_of(samples.dates) - year_of(samples.dates).min()
+    ny = len(outcomes.years)
+    results: dict[str, Any] = {}
+
+    with tempfile.TemporaryDirectory(prefix="plantation-bench-") as tmp:
+        t0 = time.perf_counter()
+        trained = fit(samples, tc, Path(tmp))
+        model_seconds = time.perf_counter() - t0
+        art_io.save(Path(tmp) / "model", model_card(tc, samples, trained, labels), trained.members)
+        artefact = art_io.load(Path(tmp) / "model")
+
+    xs, vs = centre_series(train)
+    t0 = time.perf_counter()
+    trees = AnnualTrees(seed=cfg.training.seed).fit(annual_features(xs, vs, date_year, ny, samples.channels), train.target, outcomes.size)
+    trees_seconds = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    nbr, static = BreakRule.series(xs, vs, date_year, ny, samples.channels)
+    rule = BreakRule().fit(nbr, static, train.target)
+    rule_seconds = time.perf_counter() - t0
+
+    folder = ensure_region(cfg.eval_sim, Path(cfg.eval_dir), cfg.progress)
+    region = eval_region_config(cfg.region, cfg.eval_sim, folder)
+    stacks = open_region(region)
+    probs: dict[str, list[np.ndarray]] = {"model": [], "trees": [], "breakpoint": []}
+    truth_label, truth_year = [], []
+    map_seconds = {"model": 0.0, "trees": 0.0, "breakpoint": 0.0}
+    for st, tile in zip(stacks, region.tiles, strict=True):
+        t0 = time.perf_counter()
+        tp = predict_tile(artefact, st, window=cfg.window, progress=cfg.progress)
+        map_seconds["model"] += time.perf_counter() - t0
+        probs["model"].append(tp.probs.reshape(-1, outcomes.size))
+        x, v = tile_series(st, list(cfg.region.bands), list(cfg.samples.indices))
+        t0 = time.perf_counter()
+        probs["trees"].append(trees.predict_proba(annual_features(x, v, date_year, ny, samples.channels)))
+        map_seconds["trees"] += time.perf_counter() - t0
+        t0 = time.perf_counter()
+        n_, s_ = BreakRule.series(x, v, date_year, ny, samples.channels)
+        probs["breakpoint"].append(rule.predict_proba(n_, s_, outcomes))
+        map_seconds["breakpoint"] += time.perf_counter() - t0
+        cls, onset = _truth(tile)
+        truth_label.append(cls.ravel())
+        truth_year.append(onset.ravel())
+    true_label = np.concatenate(truth_label)
+    true_year = np.concatenate(truth_year)
+    train_prior = np.asarray(artefact.card.calibration.train_prior)
+    seconds = {"model": model_seconds, "trees": trees_seconds, "breakpoint": rule_seconds}
+    for name, parts in probs.items():
+        p = np.concatenate(parts)
+        extra: dict[str, Any] = {}
+        if cfg.prior_adjust and name != "breakpoint":
+            raw = summarise(p, outcomes.years, cutoff_year=cfg.calibration.cutoff_year, level=cfg.calibration.interval_level)
+            extra["ece_without_prior_adjust"] = map_scores(raw, true_label, true_year)["ece"]
+            p, est = adjust_priors(p, train_prior)
+            extra["estimated_conversion_share"] = round(float(est[3:].sum()), 4)
+        summ = summarise(p, outcomes.years, cutoff_year=cfg.calibration.cutoff_year, level=cfg.calibration.interval_level)
+        sc = map_scores(summ, true_label, true_year, has_interval=name != "breakpoint", has_probability=name != "breakpoint")
+        sc.update(extra)
+        sc["train_seconds"] = round(seconds[name], 1)
+        sc["map_seconds"] = round(map_seconds[name], 1)
+        sc["n_train_labels"] = len(train)
+        results[name] = sc
+    results["model"]["members"] = len(artefact.members)
+    results["model"]["temperature"] = round(artefact.card.calibration.temperature, 4)
+    results["model"]["test_split"] = trained.metrics.get("test")
+    results["breakpoint"]["params"] = rule.params_
+    report = {
+        "eval_region": {"name": region.name, "seed": cfg.eval_sim.seed, "tiles": len(stacks), "pixels": int(true_label.size), "true_conversion_share": round(float((true_label == 2).mean()), 4)},
+        "train_region": cfg.region.name,
+        "labels_fingerprint": labels.fingerprint,
+        "prior_adjust": cfg.prior_adjust,
+        "threads": torch.get_num_threads(),
+        "methods": results,
+    }
+    out = Path(cfg.out)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmpf = out.with_name(out.name + ".partial")
+    tmpf.write_text(json.dumps(report, indent=2) + "\n")
+    os.replace(tmpf, out)
+    return report

@@ -1,0 +1,108 @@
+"""Run an exported model over whole tiles, window by window.
+
+The network is fully convolutional in space (see :mod:`plantation.model`):
+each window is read with a halo of ``(k − 1) / 2`` pixels, so every pixel
+gets exactly the neighbourhood it would get as a training patch, and window
+seams leave no trace.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from dataclasses import dataclass
+
+import numpy as np
+import torch
+
+from plantation.artefact import Artefact
+from plantation.calibration import mutual_information
+from plantation.errors import RegionError
+from plantation.region import TileStack
+from plantation.samples import features
+
+
+@dataclass
+class TileProbabilities:
+    """Calibrated outcome probabilities of every pixel of a tile.
+
+    Attributes:
+        probs: float32 (y, x, outcomes), rows sum to one.
+        epistemic: float32 (y, x), ensemble mutual information in nats
+            (0 for a single member).
+        clear: int16 (y, x), number of dates on which the pixel was observed.
+    """
+
+    probs: np.ndarray
+    epistemic: np.ndarray
+    clear: np.ndarray
+
+
+def windows(height: int, width: int, size: int) -> Iterator[tuple[int, int, int, int]]:
+    """(row, col, h, w) of the windows covering a grid, row-major."""
+    for r in range(0, height, size):
+        for c in range(0, width, size):
+            yield r, c, min(size, height - r), min(size, width - c)
+
+
+def check_compatible(art: Artefact, stack: TileStack) -> None:
+    """The tile must have the model's dates and bands.
+
+    Raises:
+        RegionError: dates or band roles differ, naming the first difference.
+    """
+    dates = [str(d) for d in stack.dates]
+    if dates != art.card.dates:
+        diff = next((i for i, (a, b) in enumerate(zip(dates, art.card.dates, strict=False)) if a != b), min(len(dates), len(art.card.dates)))
+        have = dates[diff] if diff < len(dates) else "none"
+        want = art.card.dates[diff] if diff < len(art.card.dates) else "none"
+        raise RegionError(f"tile {stack.name!r}: date {diff + 1} is {have}, the model was trained with {want}; map with the model's dates ({len(art.card.dates)} dates)")
+    bands = [str(b) for b in stack.reflectance["band"].values]
+    if bands != art.card.bands:
+        raise RegionError(f"tile {stack.name!r}: bands {bands} differ from the model's {art.card.bands}")
+
+
+def read_window(stack: TileStack, r0: int, c0: int, h: int, w: int, halo: int) -> tuple[np.ndarray, np.ndarray]:
+    """Reflectance (time, band, h + 2·halo, w + 2·halo) and validity, NaN / False outside the tile."""
+    H, W = stack.grid.height, stack.grid.width
+    rs, re_ = max(r0 - halo, 0), min(r0 + h + halo, H)
+    cs, ce = max(c0 - halo, 0), min(c0 + w + halo, W)
+    refl = stack.reflectance.isel(y=slice(rs, re_), x=slice(cs, ce)).values.astype(np.float32)
+    valid = stack.valid.isel(y=slice(rs, re_), x=slice(cs, ce)).values.astype(bool)
+    pad = ((rs - (r0 - halo)), ((r0 + h + halo) - re_), (cs - (c0 - halo)), ((c0 + w + halo) - ce))
+    if any(pad):
+        refl = np.pad(refl, ((0, 0), (0, 0), pad[:2], pad[2:]), constant_values=np.nan)
+        valid = np.pad(valid, ((0, 0), pad[:2], pad[2:]), constant_values=False)
+    return refl, valid
+
+
+def predict_tile(art: Artefact, stack: TileStack, *, window: int = 128, progress: bool = False) -> TileProbabilities:
+    """Calibrated outcome probabilities for every pixel of ``stack``.
+
+    Memory per window is about time × channels × (window + 2·halo)² × 4 bytes
+    for the inputs plus the GRU states of window² pixels.
+    """
+    check_compatible(art, stack)
+    H, W = stack.grid.height, stack.grid.width
+    halo = art.members[0].halo
+    n_out = art.members[0].n_outcomes
+    probs = np.zeros((H, W, n_out), np.float32)
+    epi = np.zeros((H, W), np.float32)
+    clear = np.zeros((H, W), np.int16)
+    wins = list(windows(H, W, window))
+    it = wins
+    if progress:
+        from tqdm import tqdm
+
+        it = tqdm(wins, desc=f"tile {stack.name}", unit="window")
+    for r0, c0, h, w in it:
+        refl, valid = read_window(stack, r0, c0, h, w, halo)
+        x = torch.from_numpy(features(refl, art.card.bands, art.card.indices))
+        v = torch.from_numpy(valid)
+        with torch.inference_mode():
+            z = torch.stack([m.forward_window(x, v) for m in art.members])  # (m, h, w, o)
+            lp = art.calibrated_log_probs(z)
+        probs[r0 : r0 + h, c0 : c0 + w] = lp.exp().numpy()
+        if len(art.members) > 1:
+            epi[r0 : r0 + h, c0 : c0 + w] = mutual_information(torch.softmax(z, -1).numpy())
+        clear[r0 : r0 + h, c0 : c0 + w] = valid[:, halo : halo + h, halo : halo + w].sum(0)
+    return TileProbabilities(probs, epi, clear)

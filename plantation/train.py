@@ -1,0 +1,432 @@
+"""Training: samples → a calibrated ensemble of networks → an exported artefact.
+
+``run(cfg)`` is the whole job behind ``scripts/train.py``:
+
+1. open the region and its labels, build neighbourhood samples and the
+   spatial train / validation / test split (:mod:`plantation.samples`);
+2. train ``model.members`` networks from different seeds (a small deep
+   ensemble, Lakshminarayanan et al. 2017), each with early stopping on the
+   validation loss;
+3. fit the temperature on the validation split and, optionally, a
+   split-conformal threshold on it (:mod:`plantation.calibration`);
+4. score the test split and write the run folder.
+
+Class imbalance: each outcome's loss weight is (n_outcome)^−½, normalised
+to mean one over the samples, so rare years and classes count more without
+letting a handful of points dominate. The weights are divided back out before
+calibration, so probabilities refer to the sample's frequencies.
+
+Label noise: ``training.loss=gce`` uses the generalised cross-entropy of
+Zhang & Sabuncu (2018, NeurIPS), (1 − p_y^q) / q, which bounds the pull of a
+mislabelled point; ``ce`` (the default) is plain cross-entropy.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import os
+import shutil
+import time
+import warnings
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+import lightning as L
+import numpy as np
+import torch
+from torch import nn
+from torch.utils.data import DataLoader, TensorDataset
+
+from plantation import __version__, calibration
+from plantation.artefact import Calibration, ModelCard, calibrated_log_probs
+from plantation.artefact import save as save_artefact
+from plantation.config import CalibrationConfig, ModelConfig, RegionConfig, SamplesConfig, SplitConfig, TrainerConfig, TrainingConfig
+from plantation.errors import ConfigError
+from plantation.labels import LabelSet, read_labels
+from plantation.model import ConvRecurrentNet
+from plantation.outcomes import summarise
+from plantation.region import TileStack, open_region
+from plantation.samples import SPLITS, SampleSet, build_samples, day_of_year_fraction, year_of
+
+log = logging.getLogger(__name__)
+
+
+@dataclass
+class TrainConfig:
+    """Schema of ``configs/train.yaml``."""
+
+    region: RegionConfig = field(default_factory=RegionConfig)
+    samples: SamplesConfig = field(default_factory=SamplesConfig)
+    split: SplitConfig = field(default_factory=SplitConfig)
+    model: ModelConfig = field(default_factory=ModelConfig)
+    training: TrainingConfig = field(default_factory=TrainingConfig)
+    trainer: TrainerConfig = field(default_factory=TrainerConfig)
+    calibration: CalibrationConfig = field(default_factory=CalibrationConfig)
+    out_dir: str = "outputs/train"
+    run_name: str = "run"
+
+
+def check_config(cfg: TrainConfig) -> None:
+    """Reject values no training could use, naming the key."""
+    t = cfg.training
+    if t.loss not in ("ce", "gce"):
+        raise ConfigError(f"training.loss: {t.loss!r} is not one of ['ce', 'gce']")
+    if t.class_weighting not in ("inverse_sqrt", "none"):
+        raise ConfigError(f"training.class_weighting: {t.class_weighting!r} is not one of ['inverse_sqrt', 'none']")
+    if not 0 < t.gce_q <= 1:
+        raise ConfigError(f"training.gce_q: {t.gce_q!r} must be in (0, 1]")
+    if not 0 <= t.date_dropout < 1:
+        raise ConfigError(f"training.date_dropout: {t.date_dropout!r} must be in [0, 1)")
+    for key, val in (("training.max_epochs", t.max_epochs), ("training.batch_size", t.batch_size), ("model.members", cfg.model.members), ("model.hidden", cfg.model.hidden)):
+        if val < 1:
+            raise ConfigError(f"{key}: {val!r} must be at least 1")
+    if not 0 < cfg.calibration.interval_level < 1:
+        raise ConfigError(f"calibration.interval_level: {cfg.calibration.interval_level!r} must be in (0, 1)")
+    a = cfg.calibration.conformal_alpha
+    if a is not None and not 0 < a < 1:
+        raise ConfigError(f"calibration.conformal_alpha: {a!r} must be in (0, 1) or null")
+
+
+def outcome_weights(targets: np.ndarray, n_outcomes: int, scheme: str) -> np.ndarray:
+    """Per-outcome loss weights (float64, (n_outcomes,)), mean one over ``targets``.
+
+    ``inverse_sqrt``: w ∝ n^−½ (outcomes absent from the sample get the
+    weight of a single sample); ``none``: all ones.
+    """
+    if scheme == "none":
+        return np.ones(n_outcomes)
+    n = np.bincount(targets, minlength=n_outcomes).astype(np.float64)
+    w = 1.0 / np.sqrt(np.maximum(n, 1.0))
+    return w / (w[targets].mean())
+
+
+def feature_statistics(samples: SampleSet) -> tuple[np.ndarray, np.ndarray]:
+    """Mean and standard deviation per channel over valid observations (float64)."""
+    x = np.moveaxis(samples.x, 2, -1)  # (n, t, k, k, c)
+    v = samples.valid
+    vals = x[v]
+    mean = np.nanmean(vals, 0)
+    std = np.nanstd(vals, 0)
+    return mean, np.where(std > 1e-6, std, 1.0)
+
+
+class ConversionTask(L.LightningModule):
+    """Loss, optimiser and augmentation around a :class:`ConvRecurrentNet`.
+
+    Built from plain values (``net`` holds the network's constructor
+    arguments), so a checkpoint reloads with ``load_from_checkpoint`` alone.
+    """
+
+    def __init__(
+        self,
+        net: dict[str, Any],
+        *,
+        loss_weights: list[float],
+        lr: float = 3e-3,
+        weight_decay: float = 1e-4,
+        loss: str = "ce",
+        gce_q: float = 0.7,
+        augment: bool = True,
+        date_dropout: float = 0.1,
+        max_epochs: int = 40,
+    ) -> None:
+        super().__init__()
+        self.save_hyperparameters()
+        self.net = ConvRecurrentNet(**net)
+        self.register_buffer("loss_weights", torch.as_tensor(loss_weights, dtype=torch.float32))
+
+    def forward(self, x: torch.Tensor, valid: torch.Tensor) -> torch.Tensor:
+        return self.net(x, valid)
+
+    def _augment(self, x: torch.Tensor, valid: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        # The landscape has no preferred orientation: rotate and mirror whole
+        # neighbourhoods. Hiding extra dates imitates a cloudier year.
+        k = int(torch.randint(0, 4, ()).item())
+        x = torch.rot90(x, k, (-2, -1))
+        valid = torch.rot90(valid, k, (-2, -1))
+        if torch.rand(()) < 0.5:
+            x, valid = x.flip(-1), valid.flip(-1)
+        p = self.hparams["date_dropout"]
+        if p > 0:
+            keep = torch.rand(valid.shape[:2], device=valid.device) >= p
+            valid = valid & keep[:, :, None, None]
+        return x, valid
+
+    def _loss(self, logits: torch.Tensor, y: torch.Tensor) -> torch.Tensor:
+        w = self.loss_weights[y]
+        if self.hparams["loss"] == "gce":
+            q = self.hparams["gce_q"]
+            py = torch.softmax(logits, -1).gather(1, y[:, None]).squeeze(1).clamp_min(1e-7)
+            per = (1 - py**q) / q
+        else:
+            per = nn.functional.cross_entropy(logits, y, reduction="none")
+        return (w * per).sum() / w.sum()
+
+    def _step(self, batch: tuple[torch.Tensor, ...], stage: str) -> torch.Tensor:
+        x, valid, y = batch
+        if stage == "train" and self.hparams["augment"]:
+            x, valid = self._augment(x, valid)
+        logits = self.net(x, valid)
+        loss = self._loss(logits, y)
+        acc = (logits.argmax(-1) == y).float().mean()
+        self.log(f"{stage}_loss", loss, prog_bar=True, on_epoch=True, on_step=False, batch_size=len(y), sync_dist=stage != "train")
+        self.log(f"{stage}_acc", acc, prog_bar=stage == "val", on_epoch=True, on_step=False, batch_size=len(y), sync_dist=stage != "train")
+        return loss
+
+    def training_step(self, batch: tuple[torch.Tensor, ...], batch_idx: int) -> torch.Tensor:
+        return self._step(batch, "train")
+
+    def validation_step(self, batch: tuple[torch.Tensor, ...], batch_idx: int) -> torch.Tensor:
+        return self._step(batch, "val")
+
+    def configure_optimizers(self) -> Any:
+        opt = torch.optim.AdamW(self.parameters(), lr=self.hparams["lr"], weight_decay=self.hparams["weight_decay"])
+        sched = torch.optim.lr_scheduler.CosineAnnealingLR(opt, T_max=max(1, self.hparams["max_epochs"]))
+        return {"optimizer": opt, "lr_scheduler": sched}
+
+
+class SampleDataModule(L.LightningDataModule):
+    """Pre-built tensors of the train and validation splits.
+
+    ``num_workers`` is 0 on purpose: the samples are already in memory and a
+    worker process per loader costs more than it saves for a model this small.
+    """
+
+    def __init__(self, samples: SampleSet, batch_size: int) -> None:
+        super().__init__()
+        self.samples = samples
+        self.batch_size = batch_size
+
+    @staticmethod
+    def tensors(s: SampleSet) -> TensorDataset:
+        return TensorDataset(torch.from_numpy(s.x), torch.from_numpy(s.valid), torch.from_numpy(s.target))
+
+    def train_dataloader(self) -> DataLoader:
+        return DataLoader(self.tensors(self.samples.part("train")), batch_size=self.batch_size, shuffle=True, drop_last=True)
+
+    def val_dataloader(self) -> DataLoader:
+        return DataLoader(self.tensors(self.samples.part("val")), batch_size=256)
+
+
+def network_spec(samples: SampleSet, cfg: TrainConfig) -> dict[str, Any]:
+    """Constructor arguments of the network (plain lists and numbers, for JSON and checkpoints)."""
+    mean, std = feature_statistics(samples.part("train"))
+    years = year_of(samples.dates)
+    return {
+        "n_channels": len(samples.channels),
+        "date_year": (years - years.min()).tolist(),
+        "day_of_year": [float(v) for v in day_of_year_fraction(samples.dates)],
+        "neighbourhood": cfg.samples.neighbourhood,
+        "conv_width": cfg.model.conv_width,
+        "hidden": cfg.model.hidden,
+        "dropout": cfg.model.dropout,
+        "mean": [float(v) for v in mean],
+        "std": [float(v) for v in std],
+    }
+
+
+def member_logits(nets: list[ConvRecurrentNet], s: SampleSet, batch: int = 512) -> torch.Tensor:
+    """(members, n, outcomes) logits of samples, networks in eval mode."""
+    out = []
+    with torch.inference_mode():
+        for net in nets:
+            net.eval()
+            parts = [net(torch.from_numpy(s.x[i : i + batch]), torch.from_numpy(s.valid[i : i + batch])) for i in range(0, len(s), batch)]
+            out.append(torch.cat(parts))
+    return torch.stack(out)
+
+
+def make_trainer(cfg: TrainerConfig, max_epochs: int, patience: int, folder: Path, member: int) -> L.Trainer:
+    """A Lightning trainer with early stopping and a best-validation checkpoint."""
+    from lightning.pytorch.callbacks import EarlyStopping, ModelCheckpoint
+    from lightning.pytorch.loggers import CSVLogger
+
+    ckpt = ModelCheckpoint(dirpath=folder / "checkpoints", filename=f"member{member}", monitor="val_loss", mode="min", save_top_k=1, enable_version_counter=False)
+    strategy: Any = cfg.strategy
+    if strategy == "ddp":
+        from lightning.pytorch.strategies import DDPStrategy
+
+        strategy = DDPStrategy(process_group_backend="gloo")
+    return L.Trainer(
+        accelerator=cfg.accelerator,
+        devices=cfg.devices,
+        num_nodes=cfg.num_nodes,
+        strategy=strategy,
+        precision=cfg.precision,  # type: ignore[arg-type]
+        max_epochs=max_epochs,
+        callbacks=[ckpt, EarlyStopping(monitor="val_loss", mode="min", patience=patience)],
+        logger=CSVLogger(folder, name="logs", version=f"member{member}"),
+        enable_progress_bar=cfg.enable_progress_bar,
+        enable_model_summary=False,
+        log_every_n_steps=cfg.log_every_n_steps,
+        limit_train_batches=cfg.limit_train_batches,
+        deterministic=True,
+    )
+
+
+@dataclass
+class TrainedModel:
+    """Result of :func:`fit`: networks, calibration, and what was measured."""
+
+    members: list[ConvRecurrentNet]
+    spec: dict[str, Any]
+    calibration: Calibration
+    metrics: dict[str, Any]
+    is_global_zero: bool = True
+
+
+def fit(samples: SampleSet, cfg: TrainConfig, folder: Path) -> TrainedModel:
+    """Train the ensemble on ``samples`` (split already assigned) and calibrate it.
+
+    Checkpoints and logs go under ``folder``.
+    """
+    check_config(cfg)
+    train, val = samples.part("train"), samples.part("val")
+    if len(train) < cfg.training.batch_size or len(val) == 0:
+        raise ConfigError(
+            f"split: {len(train)} training and {len(val)} validation samples; need at least training.batch_size={cfg.training.batch_size} and one (lower split.block or change split.shares)"
+        )
+    n_out = samples.outcomes.size
+    weights = outcome_weights(train.target, n_out, cfg.training.class_weighting)
+    spec = network_spec(samples, cfg)
+    nets: list[ConvRecurrentNet] = []
+    epochs: list[int] = []
+    start = time.perf_counter()
+    is_zero = True
+    for m in range(cfg.model.members):
+        L.seed_everything(cfg.training.seed * 1000 + m, workers=True, verbose=False)
+        t = cfg.training
+        task = ConversionTask(
+            spec, loss_weights=weights.tolist(), lr=t.lr, weight_decay=t.weight_decay, loss=t.loss, gce_q=t.gce_q, augment=t.augment, date_dropout=t.date_dropout, max_epochs=t.max_epochs
+        )
+        trainer = make_trainer(cfg.trainer, cfg.training.max_epochs, cfg.training.patience, folder, m)
+        with warnings.catch_warnings():
+            # One small in-memory dataset: Lightning's advice to add loader workers does not apply.
+            warnings.filterwarnings("ignore", message=".*does not have many workers.*")
+            warnings.filterwarnings("ignore", message=".*number of training batches.*")
+            trainer.fit(task, SampleDataModule(samples, cfg.training.batch_size))
+        is_zero = trainer.is_global_zero
+        best = trainer.checkpoint_callback.best_model_path if trainer.checkpoint_callback else ""
+        if best and Path(best).is_file():
+            state = torch.load(best, map_location="cpu", weights_only=True)["state_dict"]
+            task.load_state_dict(state)
+        epochs.append(int(trainer.current_epoch))
+        nets.append(task.net.eval())
+    train_seconds = time.perf_counter() - start
+
+    prior = np.bincount(train.target, minlength=n_out).astype(np.float64)
+    prior = np.maximum(prior, 0.5) / np.maximum(prior, 0.5).sum()
+    cal = Calibration(temperature=1.0, loss_weights=weights.tolist(), train_prior=prior.tolist())
+    val_logits = member_logits(nets, val)
+    uncal = calibrated_log_probs(val_logits, cal).numpy()
+    cal.temperature = calibration.fit_temperature(uncal, val.target)
+    val_lp = calibrated_log_probs(val_logits, cal).numpy()
+    if cfg.calibration.conformal_alpha is not None:
+        cal.conformal_alpha = cfg.calibration.conformal_alpha
+        cal.conformal_qhat = calibration.conformal_threshold(np.exp(val_lp), val.target, cfg.calibration.conformal_alpha)
+    metrics: dict[str, Any] = {
+        "train_seconds": round(train_seconds, 1),
+        "epochs": epochs,
+        "temperature": round(cal.temperature, 4),
+        "val_nll_before_temperature": round(calibration.nll(uncal, val.target), 4),
+        "val_nll": round(calibration.nll(val_lp, val.target), 4),
+    }
+    test = samples.part("test")
+    if len(test):
+        metrics["test"] = score_samples(nets, cal, test, cfg.calibration)
+    return TrainedModel(nets, spec, cal, metrics, is_zero)
+
+
+def score_samples(nets: list[ConvRecurrentNet], cal: Calibration, s: SampleSet, cc: CalibrationConfig) -> dict[str, Any]:
+    """Label-sample metrics (the sample is stratified, so these are not map accuracies)."""
+    probs = np.exp(calibrated_log_probs(member_logits(nets, s), cal).numpy())
+    years = s.outcomes.years
+    summ = summarise(probs, years, cutoff_year=cc.cutoff_year, level=cc.interval_level)
+    true_label = s.outcomes.label_code(s.target)
+    true_year = s.outcomes.onset_year(s.target)
+    conv = true_label == 2
+    hit = conv & (summ.label == 2)
+    out: dict[str, Any] = {
+        "n": len(s),
+        "label_accuracy": round(float((summ.label == true_label).mean()), 4),
+        "nll": round(float(-np.log(np.clip(probs[np.arange(len(s)), s.target], 1e-12, 1)).mean()), 4),
+        "conversion_recall": round(float(hit.sum() / max(conv.sum(), 1)), 4),
+        "year_exact": round(float((hit & (summ.year == true_year)).sum() / max(conv.sum(), 1)), 4),
+        "interval_coverage": round(float((hit & (summ.year_low <= true_year) & (true_year <= summ.year_high)).sum() / max(conv.sum(), 1)), 4),
+        "ece_p_conversion": round(calibration.expected_calibration_error(summ.p_conversion, conv), 4),
+    }
+    if cal.conformal_qhat is not None:
+        sets = calibration.conformal_sets(probs, cal.conformal_qhat)
+        out["conformal_coverage"] = round(float(sets[np.arange(len(s)), s.target].mean()), 4)
+        out["conformal_mean_size"] = round(float(sets.sum(-1).mean()), 3)
+    return out
+
+
+def load_region_samples(cfg: TrainConfig) -> tuple[list[TileStack], LabelSet, SampleSet]:
+    """Open the region and labels of ``cfg`` and cut the samples."""
+    if not cfg.region.labels.path:
+        raise ConfigError(f"region {cfg.region.name!r}: labels.path is not set; training needs labelled points")
+    stacks = open_region(cfg.region)
+    labels = read_labels(cfg.region.labels.path, grids={s.name: s.grid for s in stacks}, years=[int(y) for y in stacks[0].years], csv_crs=cfg.region.labels.crs)
+    samples = build_samples(stacks, labels, bands=cfg.region.bands, index_names=cfg.samples.indices, k=cfg.samples.neighbourhood, block=cfg.split.block, shares=cfg.split.shares, seed=cfg.split.seed)
+    return stacks, labels, samples
+
+
+def model_card(cfg: TrainConfig, samples: SampleSet, trained: TrainedModel, labels: LabelSet) -> ModelCard:
+    return ModelCard(
+        bands=list(cfg.region.bands),
+        indices=[n.upper() for n in cfg.samples.indices],
+        scaling=[asdict(r) for r in cfg.region.scaling],
+        dates=[str(d) for d in samples.dates.astype("datetime64[D]")],
+        years=list(samples.outcomes.years),
+        network=trained.spec,
+        members=len(trained.members),
+        calibration=trained.calibration,
+        cutoff_year=cfg.calibration.cutoff_year,
+        interval_level=cfg.calibration.interval_level,
+        region=cfg.region.name,
+        labels_fingerprint=labels.fingerprint,
+        package_version=__version__,
+    )
+
+
+def run(cfg: TrainConfig, resolved_config: str | None = None) -> Path:
+    """Train on a region and write the run folder ``<out_dir>/<run_name>``.
+
+    The folder holds ``config.yaml`` (resolved), ``labels.json`` (fingerprint,
+    counts, split sizes), ``metrics.json``, ``checkpoints/member<i>.ckpt``,
+    ``logs/`` (CSV per member) and the artefact ``model/`` (see
+    :mod:`plantation.artefact`). It is built as ``<run_name>.partial`` and
+    renamed when complete; an earlier run of the same name is replaced.
+    """
+    check_config(cfg)
+    if cfg.training.threads > 0:
+        torch.set_num_threads(cfg.training.threads)
+    elif cfg.trainer.devices > 1:
+        # Processes on one machine share its cores (see DEVELOPERS.md).
+        torch.set_num_threads(max(1, (os.cpu_count() or 1) // cfg.trainer.devices))
+    _, labels, samples = load_region_samples(cfg)
+    final = Path(cfg.out_dir) / cfg.run_name
+    work = final.with_name(final.name + ".partial")
+    rank = int(os.environ.get("LOCAL_RANK", "0")) + int(os.environ.get("NODE_RANK", "0"))
+    if rank == 0 and work.exists() and os.environ.get("PLANTATION_RUN_STARTED") != str(work):
+        shutil.rmtree(work)
+    # Processes started by DDP re-run this script: they must not wipe the folder.
+    os.environ["PLANTATION_RUN_STARTED"] = str(work)
+    work.mkdir(parents=True, exist_ok=True)
+    trained = fit(samples, cfg, work)
+    if not trained.is_global_zero:
+        return final
+    split_counts = {name: int((samples.split == i).sum()) for i, name in enumerate(SPLITS)}
+    split_counts["dropped_buffer"] = int((samples.split == -1).sum())
+    (work / "labels.json").write_text(json.dumps({"path": str(labels.path), "fingerprint": labels.fingerprint, "counts": labels.counts(), "split": split_counts}, indent=2))
+    (work / "metrics.json").write_text(json.dumps(trained.metrics, indent=2))
+    if resolved_config is not None:
+        (work / "config.yaml").write_text(resolved_config)
+    save_artefact(work / "model", model_card(cfg, samples, trained, labels), trained.members)
+    if final.exists():
+        shutil.rmtree(final)
+    os.replace(work, final)
+    return final

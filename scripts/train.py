@@ -1,0 +1,22 @@
+"""Train a conversion-year model: `python scripts/train.py region=toy`."""
+
+import hydra
+from omegaconf import DictConfig, OmegaConf
+
+from plantation.cli import guarded
+from plantation.config import register_configs, to_object
+
+register_configs()
+
+
+@hydra.main(version_base="1.3", config_path="../configs", config_name="train")
+@guarded
+def main(cfg: DictConfig) -> None:
+    from plantation.train import TrainConfig, run
+
+    out = run(to_object(cfg, TrainConfig), resolved_config=OmegaConf.to_yaml(cfg, resolve=True))
+    print(f"model written to {out}/model (metrics in {out}/metrics.json)")
+
+
+if __name__ == "__main__":
+    main()

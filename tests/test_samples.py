@@ -1,0 +1,84 @@
+"""Neighbourhood samples and spatial splits on tiny regions."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from plantation.errors import ConfigError
+from plantation.labels import read_labels
+from plantation.region import open_region
+from plantation.samples import build_samples, day_of_year_fraction, features, read_patches, spatial_split
+from tests.conftest import BANDS, pixel_centre
+
+
+def test_day_of_year_fraction():
+    d = np.array(["2015-01-01", "2015-07-02", "2016-12-31"], dtype="datetime64[D]")
+    np.testing.assert_allclose(day_of_year_fraction(d), [0.0, 182 / 365, 365 / 366], rtol=1e-6)
+
+
+def test_features_add_indices_and_keep_nan():
+    r = np.full((1, 6, 1, 2), 0.1, np.float32)
+    r[0, 3] = 0.5  # nir
+    r[0, :, 0, 1] = np.nan
+    f = features(r, BANDS, ["NDVI", "NBR"])
+    assert f.shape == (1, 8, 1, 2)
+    assert f[0, 6, 0, 0] == pytest.approx((0.5 - 0.1) / 0.6)  # NDVI, red 0.1
+    assert np.isnan(f[0, :, 0, 1]).all()
+
+
+def test_patches_at_the_edge_are_invalid_outside_the_tile(make_region, tiny_values):
+    qa = np.zeros((5, 8, 8), np.int16)
+    qa[2, 0, 0] = 1  # cloud on date 3 at the corner
+    stack = open_region(make_region(qa=qa))[0]
+    refl, valid = read_patches(stack, np.array([0, 4]), np.array([0, 4]), 3)
+    assert refl.shape == (2, 5, 6, 3, 3) and valid.shape == (2, 5, 3, 3)
+    assert not valid[0, :, 0, :].any() and not valid[0, :, :, 0].any()  # row/col −1
+    assert not valid[0, 2, 1, 1] and valid[0, 1, 1, 1]
+    assert np.isnan(refl[0, 2, :, 1, 1]).all()
+    # Values are the stored integers × 1e-4 at the right pixels.
+    assert refl[1, 0, 3, 1, 2] == pytest.approx(tiny_values[0, 3, 4, 5] * 1e-4)
+    with pytest.raises(ConfigError, match="odd number"):
+        read_patches(stack, np.array([0]), np.array([0]), 4)
+
+
+def test_spatial_split_keeps_blocks_whole_and_buffers_neighbours():
+    rng = np.random.default_rng(0)
+    n = 600
+    tile = np.where(rng.random(n) < 0.5, "a", "b").astype(object)
+    row, col = rng.integers(0, 160, n), rng.integers(0, 160, n)
+    split = spatial_split(tile, row, col, block=32, shares=[0.6, 0.2, 0.2], k=5, seed=3)
+    key = [f"{t}/{r // 32}/{c // 32}" for t, r, c in zip(tile, row, col, strict=True)]
+    kept = split >= 0
+    for kk in set(key):
+        s = set(split[(np.array(key) == kk) & kept].tolist())
+        assert len(s) <= 1, f"block {kk} is split between {s}"
+    # No kept validation/test window overlaps a training window.
+    tr = kept & (split == 0)
+    for i in np.flatnonzero(kept & (split > 0)):
+        same = tr & (tile == tile[i])
+        assert not ((np.abs(row[same] - row[i]) < 5) & (np.abs(col[same] - col[i]) < 5)).any()
+    shares = np.bincount(split[kept], minlength=3) / kept.sum()
+    assert shares[0] == pytest.approx(0.6, abs=0.12)
+    # The same seed gives the same split; another seed another one.
+    assert np.array_equal(split, spatial_split(tile, row, col, block=32, shares=[0.6, 0.2, 0.2], k=5, seed=3))
+    assert not np.array_equal(split, spatial_split(tile, row, col, block=32, shares=[0.6, 0.2, 0.2], k=5, seed=4))
+    with pytest.raises(ConfigError, match="split.shares"):
+        spatial_split(tile, row, col, block=32, shares=[0.6, 0.6], k=5, seed=3)
+
+
+def test_build_samples_encodes_outcomes(make_region, tmp_path):
+    pts = [(1, 1, "stable_forest", ""), (2, 5, "conversion", 2016), (6, 6, "other", "")]
+    rows = [dict(zip(("x", "y"), pixel_centre(r, c), strict=True)) | {"label": lab, "onset_year": y} for r, c, lab, y in pts]
+    path = tmp_path / "labels.csv"
+    pd.DataFrame(rows).to_csv(path, index=False)
+    region = make_region(labels=path)
+    stacks = open_region(region)
+    labels = read_labels(path, grids={s.name: s.grid for s in stacks}, years=[2015, 2016, 2017], csv_crs=region.labels.crs)
+    s = build_samples(stacks, labels, bands=BANDS, index_names=["NDVI"], k=3, block=4, shares=[1.0, 0.0, 0.0], seed=0)
+    assert s.x.shape == (3, 5, 7, 3, 3)
+    order = np.argsort(s.row)
+    assert s.target[order].tolist() == [0, 3 + 1, 2]  # 2016 is the second year
+    assert s.outcomes.years == (2015, 2016, 2017)
+    assert s.channels == (*BANDS, "NDVI")
