@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import json
 import os
+import shutil
 import tempfile
 import time
 from dataclasses import asdict, dataclass, field, replace
@@ -53,10 +54,12 @@ class ComparisonConfig:
     calibration: CalibrationConfig = field(default_factory=CalibrationConfig)
     eval_sim: SimulationConfig = field(default_factory=SimulationConfig)
     eval_dir: str = "bench/cache/eval_region"
-    prior_adjust: bool = True
+    prior_adjust: bool = False
     window: int = 96
     out: str = "bench/results/accuracy.json"
     progress: bool = True
+    #: Also keep the trained model artefact here (None: discard it).
+    model_dir: str | None = None
     # Keys of the training config that the benchmark does not use.
     out_dir: str = "outputs/train"
     run_name: str = "run"
@@ -103,6 +106,35 @@ def _truth(tile: TileConfig) -> tuple[np.ndarray, np.ndarray]:
         return src.read(1), src.read(2)
 
 
+def conversion_observability(sim: SimulationConfig, stack: TileStack, tile: TileConfig) -> tuple[np.ndarray, np.ndarray]:
+    """Which truly converted pixels the imagery shows cleared: a ceiling for every method.
+
+    For each pixel, the first date after its clearing (from the simulated
+    landscape) on which it was observed clear. A conversion never seen
+    cleared cannot be detected; one whose first clear view after clearing
+    falls in a later year can only have its year inferred.
+
+    Returns:
+        (seen, first_view_in_onset_year): bool arrays of the tile's shape,
+        False outside true conversions.
+    """
+    from plantation.simulate import build_landscape, dates_of, decimal_year
+
+    land = build_landscape(sim)
+    t = np.array([decimal_year(d) for d in dates_of(sim)])
+    with rasterio.open(str(tile.truth)) as src:
+        cls, onset, parcel = src.read(1), src.read(2), src.read(5)
+    conv = cls == 2
+    after = stack.valid.values[:, conv] & (t[:, None] > land.t_event[parcel[conv]][None, :])
+    has = after.any(0)
+    first_year = np.floor(t[after.argmax(0)]).astype(int)
+    seen = np.zeros(cls.shape, bool)
+    in_year = np.zeros(cls.shape, bool)
+    seen[conv] = has
+    in_year[conv] = has & (first_year == onset[conv])
+    return seen, in_year
+
+
 def run(cfg: ComparisonConfig) -> dict[str, Any]:
     """Train, map and score the three methods; write ``cfg.out`` (JSON) atomically."""
     torch.set_num_threads(cfg.training.threads or (os.cpu_count() or 1))
@@ -120,6 +152,8 @@ def run(cfg: ComparisonConfig) -> dict[str, Any]:
         model_seconds = time.perf_counter() - t0
         art_io.save(Path(tmp) / "model", model_card(tc, samples, trained, labels), trained.members)
         artefact = art_io.load(Path(tmp) / "model")
+        if cfg.model_dir:
+            shutil.copytree(Path(tmp) / "model", cfg.model_dir, dirs_exist_ok=True)
 
     xs, vs = centre_series(train)
     t0 = time.perf_counter()
@@ -134,7 +168,7 @@ def run(cfg: ComparisonConfig) -> dict[str, Any]:
     region = eval_region_config(cfg.region, cfg.eval_sim, folder)
     stacks = open_region(region)
     probs: dict[str, list[np.ndarray]] = {"model": [], "trees": [], "breakpoint": []}
-    truth_label, truth_year = [], []
+    truth_label, truth_year, seen_parts, in_year_parts = [], [], [], []
     map_seconds = {"model": 0.0, "trees": 0.0, "breakpoint": 0.0}
     for st, tile in zip(stacks, region.tiles, strict=True):
         t0 = time.perf_counter()
@@ -152,20 +186,30 @@ def run(cfg: ComparisonConfig) -> dict[str, Any]:
         cls, onset = _truth(tile)
         truth_label.append(cls.ravel())
         truth_year.append(onset.ravel())
+        seen_t, in_year_t = conversion_observability(cfg.eval_sim, st, tile)
+        seen_parts.append(seen_t.ravel())
+        in_year_parts.append(in_year_t.ravel())
     true_label = np.concatenate(truth_label)
     true_year = np.concatenate(truth_year)
+    seen = np.concatenate(seen_parts)
+    n_conv = max(int((true_label == 2).sum()), 1)
     train_prior = np.asarray(artefact.card.calibration.train_prior)
     seconds = {"model": model_seconds, "trees": trees_seconds, "breakpoint": rule_seconds}
     for name, parts in probs.items():
         p = np.concatenate(parts)
         extra: dict[str, Any] = {}
-        if cfg.prior_adjust and name != "breakpoint":
-            raw = summarise(p, outcomes.years, cutoff_year=cfg.calibration.cutoff_year, level=cfg.calibration.interval_level)
-            extra["ece_without_prior_adjust"] = map_scores(raw, true_label, true_year)["ece"]
-            p, est = adjust_priors(p, train_prior)
-            extra["estimated_conversion_share"] = round(float(est[3:].sum()), 4)
+        if name != "breakpoint":
+            # Report the other choice of prior handling beside the chosen one.
+            p_adj, est = adjust_priors(p, train_prior)
+            other = summarise(p if cfg.prior_adjust else p_adj, outcomes.years, cutoff_year=cfg.calibration.cutoff_year, level=cfg.calibration.interval_level)
+            extra["ece_without_prior_adjust" if cfg.prior_adjust else "ece_with_prior_adjust"] = map_scores(other, true_label, true_year)["ece"]
+            extra["em_estimated_conversion_share"] = round(float(est[3:].sum()), 4)
+            if cfg.prior_adjust:
+                p = p_adj
         summ = summarise(p, outcomes.years, cutoff_year=cfg.calibration.cutoff_year, level=cfg.calibration.interval_level)
         sc = map_scores(summ, true_label, true_year, has_interval=name != "breakpoint", has_probability=name != "breakpoint")
+        seen_sc = map_scores(summ, np.where(seen | (true_label != 2), true_label, 0), np.where(seen, true_year, 0), has_interval=name != "breakpoint")
+        sc["on_conversions_seen_cleared"] = {k: seen_sc[k] for k in ("year_exact", "year_within1", "interval80_coverage")}
         sc.update(extra)
         sc["train_seconds"] = round(seconds[name], 1)
         sc["map_seconds"] = round(map_seconds[name], 1)
@@ -176,7 +220,18 @@ def run(cfg: ComparisonConfig) -> dict[str, Any]:
     results["model"]["test_split"] = trained.metrics.get("test")
     results["breakpoint"]["params"] = rule.params_
     report = {
-        "eval_region": {"name": region.name, "seed": cfg.eval_sim.seed, "tiles": len(stacks), "pixels": int(true_label.size), "true_conversion_share": round(float((true_label == 2).mean()), 4)},
+        "eval_region": {
+            "name": region.name,
+            "seed": cfg.eval_sim.seed,
+            "tiles": len(stacks),
+            "pixels": int(true_label.size),
+            "true_conversion_share": round(float((true_label == 2).mean()), 4),
+            "conversions_in_last_year": round(float(((true_label == 2) & (true_year == max(outcomes.years))).sum() / max((true_label == 2).sum(), 1)), 4),
+            # Shares of true conversions seen clear after clearing at all, and
+            # first seen so in the onset year: ceilings for every method.
+            "conversions_seen_cleared": round(float(seen.sum() / n_conv), 4),
+            "conversions_first_seen_in_onset_year": round(float(np.concatenate(in_year_parts).sum() / n_conv), 4),
+        },
         "train_region": cfg.region.name,
         "labels_fingerprint": labels.fingerprint,
         "prior_adjust": cfg.prior_adjust,

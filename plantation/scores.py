@@ -60,6 +60,11 @@ def map_scores(summary: Summary, true_label: np.ndarray, true_year: np.ndarray, 
         "n_pixels": int(lab.size),
         "n_true_conversions": int(conv.sum()),
     }
+    by_year = {}
+    for y in np.unique(yr[conv]):
+        m = conv & (yr == y)
+        by_year[str(int(y))] = round(float((hit[m] & (py[m] == y)).mean()), 4)
+    out["year_exact_by_onset_year"] = by_year
     if has_interval:
         lo = np.asarray(summary.year_low).ravel()
         hi = np.asarray(summary.year_high).ravel()

@@ -402,6 +402,9 @@ def run(cfg: TrainConfig, resolved_config: str | None = None) -> Path:
     renamed when complete; an earlier run of the same name is replaced.
     """
     check_config(cfg)
+    # Lightning's start-up notes (no GPU, logger tips) are noise on a CPU tool.
+    for name in ("lightning.pytorch", "lightning.fabric"):
+        logging.getLogger(name).setLevel(logging.WARNING)
     if cfg.training.threads > 0:
         torch.set_num_threads(cfg.training.threads)
     elif cfg.trainer.devices > 1:

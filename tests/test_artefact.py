@@ -1,0 +1,88 @@
+"""The exported model: safetensors + JSON round trip, refusals, and calibrated outputs."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+import torch
+
+from plantation import artefact
+from plantation.artefact import Calibration, ModelCard, calibrated_log_probs
+from plantation.errors import InputNotFoundError, PlantationError
+from plantation.model import ConvRecurrentNet
+
+SPEC = {"n_channels": 4, "date_year": [0, 0, 1, 1], "day_of_year": [0.1, 0.6, 0.1, 0.6], "neighbourhood": 3, "conv_width": 4, "hidden": 8, "dropout": 0.0}
+
+
+def _card(members: int = 2) -> ModelCard:
+    return ModelCard(
+        bands=["red", "nir"],
+        indices=["NDVI", "NBR"],
+        scaling=[{"start": None, "scale": 1e-4, "offset": 0.0}],
+        dates=["2015-02-01", "2015-08-01", "2016-02-01", "2016-08-01"],
+        years=[2015, 2016],
+        network=SPEC,
+        members=members,
+        calibration=Calibration(temperature=1.5, loss_weights=[1.0, 2.0, 1.0, 0.5, 0.5], train_prior=[0.4, 0.1, 0.2, 0.15, 0.15]),
+        cutoff_year=2015,
+        interval_level=0.8,
+        region="tiny",
+        labels_fingerprint="abc",
+        package_version="0",
+    )
+
+
+def _members(n: int = 2) -> list[ConvRecurrentNet]:
+    out = []
+    for i in range(n):
+        torch.manual_seed(i)
+        out.append(ConvRecurrentNet(**SPEC).eval())
+    return out
+
+
+def test_round_trip_gives_the_same_outputs(tmp_path):
+    nets = _members()
+    artefact.save(tmp_path / "m", _card(), nets)
+    assert {p.name for p in (tmp_path / "m").iterdir()} == {"model.safetensors", "model.json"}
+    art = artefact.load(tmp_path / "m")
+    x = torch.randn(3, 4, 4, 3, 3)
+    v = torch.ones(3, 4, 3, 3, dtype=torch.bool)
+    with torch.no_grad():
+        ref = torch.stack([n(x, v) for n in nets])
+    torch.testing.assert_close(art.member_logits(x, v), ref)
+    assert art.card.calibration.temperature == 1.5 and art.card.years == [2015, 2016]
+
+
+def test_calibrated_probabilities_follow_the_formula():
+    z = torch.tensor([[[2.0, 0.0, 0.0, 1.0, -1.0]], [[0.0, 1.0, 0.0, 1.0, 0.0]]])  # (2 members, 1, 5)
+    cal = Calibration(temperature=2.0, loss_weights=[1.0, 2.0, 1.0, 0.5, 0.5])
+    mean_p = torch.softmax(z, -1).mean(0)
+    expected = torch.softmax((torch.log(mean_p) - torch.log(torch.tensor(cal.loss_weights))) / 2.0, -1)
+    torch.testing.assert_close(calibrated_log_probs(z, cal).exp(), expected)
+
+
+def test_refusals_name_the_file(tmp_path):
+    with pytest.raises(InputNotFoundError, match="model.json: model file not found"):
+        artefact.load(tmp_path)
+    artefact.save(tmp_path, _card(), _members())
+    meta = json.loads((tmp_path / "model.json").read_text())
+    (tmp_path / "model.json").write_text(json.dumps(meta | {"format": "other/9"}))
+    with pytest.raises(PlantationError, match="format 'other/9'"):
+        artefact.load(tmp_path)
+    (tmp_path / "model.json").write_text(json.dumps(meta | {"network": SPEC | {"hidden": 16}}))
+    with pytest.raises(PlantationError, match="member 0 does not match model.json"):
+        artefact.load(tmp_path)
+    (tmp_path / "model.json").write_text("{not json")
+    with pytest.raises(PlantationError, match="not valid JSON"):
+        artefact.load(tmp_path)
+
+
+def test_weights_file_holds_no_pickle(tmp_path):
+    artefact.save(tmp_path, _card(1), _members(1))
+    raw = (tmp_path / "model.safetensors").read_bytes()
+    header_len = int(np.frombuffer(raw[:8], dtype="<u8")[0])
+    header = json.loads(raw[8 : 8 + header_len])  # the safetensors layout: a JSON header, then raw tensors
+    assert header["__metadata__"]["format"] == artefact.FORMAT
+    assert any(k.startswith("member0.gru.") for k in header)
