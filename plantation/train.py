@@ -243,6 +243,9 @@ def make_trainer(cfg: TrainerConfig, max_epochs: int, patience: int, folder: Pat
     from lightning.pytorch.callbacks import EarlyStopping, ModelCheckpoint
     from lightning.pytorch.loggers import CSVLogger
 
+    # Lightning's start-up notes (no GPU, logger tips) are noise on a CPU tool.
+    for name in ("lightning.pytorch", "lightning.fabric"):
+        logging.getLogger(name).setLevel(logging.WARNING)
     ckpt = ModelCheckpoint(dirpath=folder / "checkpoints", filename=f"member{member}", monitor="val_loss", mode="min", save_top_k=1, enable_version_counter=False)
     strategy: Any = cfg.strategy
     if strategy == "ddp":
@@ -306,6 +309,8 @@ def fit(samples: SampleSet, cfg: TrainConfig, folder: Path) -> TrainedModel:
             # One small in-memory dataset: Lightning's advice to add loader workers does not apply.
             warnings.filterwarnings("ignore", message=".*does not have many workers.*")
             warnings.filterwarnings("ignore", message=".*number of training batches.*")
+            # Members share one checkpoint folder, each with its own file name.
+            warnings.filterwarnings("ignore", message=".*exists and is not empty.*")
             trainer.fit(task, SampleDataModule(samples, cfg.training.batch_size))
         is_zero = trainer.is_global_zero
         best = trainer.checkpoint_callback.best_model_path if trainer.checkpoint_callback else ""
@@ -402,9 +407,6 @@ def run(cfg: TrainConfig, resolved_config: str | None = None) -> Path:
     renamed when complete; an earlier run of the same name is replaced.
     """
     check_config(cfg)
-    # Lightning's start-up notes (no GPU, logger tips) are noise on a CPU tool.
-    for name in ("lightning.pytorch", "lightning.fabric"):
-        logging.getLogger(name).setLevel(logging.WARNING)
     if cfg.training.threads > 0:
         torch.set_num_threads(cfg.training.threads)
     elif cfg.trainer.devices > 1:
