@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 import subprocess
 import sys
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -87,7 +88,7 @@ def test_train_script_writes_a_complete_run(tmp_path):
     cfg = OmegaConf.load(run / "config.yaml")
     region = to_object(cfg.region, RegionConfig)
     stack = open_region(region)[0]
-    corner = type(stack)(stack.name, stack.reflectance.isel(y=slice(0, 20), x=slice(0, 24)), stack.valid.isel(y=slice(0, 20), x=slice(0, 24)), stack.grid)
+    corner = type(stack)(stack.name, stack.reflectance.isel(y=slice(0, 20), x=slice(0, 24)), stack.valid.isel(y=slice(0, 20), x=slice(0, 24)), replace(stack.grid, height=20, width=24))
     tp = predict_tile(art, corner, window=16)
     assert tp.probs.shape == (20, 24, 15)
     np.testing.assert_allclose(tp.probs.sum(-1), 1.0, atol=1e-5)
