@@ -119,8 +119,8 @@ class TrainingConfig:
     """Optimisation."""
 
     seed: int = 0
-    max_epochs: int = 30
-    patience: int = 6
+    max_epochs: int = 40
+    patience: int = 10
     batch_size: int = 64
     lr: float = 3e-3
     weight_decay: float = 1e-4

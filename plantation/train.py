@@ -309,6 +309,8 @@ def fit(samples: SampleSet, cfg: TrainConfig, folder: Path) -> TrainedModel:
             # One small in-memory dataset: Lightning's advice to add loader workers does not apply.
             warnings.filterwarnings("ignore", message=".*does not have many workers.*")
             warnings.filterwarnings("ignore", message=".*number of training batches.*")
+            # A deprecation inside Lightning itself, about torch's pytree API.
+            warnings.filterwarnings("ignore", message=".*treespec, LeafSpec.*")
             # Members share one checkpoint folder, each with its own file name.
             warnings.filterwarnings("ignore", message=".*exists and is not empty.*")
             trainer.fit(task, SampleDataModule(samples, cfg.training.batch_size))

@@ -1,5 +1,7 @@
 """Train a conversion-year model: `python scripts/train.py region=toy`."""
 
+import os
+
 import hydra
 from omegaconf import DictConfig, OmegaConf
 
@@ -15,7 +17,8 @@ def main(cfg: DictConfig) -> None:
     from plantation.train import TrainConfig, run
 
     out = run(to_object(cfg, TrainConfig), resolved_config=OmegaConf.to_yaml(cfg, resolve=True))
-    print(f"model written to {out}/model (metrics in {out}/metrics.json)")
+    if os.environ.get("LOCAL_RANK", "0") == "0":  # processes started by DDP stay quiet
+        print(f"model written to {out}/model (metrics in {out}/metrics.json)")
 
 
 if __name__ == "__main__":

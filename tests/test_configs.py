@@ -54,3 +54,34 @@ def test_sim_config_checks():
         check_config(SimulationConfig(cloud_share_by_month=[0.5] * 11))
     with pytest.raises(ConfigError, match="label_shares: unknown label"):
         check_config(SimulationConfig(label_shares={"forest": 1.0}))
+
+
+@pytest.mark.parametrize("trainer", sorted(p.stem for p in (CONFIGS / "trainer").glob("*.yaml")))
+@pytest.mark.parametrize("model", sorted(p.stem for p in (CONFIGS / "model").glob("*.yaml")))
+@pytest.mark.parametrize("training", sorted(p.stem for p in (CONFIGS / "training").glob("*.yaml")))
+def test_every_training_config_group_composes_and_checks(trainer, model, training):
+    from plantation.train import TrainConfig
+    from plantation.train import check_config as check_train
+
+    cfg = to_object(_compose("train", [f"trainer={trainer}", f"model={model}", f"training={training}"]), TrainConfig)
+    check_train(cfg)
+    assert cfg.run_name == f"{cfg.region.name}_seed{cfg.training.seed}"
+
+
+def test_benchmark_config_composes_with_another_seed():
+    from plantation.comparison import ComparisonConfig
+
+    cfg = to_object(_compose("benchmark_accuracy"), ComparisonConfig)
+    sim = to_object(_compose("simulate").sim, SimulationConfig)
+    assert cfg.eval_sim.seed != sim.seed and cfg.eval_sim.tile_size == sim.tile_size
+
+
+def test_training_typos_are_errors():
+    from plantation.train import TrainConfig
+
+    with pytest.raises(ConfigCompositionException, match="model.hiden"):
+        _compose("train", ["model.hiden=8"])
+    with pytest.raises(ConfigError, match="hiden"):
+        to_object(_compose("train", ["+model.hiden=8"]), TrainConfig)
+    with pytest.raises(ConfigCompositionException, match="training.lr"):
+        _compose("train", ["training.lr=fast"])
