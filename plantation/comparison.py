@@ -19,7 +19,7 @@ import os
 import shutil
 import tempfile
 import time
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import asdict, dataclass, field, fields, replace
 from pathlib import Path
 from typing import Any
 
@@ -30,7 +30,7 @@ import torch
 from plantation import artefact as art_io
 from plantation.baselines import AnnualTrees, BreakRule, annual_features
 from plantation.calibration import adjust_priors
-from plantation.config import CalibrationConfig, ModelConfig, RegionConfig, SamplesConfig, SplitConfig, TileConfig, TrainerConfig, TrainingConfig
+from plantation.config import RegionConfig, TileConfig
 from plantation.errors import ConfigError
 from plantation.inference import predict_tile
 from plantation.outcomes import Outcomes, summarise
@@ -42,16 +42,13 @@ from plantation.train import TrainConfig, fit, load_region_samples, model_card
 
 
 @dataclass
-class ComparisonConfig:
-    """Schema of ``configs/benchmark_accuracy.yaml``."""
+class ComparisonConfig(TrainConfig):
+    """Schema of ``configs/benchmark_accuracy.yaml``: the training config plus the held-out region.
 
-    region: RegionConfig = field(default_factory=RegionConfig)
-    samples: SamplesConfig = field(default_factory=SamplesConfig)
-    split: SplitConfig = field(default_factory=SplitConfig)
-    model: ModelConfig = field(default_factory=ModelConfig)
-    training: TrainingConfig = field(default_factory=TrainingConfig)
-    trainer: TrainerConfig = field(default_factory=TrainerConfig)
-    calibration: CalibrationConfig = field(default_factory=CalibrationConfig)
+    ``out_dir`` and ``run_name`` of the training config are not used: the
+    benchmark trains in a temporary folder.
+    """
+
     eval_sim: SimulationConfig = field(default_factory=SimulationConfig)
     eval_dir: str = "bench/cache/eval_region"
     prior_adjust: bool = False
@@ -60,13 +57,11 @@ class ComparisonConfig:
     progress: bool = True
     #: Also keep the trained model artefact here (None: discard it).
     model_dir: str | None = None
-    # Keys of the training config that the benchmark does not use.
-    out_dir: str = "outputs/train"
-    run_name: str = "run"
 
 
 def train_config(cfg: ComparisonConfig) -> TrainConfig:
-    return TrainConfig(region=cfg.region, samples=cfg.samples, split=cfg.split, model=cfg.model, training=cfg.training, trainer=cfg.trainer, calibration=cfg.calibration)
+    """The training part of a benchmark config."""
+    return TrainConfig(**{f.name: getattr(cfg, f.name) for f in fields(TrainConfig)})
 
 
 def ensure_region(sim: SimulationConfig, folder: Path, progress: bool) -> Path:
