@@ -133,9 +133,15 @@ def load(folder: str | Path) -> Artefact:
         raise PlantationError(f"{meta}: not valid JSON ({exc.msg}, line {exc.lineno})") from None
     if raw.get("format") != FORMAT:
         raise PlantationError(f"{meta}: format {raw.get('format')!r}, expected {FORMAT!r}")
-    raw["calibration"] = Calibration(**raw["calibration"])
-    card = ModelCard(**raw)
-    tensors = load_file(str(weights))
+    try:
+        raw["calibration"] = Calibration(**raw["calibration"])
+        card = ModelCard(**raw)
+    except (TypeError, KeyError) as exc:
+        raise PlantationError(f"{meta}: not a complete model card ({exc})") from None
+    try:
+        tensors = load_file(str(weights))
+    except Exception as exc:  # safetensors raises its own error type for a damaged file
+        raise PlantationError(f"{weights}: cannot read the weights ({str(exc).splitlines()[0]})") from None
     members = []
     for i in range(card.members):
         net = build_network(card.network)

@@ -12,8 +12,11 @@
   outcome frequencies from unlabelled pixels and re-weights the posteriors.
 * Split-conformal prediction sets (Vovk et al. 2005; the "least ambiguous"
   score of Sadinle, Lei & Wasserman 2019, JASA 114: 223–234): with a
-  calibration set exchangeable with the test data, the set holds the true
-  outcome with probability at least 1 − α.
+  calibration set exchangeable with the test data and not used to fit the
+  model, the set holds the true outcome with probability at least 1 − α.
+  Training reuses its validation split (also used for early stopping and the
+  temperature), so the guarantee there is approximate, and it holds for
+  pixels drawn like the reference sample, not for a map's every pixel.
 * Epistemic uncertainty of an ensemble: the mutual information between the
   outcome and the member (the "BALD" score, Houlsby et al. 2011).
 """

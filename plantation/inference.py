@@ -27,7 +27,8 @@ class TileProbabilities:
 
     Attributes:
         probs: float32 (y, x, outcomes), rows sum to one.
-        epistemic: float32 (y, x), ensemble mutual information in nats
+        epistemic: float32 (y, x), mutual information (nats) between the
+            outcome and the ensemble member, members calibrated like ``probs``
             (0 for a single member).
         clear: int16 (y, x), number of dates on which the pixel was observed.
     """
@@ -103,6 +104,8 @@ def predict_tile(art: Artefact, stack: TileStack, *, window: int = 128, progress
             lp = art.calibrated_log_probs(z)
         probs[r0 : r0 + h, c0 : c0 + w] = lp.exp().numpy()
         if len(art.members) > 1:
-            epi[r0 : r0 + h, c0 : c0 + w] = mutual_information(torch.softmax(z, -1).numpy())
+            # Disagreement between members, each calibrated like the mapped probabilities.
+            each = torch.stack([art.calibrated_log_probs(zm.unsqueeze(0)) for zm in z]).exp()
+            epi[r0 : r0 + h, c0 : c0 + w] = mutual_information(each.numpy())
         clear[r0 : r0 + h, c0 : c0 + w] = valid[:, halo : halo + h, halo : halo + w].sum(0)
     return TileProbabilities(probs, epi, clear)

@@ -76,10 +76,11 @@ class Summary:
             conversion group's probability is the sum over its years.
         year: most probable conversion year given conversion (0 unless
             ``label`` is conversion).
-        year_low, year_high: the central interval of conversion years holding
-            at least ``level`` of the conversion probability (0 unless
-            ``label`` is conversion). It is grown from the mode, so it always
-            contains ``year``.
+        year_low, year_high: an interval of conversion years holding at
+            least ``level`` of the conversion probability, grown from the
+            modal year towards the more probable neighbour (0 unless
+            ``label`` is conversion); it always contains ``year``. Not
+            equal-tailed, and not always the shortest such interval.
         p_conversion: probability of conversion in any year.
         p_after_cutoff: probability of conversion in a year after the cutoff year.
         p_label: probability of the chosen label group.
@@ -101,7 +102,7 @@ def group_probabilities(probs: np.ndarray) -> np.ndarray:
 
 
 def year_interval(p_years: np.ndarray, level: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Mode and central interval of a distribution over consecutive years.
+    """Mode and a mode-grown interval of a distribution over consecutive years.
 
     Starting at the mode, the interval takes the more probable neighbour
     each step until it holds ``level`` of the (normalised) mass.

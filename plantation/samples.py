@@ -5,9 +5,11 @@ and spectral indices of the k × k pixels centred on it (float32, NaN where
 not observed) and the validity mask. Nothing is filled in here: the network
 decides what a missing value becomes, and always sees the mask.
 
-Splits are spatial: the tiles are cut into square blocks, whole blocks go to
-train, validation or test, and a validation or test point whose neighbourhood
-overlaps a training point's is dropped, so no pixel is seen on both sides.
+Splits are spatial: the region is cut into square blocks (across tile seams),
+whole blocks go to train, validation or test, and a validation point whose
+neighbourhood overlaps a training point's, or a test point whose neighbourhood
+overlaps a training or validation point's, is dropped, so no pixel is seen in
+two splits.
 """
 
 from __future__ import annotations
@@ -19,7 +21,7 @@ import numpy as np
 import xarray as xr
 
 from plantation import indices as idx
-from plantation.errors import ConfigError, LabelError
+from plantation.errors import ConfigError, LabelError, RegionError
 from plantation.labels import LabelSet
 from plantation.outcomes import Outcomes
 from plantation.region import TileStack
@@ -138,13 +140,16 @@ def read_patches(stack: TileStack, rows: np.ndarray, cols: np.ndarray, k: int) -
     return refl, valid
 
 
-def spatial_split(tile: np.ndarray, row: np.ndarray, col: np.ndarray, *, block: int, shares: Sequence[float], k: int, seed: int) -> np.ndarray:
+def spatial_split(gx: np.ndarray, gy: np.ndarray, *, block: int, shares: Sequence[float], k: int, seed: int) -> np.ndarray:
     """Assign points to train (0), validation (1) or test (2) by spatial block.
 
-    Blocks of ``block`` × ``block`` pixels are shuffled with ``seed`` and
-    dealt to the splits in proportion to ``shares`` (train, val, test). A
-    validation or test point whose k × k window overlaps a training point's
-    window is marked −1 (dropped).
+    Coordinates are region-wide pixel units (CRS coordinates divided by the
+    pixel size), so blocks and buffers run across tile seams. Blocks of
+    ``block`` × ``block`` pixels are shuffled with ``seed`` and dealt to the
+    splits in proportion to ``shares`` (train, val, test). A point whose
+    k × k window overlaps the window of a point in an earlier split (a
+    validation point near a training point, a test point near a training or
+    validation point) is marked −1 (dropped).
 
     Returns:
         int8 (n,) split codes.
@@ -153,30 +158,48 @@ def spatial_split(tile: np.ndarray, row: np.ndarray, col: np.ndarray, *, block: 
         raise ConfigError(f"split.shares: {list(shares)!r} must be three non-negative shares (train, val, test) summing to 1")
     if block < 1:
         raise ConfigError(f"split.block: {block!r} must be a positive number of pixels")
-    keys = np.array([f"{t}/{r // block}/{c // block}" for t, r, c in zip(tile, row, col, strict=True)])
-    uniq = np.unique(keys)
+    gx = np.asarray(gx, dtype=np.float64)
+    gy = np.asarray(gy, dtype=np.float64)
+    keys = np.floor(gx / block).astype(np.int64) * 1_000_003 + np.floor(gy / block).astype(np.int64)
+    uniq, inverse, counts = np.unique(keys, return_inverse=True, return_counts=True)
     rng = np.random.default_rng(seed)
     order = rng.permutation(len(uniq))
     # Deal blocks by cumulative point count so each split gets about its share
     # of points even when blocks hold different numbers of them.
-    counts = np.array([(keys == u).sum() for u in uniq])[order]
-    cum = np.cumsum(counts) / counts.sum()
-    edges = np.cumsum(shares)[:2]
-    block_split = np.searchsorted(edges, cum - counts / counts.sum() / 2, side="right").astype(np.int8)
-    split_of = dict(zip(uniq[order], block_split, strict=True))
-    split = np.array([split_of[kk] for kk in keys], dtype=np.int8)
-    # Buffer: windows of two points overlap when both offsets are below k.
-    for t in np.unique(tile):
-        on = tile == t
-        tr = np.flatnonzero(on & (split == 0))
-        other = np.flatnonzero(on & (split > 0))
-        if len(tr) == 0 or len(other) == 0:
+    c = counts[order]
+    mid = (np.cumsum(c) - c / 2) / c.sum()
+    block_split = np.empty(len(uniq), np.int8)
+    block_split[order] = np.searchsorted(np.cumsum(shares)[:2], mid, side="right")
+    split = block_split[inverse].astype(np.int8)
+    # Buffer: two windows overlap when both offsets are below k pixels.
+    for later in (1, 2):
+        earlier = np.flatnonzero((split >= 0) & (split < later))
+        mine = np.flatnonzero(split == later)
+        if len(earlier) == 0 or len(mine) == 0:
             continue
-        dr = np.abs(row[other][:, None] - row[tr][None, :])
-        dc = np.abs(col[other][:, None] - col[tr][None, :])
-        clash = ((dr < k) & (dc < k)).any(1)
-        split[other[clash]] = -1
+        clash = np.zeros(len(mine), bool)
+        for i in range(0, len(mine), 512):  # bounded memory for large label sets
+            sl = slice(i, i + 512)
+            dx = np.abs(gx[mine[sl]][:, None] - gx[earlier][None, :])
+            dy = np.abs(gy[mine[sl]][:, None] - gy[earlier][None, :])
+            clash[sl] = ((dx < k - 0.5) & (dy < k - 0.5)).any(1)
+        split[mine[clash]] = -1
     return split
+
+
+def check_years(dates: np.ndarray) -> tuple[int, ...]:
+    """The series' calendar years, which must be consecutive.
+
+    Raises:
+        RegionError: some year between the first and the last has no date
+            (every year needs at least one, or its conversions could not be
+            told apart).
+    """
+    years = np.unique(year_of(dates))
+    missing = sorted(set(range(int(years[0]), int(years[-1]) + 1)) - {int(y) for y in years})
+    if missing:
+        raise RegionError(f"the imagery has no date in {missing}; every year from {years[0]} to {years[-1]} needs at least one (add composites or drop the years before the gap)")
+    return tuple(int(y) for y in years)
 
 
 def build_samples(stacks: Sequence[TileStack], labels: LabelSet, *, bands: Sequence[str], index_names: Sequence[str], k: int, block: int, shares: Sequence[float], seed: int) -> SampleSet:
@@ -189,9 +212,9 @@ def build_samples(stacks: Sequence[TileStack], labels: LabelSet, *, bands: Seque
     pts = labels.points
     by_name = {s.name: s for s in stacks}
     dates = stacks[0].dates
-    years = tuple(int(y) for y in np.unique(year_of(dates)))
-    outcomes = Outcomes(years)
-    xs, vs, tiles, rows, cols, targets = [], [], [], [], [], []
+    outcomes = Outcomes(check_years(dates))
+    xs, vs, tiles, rows, cols, targets, gxs, gys = [], [], [], [], [], [], [], []
+    res = abs(stacks[0].grid.transform.a)
     for name, grp in pts.groupby("tile", sort=True):
         if name not in by_name:
             continue
@@ -201,6 +224,8 @@ def build_samples(stacks: Sequence[TileStack], labels: LabelSet, *, bands: Seque
         tiles.append(np.full(len(grp), name, dtype=object))
         rows.append(grp["row"].to_numpy())
         cols.append(grp["col"].to_numpy())
+        gxs.append(grp["x"].to_numpy() / res)
+        gys.append(grp["y"].to_numpy() / res)
         try:
             targets.append(outcomes.encode(grp["label"].tolist(), grp["onset_year"].tolist()))
         except LabelError as exc:
@@ -210,7 +235,7 @@ def build_samples(stacks: Sequence[TileStack], labels: LabelSet, *, bands: Seque
     tile = np.concatenate(tiles)
     row = np.concatenate(rows).astype(np.int64)
     col = np.concatenate(cols).astype(np.int64)
-    split = spatial_split(tile, row, col, block=block, shares=shares, k=k, seed=seed)
+    split = spatial_split(np.concatenate(gxs), np.concatenate(gys), block=block, shares=shares, k=k, seed=seed)
     return SampleSet(
         x=np.concatenate(xs),
         valid=np.concatenate(vs),

@@ -171,8 +171,8 @@ class ConversionTask(L.LightningModule):
         logits = self.net(x, valid)
         loss = self._loss(logits, y)
         acc = (logits.argmax(-1) == y).float().mean()
-        self.log(f"{stage}_loss", loss, prog_bar=True, on_epoch=True, on_step=False, batch_size=len(y), sync_dist=stage != "train")
-        self.log(f"{stage}_acc", acc, prog_bar=stage == "val", on_epoch=True, on_step=False, batch_size=len(y), sync_dist=stage != "train")
+        self.log(f"{stage}_loss", loss, prog_bar=True, on_epoch=True, on_step=False, batch_size=len(y), sync_dist=True)
+        self.log(f"{stage}_acc", acc, prog_bar=stage == "val", on_epoch=True, on_step=False, batch_size=len(y), sync_dist=True)
         return loss
 
     def training_step(self, batch: tuple[torch.Tensor, ...], batch_idx: int) -> torch.Tensor:
@@ -417,11 +417,11 @@ def run(cfg: TrainConfig, resolved_config: str | None = None) -> Path:
     _, labels, samples = load_region_samples(cfg)
     final = Path(cfg.out_dir) / cfg.run_name
     work = final.with_name(final.name + ".partial")
+    # Processes started by DDP re-run this script (LOCAL_RANK / NODE_RANK > 0):
+    # only the first process may clear a folder left by an interrupted run.
     rank = int(os.environ.get("LOCAL_RANK", "0")) + int(os.environ.get("NODE_RANK", "0"))
-    if rank == 0 and work.exists() and os.environ.get("PLANTATION_RUN_STARTED") != str(work):
+    if rank == 0 and work.exists():
         shutil.rmtree(work)
-    # Processes started by DDP re-run this script: they must not wipe the folder.
-    os.environ["PLANTATION_RUN_STARTED"] = str(work)
     work.mkdir(parents=True, exist_ok=True)
     trained = fit(samples, cfg, work)
     if not trained.is_global_zero:
@@ -433,7 +433,13 @@ def run(cfg: TrainConfig, resolved_config: str | None = None) -> Path:
     if resolved_config is not None:
         (work / "config.yaml").write_text(resolved_config)
     save_artefact(work / "model", model_card(cfg, samples, trained, labels), trained.members)
+    # Swap in the new run; the old one goes only once the new one is in place.
+    old = final.with_name(final.name + ".old")
+    if old.exists():
+        shutil.rmtree(old)
     if final.exists():
-        shutil.rmtree(final)
+        os.replace(final, old)
     os.replace(work, final)
+    if old.exists():
+        shutil.rmtree(old)
     return final

@@ -6,10 +6,10 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from plantation.errors import ConfigError
+from plantation.errors import ConfigError, RegionError
 from plantation.labels import read_labels
 from plantation.region import open_region
-from plantation.samples import build_samples, day_of_year_fraction, features, read_patches, spatial_split
+from plantation.samples import build_samples, check_years, day_of_year_fraction, features, read_patches, spatial_split
 from tests.conftest import BANDS, pixel_centre
 
 
@@ -46,26 +46,42 @@ def test_patches_at_the_edge_are_invalid_outside_the_tile(make_region, tiny_valu
 def test_spatial_split_keeps_blocks_whole_and_buffers_neighbours():
     rng = np.random.default_rng(0)
     n = 600
-    tile = np.where(rng.random(n) < 0.5, "a", "b").astype(object)
-    row, col = rng.integers(0, 160, n), rng.integers(0, 160, n)
-    split = spatial_split(tile, row, col, block=32, shares=[0.6, 0.2, 0.2], k=5, seed=3)
-    key = [f"{t}/{r // 32}/{c // 32}" for t, r, c in zip(tile, row, col, strict=True)]
+    gx, gy = rng.integers(0, 320, n).astype(float), rng.integers(0, 160, n).astype(float)
+    split = spatial_split(gx, gy, block=32, shares=[0.6, 0.2, 0.2], k=5, seed=3)
+    key = [f"{int(x) // 32}/{int(y) // 32}" for x, y in zip(gx, gy, strict=True)]
     kept = split >= 0
     for kk in set(key):
         s = set(split[(np.array(key) == kk) & kept].tolist())
         assert len(s) <= 1, f"block {kk} is split between {s}"
-    # No kept validation/test window overlaps a training window.
-    tr = kept & (split == 0)
-    for i in np.flatnonzero(kept & (split > 0)):
-        same = tr & (tile == tile[i])
-        assert not ((np.abs(row[same] - row[i]) < 5) & (np.abs(col[same] - col[i]) < 5)).any()
+    # No kept window overlaps a window of another split.
+    for i in np.flatnonzero(kept):
+        other = kept & (split != split[i])
+        assert not ((np.abs(gx[other] - gx[i]) < 5) & (np.abs(gy[other] - gy[i]) < 5)).any()
     shares = np.bincount(split[kept], minlength=3) / kept.sum()
     assert shares[0] == pytest.approx(0.6, abs=0.12)
     # The same seed gives the same split; another seed another one.
-    assert np.array_equal(split, spatial_split(tile, row, col, block=32, shares=[0.6, 0.2, 0.2], k=5, seed=3))
-    assert not np.array_equal(split, spatial_split(tile, row, col, block=32, shares=[0.6, 0.2, 0.2], k=5, seed=4))
+    assert np.array_equal(split, spatial_split(gx, gy, block=32, shares=[0.6, 0.2, 0.2], k=5, seed=3))
+    assert not np.array_equal(split, spatial_split(gx, gy, block=32, shares=[0.6, 0.2, 0.2], k=5, seed=4))
     with pytest.raises(ConfigError, match="split.shares"):
-        spatial_split(tile, row, col, block=32, shares=[0.6, 0.6], k=5, seed=3)
+        spatial_split(gx, gy, block=32, shares=[0.6, 0.6], k=5, seed=3)
+
+
+def test_spatial_split_buffers_across_a_tile_seam():
+    # Two points one pixel apart in ground coordinates, in different blocks
+    # (31 | 32): whichever split gets the second, it must not keep both.
+    gx = np.array([31.0, 32.0] + [100.0 + 40 * i for i in range(40)])
+    gy = np.zeros(len(gx))
+    for seed in range(20):
+        split = spatial_split(gx, gy, block=32, shares=[0.5, 0.25, 0.25], k=3, seed=seed)
+        if split[0] >= 0 and split[1] >= 0:
+            assert split[0] == split[1]
+
+
+def test_missing_year_is_refused():
+    d = np.array(["2015-02-01", "2016-02-01", "2018-02-01"], dtype="datetime64[D]")
+    with pytest.raises(RegionError, match=r"no date in \[2017\]"):
+        check_years(d)
+    assert check_years(d[:2]) == (2015, 2016)
 
 
 def test_build_samples_encodes_outcomes(make_region, tmp_path):
