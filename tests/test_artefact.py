@@ -86,3 +86,16 @@ def test_weights_file_holds_no_pickle(tmp_path):
     header = json.loads(raw[8 : 8 + header_len])  # the safetensors layout: a JSON header, then raw tensors
     assert header["__metadata__"]["format"] == artefact.FORMAT
     assert any(k.startswith("member0.gru.") for k in header)
+
+
+def test_incomplete_card_and_damaged_weights_are_refused(tmp_path):
+    artefact.save(tmp_path, _card(1), _members(1))
+    meta = json.loads((tmp_path / "model.json").read_text())
+    del meta["years"]
+    (tmp_path / "model.json").write_text(json.dumps(meta))
+    with pytest.raises(PlantationError, match="not a complete model card"):
+        artefact.load(tmp_path)
+    artefact.save(tmp_path, _card(1), _members(1))
+    (tmp_path / "model.safetensors").write_bytes(b"\x10\x00\x00\x00\x00\x00\x00\x00{broken")
+    with pytest.raises(PlantationError, match="cannot read the weights"):
+        artefact.load(tmp_path)

@@ -1,0 +1,60 @@
+"""The accuracy benchmark's guards and plumbing (the full run is a benchmark, not a test)."""
+
+from __future__ import annotations
+
+import pytest
+
+from plantation.comparison import ComparisonConfig, train_config
+from plantation.comparison import run as run_comparison
+from plantation.config import ModelConfig, TrainerConfig
+from plantation.errors import ConfigError
+from plantation.train import TrainConfig
+
+
+def test_benchmark_refuses_ddp_before_doing_anything(tmp_path):
+    cfg = ComparisonConfig(trainer=TrainerConfig(devices=2, strategy="ddp"), out=str(tmp_path / "a.json"), eval_dir=str(tmp_path / "eval"))
+    with pytest.raises(ConfigError, match="trains in one process"):
+        run_comparison(cfg)
+    assert not list(tmp_path.iterdir())
+
+
+def test_training_part_of_the_benchmark_config():
+    cfg = ComparisonConfig(model=ModelConfig(members=2))
+    tc = train_config(cfg)
+    assert type(tc) is TrainConfig and tc.model.members == 2 and not hasattr(tc, "eval_sim")
+
+
+def test_observability_on_the_toy_region_matches_a_pixel_by_pixel_count():
+    import numpy as np
+    import rasterio
+    from hydra import compose, initialize_config_dir
+
+    from plantation.comparison import conversion_observability
+    from plantation.config import RegionConfig, register_configs, to_object
+    from plantation.region import open_region
+    from plantation.simulate import SimulationConfig, build_landscape, dates_of, decimal_year
+    from tests.conftest import ROOT
+
+    register_configs()
+    with initialize_config_dir(config_dir=str(ROOT / "configs"), version_base="1.3"):
+        cfg = compose(config_name="train")
+        sim = to_object(compose(config_name="simulate").sim, SimulationConfig)
+    region = to_object(cfg.region, RegionConfig)
+    region.tiles = [type(t)(name=t.name, path=str(ROOT / t.path), truth=str(ROOT / t.truth)) for t in region.tiles[:1]]
+    stack = open_region(region)[0]
+    seen, in_year = conversion_observability(sim, stack, region.tiles[0])
+    with rasterio.open(region.tiles[0].truth) as src:
+        cls, onset, parcel = src.read(1), src.read(2), src.read(5)
+    land = build_landscape(sim)
+    t = np.array([decimal_year(d) for d in dates_of(sim)])
+    valid = stack.valid.values
+    rng = np.random.default_rng(0)
+    rows, cols = np.nonzero(cls == 2)
+    for i in rng.choice(len(rows), 150, replace=False):
+        r, c = rows[i], cols[i]
+        cleared = land.t_event[parcel[r, c]]
+        views = [k for k in range(len(t)) if valid[k, r, c] and t[k] > cleared]
+        assert seen[r, c] == bool(views)
+        assert in_year[r, c] == (bool(views) and int(t[views[0]]) == onset[r, c])
+    assert not seen[cls != 2].any()
+    assert 0.5 < seen[cls == 2].mean() < 1.0 and in_year.sum() < seen.sum()
