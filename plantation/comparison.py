@@ -170,7 +170,7 @@ def run(cfg: ComparisonConfig) -> dict[str, Any]:
     map_seconds = {"model": 0.0, "trees": 0.0, "breakpoint": 0.0}
     for st, tile in zip(stacks, region.tiles, strict=True):
         t0 = time.perf_counter()
-        tp = predict_tile(artefact, st, window=cfg.window, progress=cfg.progress)
+        tp = predict_tile(artefact, st, window=cfg.window, progress=cfg.progress, scaling=region.scaling)
         map_seconds["model"] += time.perf_counter() - t0
         probs["model"].append(tp.probs.reshape(-1, outcomes.size))
         x, v = tile_series(st, list(cfg.region.bands), list(cfg.samples.indices))

@@ -8,14 +8,15 @@ seams leave no trace.
 
 from __future__ import annotations
 
-from collections.abc import Iterator
-from dataclasses import dataclass
+from collections.abc import Iterator, Sequence
+from dataclasses import asdict, dataclass
 
 import numpy as np
 import torch
 
 from plantation.artefact import Artefact
 from plantation.calibration import mutual_information
+from plantation.config import ScalingRule
 from plantation.errors import RegionError
 from plantation.region import TileStack
 from plantation.samples import features
@@ -45,11 +46,12 @@ def windows(height: int, width: int, size: int) -> Iterator[tuple[int, int, int,
             yield r, c, min(size, height - r), min(size, width - c)
 
 
-def check_compatible(art: Artefact, stack: TileStack) -> None:
-    """The tile must have the model's dates and bands.
+def check_compatible(art: Artefact, stack: TileStack, scaling: Sequence[ScalingRule] | None = None) -> None:
+    """The tile must have the model's dates and bands (and, when given, its scaling rules).
 
     Raises:
-        RegionError: dates or band roles differ, naming the first difference.
+        RegionError: dates, band roles or scaling rules differ, naming the
+            first difference.
     """
     dates = [str(d) for d in stack.dates]
     if dates != art.card.dates:
@@ -60,6 +62,11 @@ def check_compatible(art: Artefact, stack: TileStack) -> None:
     bands = [str(b) for b in stack.reflectance["band"].values]
     if bands != art.card.bands:
         raise RegionError(f"tile {stack.name!r}: bands {bands} differ from the model's {art.card.bands}")
+    if scaling is not None:
+        have = [asdict(r) for r in scaling]
+        if have != art.card.scaling:
+            # Other scale/offset rules would shift every reflectance the model sees.
+            raise RegionError(f"tile {stack.name!r}: scaling rules {have} differ from the model's {art.card.scaling}; map with the rules the model was trained with")
 
 
 def read_window(stack: TileStack, r0: int, c0: int, h: int, w: int, halo: int) -> tuple[np.ndarray, np.ndarray]:
@@ -76,13 +83,14 @@ def read_window(stack: TileStack, r0: int, c0: int, h: int, w: int, halo: int) -
     return refl, valid
 
 
-def predict_tile(art: Artefact, stack: TileStack, *, window: int = 128, progress: bool = False) -> TileProbabilities:
+def predict_tile(art: Artefact, stack: TileStack, *, window: int = 128, progress: bool = False, scaling: Sequence[ScalingRule] | None = None) -> TileProbabilities:
     """Calibrated outcome probabilities for every pixel of ``stack``.
 
+    ``scaling``: the region's scaling rules, checked against the model's.
     Memory per window is about time × channels × (window + 2·halo)² × 4 bytes
     for the inputs plus the GRU states of window² pixels.
     """
-    check_compatible(art, stack)
+    check_compatible(art, stack, scaling)
     H, W = stack.grid.height, stack.grid.width
     halo = art.members[0].halo
     n_out = art.members[0].n_outcomes

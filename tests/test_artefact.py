@@ -99,3 +99,25 @@ def test_incomplete_card_and_damaged_weights_are_refused(tmp_path):
     (tmp_path / "model.safetensors").write_bytes(b"\x10\x00\x00\x00\x00\x00\x00\x00{broken")
     with pytest.raises(PlantationError, match="cannot read the weights"):
         artefact.load(tmp_path)
+
+
+def test_inference_refuses_a_tile_the_model_was_not_trained_for(make_region):
+    from plantation.config import ScalingRule
+    from plantation.errors import RegionError
+    from plantation.inference import check_compatible
+    from plantation.region import open_region
+    from tests.conftest import BANDS, DATES
+
+    spec = SPEC | {"n_channels": 10, "date_year": [0, 0, 1, 1, 2], "day_of_year": [0.1, 0.6, 0.1, 0.6, 0.6]}
+    card = _card(1)
+    card.network, card.bands, card.indices, card.dates, card.years = spec, BANDS, ["NDVI", "EVI", "NBR", "NDMI"], DATES, [2015, 2016, 2017]
+    card.scaling = [{"start": None, "scale": 1e-4, "offset": 0.0}]
+    torch.manual_seed(0)
+    art = artefact.Artefact(card, [ConvRecurrentNet(**spec).eval()])
+    stack = open_region(make_region())[0]
+    check_compatible(art, stack, [ScalingRule(None, 1e-4, 0.0)])
+    with pytest.raises(RegionError, match="scaling rules"):
+        check_compatible(art, stack, [ScalingRule(None, 1e-4, -0.1)])
+    card.dates = [*DATES[:4], "2017-09-01"]
+    with pytest.raises(RegionError, match="date 5 is 2017-08-15, the model was trained with 2017-09-01"):
+        check_compatible(art, stack)
