@@ -154,12 +154,3 @@ def load(folder: str | Path) -> Artefact:
         net.eval()
         members.append(net)
     return Artefact(card, members)
-
-
-def to_jsonable(a: Any) -> Any:
-    """numpy scalars/arrays → plain Python, for JSON."""
-    if isinstance(a, np.ndarray):
-        return a.tolist()
-    if isinstance(a, np.generic):
-        return a.item()
-    return a

@@ -25,7 +25,7 @@ from __future__ import annotations
 
 import numpy as np
 from scipy.optimize import minimize_scalar
-from scipy.special import log_softmax, softmax
+from scipy.special import log_softmax
 
 
 def nll(logits: np.ndarray, targets: np.ndarray, temperature: float = 1.0) -> float:
@@ -130,8 +130,3 @@ def mutual_information(member_probs: np.ndarray) -> np.ndarray:
     h_mean = -(mean * np.log(mean)).sum(-1)
     mean_h = -(p * np.log(p)).sum(-1).mean(0)
     return np.maximum(h_mean - mean_h, 0.0)
-
-
-def probs_from_logits(logits: np.ndarray, temperature: float = 1.0) -> np.ndarray:
-    """softmax(logits / T) along the last axis."""
-    return softmax(np.asarray(logits, dtype=np.float64) / temperature, axis=-1)
