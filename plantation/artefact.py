@@ -78,11 +78,6 @@ class Artefact:
     card: ModelCard
     members: list[ConvRecurrentNet]
 
-    def member_logits(self, x: torch.Tensor, valid: torch.Tensor) -> torch.Tensor:
-        """(members, b, outcomes) logits of k × k patches."""
-        with torch.inference_mode():
-            return torch.stack([m(x, valid) for m in self.members])
-
     def calibrated_log_probs(self, member_logits: torch.Tensor) -> torch.Tensor:
         """Calibrated log-probabilities (…, outcomes) from (members, …, outcomes) logits."""
         return calibrated_log_probs(member_logits, self.card.calibration)

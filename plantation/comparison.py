@@ -37,7 +37,7 @@ from plantation.outcomes import Outcomes, summarise
 from plantation.region import TileStack, open_region
 from plantation.samples import SampleSet, features, year_of
 from plantation.scores import map_scores
-from plantation.simulate import SimulationConfig, tile_names, write_region
+from plantation.simulate import Landscape, SimulationConfig, build_landscape, dates_of, decimal_year, tile_names, write_region
 from plantation.train import TrainConfig, fit, load_region_samples, model_card
 
 
@@ -101,7 +101,7 @@ def _truth(tile: TileConfig) -> tuple[np.ndarray, np.ndarray]:
         return src.read(1), src.read(2)
 
 
-def conversion_observability(sim: SimulationConfig, stack: TileStack, tile: TileConfig) -> tuple[np.ndarray, np.ndarray]:
+def conversion_observability(land: Landscape, date_years: np.ndarray, stack: TileStack, tile: TileConfig) -> tuple[np.ndarray, np.ndarray]:
     """Which truly converted pixels the imagery shows cleared: a ceiling for every method.
 
     For each pixel, the first date after its clearing (from the simulated
@@ -109,14 +109,15 @@ def conversion_observability(sim: SimulationConfig, stack: TileStack, tile: Tile
     cleared cannot be detected; one whose first clear view after clearing
     falls in a later year can only have its year inferred.
 
+    Args:
+        land: the simulated region's landscape (clearing times per parcel).
+        date_years: (time,) decimal year of each date.
+
     Returns:
         (seen, first_view_in_onset_year): bool arrays of the tile's shape,
         False outside true conversions.
     """
-    from plantation.simulate import build_landscape, dates_of, decimal_year
-
-    land = build_landscape(sim)
-    t = np.array([decimal_year(d) for d in dates_of(sim)])
+    t = np.asarray(date_years, dtype=np.float64)
     with rasterio.open(str(tile.truth)) as src:
         cls, onset, parcel = src.read(1), src.read(2), src.read(5)
     conv = cls == 2
@@ -167,6 +168,8 @@ def run(cfg: ComparisonConfig) -> dict[str, Any]:
     stacks = open_region(region)
     probs: dict[str, list[np.ndarray]] = {"model": [], "trees": [], "breakpoint": []}
     truth_label, truth_year, seen_parts, in_year_parts = [], [], [], []
+    land = build_landscape(cfg.eval_sim)
+    date_years = np.array([decimal_year(d) for d in dates_of(cfg.eval_sim)])
     map_seconds = {"model": 0.0, "trees": 0.0, "breakpoint": 0.0}
     for st, tile in zip(stacks, region.tiles, strict=True):
         t0 = time.perf_counter()
@@ -184,7 +187,7 @@ def run(cfg: ComparisonConfig) -> dict[str, Any]:
         cls, onset = _truth(tile)
         truth_label.append(cls.ravel())
         truth_year.append(onset.ravel())
-        seen_t, in_year_t = conversion_observability(cfg.eval_sim, st, tile)
+        seen_t, in_year_t = conversion_observability(land, date_years, st, tile)
         seen_parts.append(seen_t.ravel())
         in_year_parts.append(in_year_t.ravel())
     true_label = np.concatenate(truth_label)

@@ -42,11 +42,11 @@ def test_observability_on_the_toy_region_matches_a_pixel_by_pixel_count():
     region = to_object(cfg.region, RegionConfig)
     region.tiles = [type(t)(name=t.name, path=str(ROOT / t.path), truth=str(ROOT / t.truth)) for t in region.tiles[:1]]
     stack = open_region(region)[0]
-    seen, in_year = conversion_observability(sim, stack, region.tiles[0])
-    with rasterio.open(region.tiles[0].truth) as src:
-        cls, onset, parcel = src.read(1), src.read(2), src.read(5)
     land = build_landscape(sim)
     t = np.array([decimal_year(d) for d in dates_of(sim)])
+    seen, in_year = conversion_observability(land, t, stack, region.tiles[0])
+    with rasterio.open(region.tiles[0].truth) as src:
+        cls, onset, parcel = src.read(1), src.read(2), src.read(5)
     valid = stack.valid.values
     rng = np.random.default_rng(0)
     rows, cols = np.nonzero(cls == 2)
