@@ -164,7 +164,7 @@ def register_configs() -> None:
     cs = ConfigStore.instance()
     cs.store(group="region", name="region_schema", node=RegionConfig)
     cs.store(group="sim", name="sim_schema", node=SimulationConfig)
-    cs.store(group="model", name="model_schema", node=ModelConfig)
+    cs.store(group="network", name="network_schema", node=ModelConfig)
     cs.store(group="training", name="training_schema", node=TrainingConfig)
     cs.store(group="trainer", name="trainer_schema", node=TrainerConfig)
 

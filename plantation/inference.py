@@ -74,8 +74,7 @@ def read_window(stack: TileStack, r0: int, c0: int, h: int, w: int, halo: int) -
     H, W = stack.grid.height, stack.grid.width
     rs, re_ = max(r0 - halo, 0), min(r0 + h + halo, H)
     cs, ce = max(c0 - halo, 0), min(c0 + w + halo, W)
-    refl = stack.reflectance.isel(y=slice(rs, re_), x=slice(cs, ce)).values.astype(np.float32)
-    valid = stack.valid.isel(y=slice(rs, re_), x=slice(cs, ce)).values.astype(bool)
+    refl, valid = stack.read(rs, cs, re_ - rs, ce - cs)
     pad = ((rs - (r0 - halo)), ((r0 + h + halo) - re_), (cs - (c0 - halo)), ((c0 + w + halo) - ce))
     if any(pad):
         refl = np.pad(refl, ((0, 0), (0, 0), pad[:2], pad[2:]), constant_values=np.nan)

@@ -197,11 +197,14 @@ class ConvRecurrentNet(nn.Module):
         r = self.halo
         return self.sequence(f, valid[:, :, r, r])
 
-    def forward_window(self, x: torch.Tensor, valid: torch.Tensor) -> torch.Tensor:
+    def forward_window(self, x: torch.Tensor, valid: torch.Tensor, pixel_batch: int | None = None) -> torch.Tensor:
         """Logits for every interior pixel of one window.
 
         Args:
             x: (time, channel, h, w); valid: (time, h, w).
+            pixel_batch: pixels per pass of the recurrent part (None: all at
+                once). Batches of a few thousand keep its intermediates in
+                cache; the result does not depend on it beyond float rounding.
 
         Returns:
             (h − 2·halo, w − 2·halo, 3 + n_years) logits.
@@ -209,6 +212,8 @@ class ConvRecurrentNet(nn.Module):
         f = self.encode(x.unsqueeze(0), valid.unsqueeze(0))[0]  # (t, F, h', w')
         t, nf, hh, ww = f.shape
         r = self.halo
-        obs = valid[:, r : valid.shape[1] - r, r : valid.shape[2] - r]
-        logits = self.sequence(f.permute(2, 3, 0, 1).reshape(hh * ww, t, nf), obs.permute(1, 2, 0).reshape(hh * ww, t))
+        obs = valid[:, r : valid.shape[1] - r, r : valid.shape[2] - r].permute(1, 2, 0).reshape(hh * ww, t)
+        feats = f.permute(2, 3, 0, 1).reshape(hh * ww, t, nf)
+        step = hh * ww if not pixel_batch else pixel_batch
+        logits = torch.cat([self.sequence(feats[i : i + step], obs[i : i + step]) for i in range(0, hh * ww, step)])
         return logits.reshape(hh, ww, -1)

@@ -17,13 +17,16 @@ Stored integers become reflectance (unitless, float32) through the region's
 from __future__ import annotations
 
 import re
+import threading
 from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import date
 from pathlib import Path
 
+import dask
 import numpy as np
 import rasterio
+import rasterio.windows
 import xarray as xr
 from affine import Affine
 from rasterio.crs import CRS
@@ -63,6 +66,32 @@ class Grid:
         factor = self.crs.linear_units_factor[1]
         return abs(self.transform.a * self.transform.e - self.transform.b * self.transform.d) * factor**2
 
+    def row_areas_m2(self) -> np.ndarray:
+        """Area in m² of one pixel in each row, (height,) float64.
+
+        Constant for a projected CRS; for a geographic CRS, the geodesic area
+        of each row's pixel footprint on the CRS's ellipsoid (pyproj).
+
+        Raises:
+            RegionError: a geographic grid is rotated (its pixel footprints
+                are then not bounded by meridians and parallels).
+        """
+        if self.crs.is_projected:
+            return np.full(self.height, self.pixel_area_m2)
+        if self.transform.b != 0 or self.transform.d != 0:
+            raise RegionError(f"grid CRS {self.crs.to_string()} is geographic and rotated; reproject before computing areas")
+        from pyproj import CRS as ProjCRS
+
+        geod = ProjCRS.from_user_input(self.crs.to_wkt()).get_geod()
+        t = self.transform
+        x0, x1 = t.c, t.c + t.a
+        out = np.empty(self.height)
+        for r in range(self.height):
+            y0, y1 = t.f + r * t.e, t.f + (r + 1) * t.e
+            area, _ = geod.polygon_area_perimeter([x0, x1, x1, x0], [y0, y0, y1, y1])
+            out[r] = abs(area)
+        return out
+
     def same_as(self, other: Grid) -> bool:
         return self.crs == other.crs and self.height == other.height and self.width == other.width and self.transform.almost_equals(other.transform)
 
@@ -87,6 +116,21 @@ class TileStack:
     reflectance: xr.DataArray
     valid: xr.DataArray
     grid: Grid
+    reader: WindowReader | None = None
+
+    def read(self, row: int, col: int, height: int, width: int) -> tuple[np.ndarray, np.ndarray]:
+        """One window, inside the tile: float32 reflectance (time, band, h, w), NaN where invalid, and bool validity (time, h, w).
+
+        Goes straight to the files where the layout allows it: through the
+        lazy arrays, a small window would read every chunk it touches whole.
+        """
+        if self.reader is not None:
+            return self.reader(row, col, height, width)
+        ys, xs = slice(row, row + height), slice(col, col + width)
+        with dask.config.set(scheduler="synchronous"):  # inside a worker, don't reach for the cluster
+            refl = self.reflectance.isel(y=ys, x=xs).values
+            valid = self.valid.isel(y=ys, x=xs).values
+        return refl.astype(np.float32, copy=False), valid.astype(bool, copy=False)
 
     @property
     def dates(self) -> np.ndarray:
@@ -97,6 +141,71 @@ class TileStack:
     def years(self) -> np.ndarray:
         """Distinct calendar years covered, ascending."""
         return np.unique(self.dates.astype("datetime64[Y]").astype(int) + 1970)
+
+
+class WindowReader:
+    """Windowed reads from a folder of per-date GeoTIFFs, with the same scaling and masking as the lazy arrays.
+
+    Datasets are opened on first use, once per thread (GDAL handles are not
+    shared between threads).
+    """
+
+    def __init__(self, files: Sequence[Path], n_bands: int, qa_band: int | None, invalid_bits: Sequence[int], nodata: float | None, scale: np.ndarray, offset: np.ndarray) -> None:
+        self.files = [str(f) for f in files]
+        self.n_bands = n_bands
+        self.qa_band = qa_band
+        self.qa_mask = sum(1 << int(b) for b in invalid_bits)
+        self.nodata = nodata
+        self.scale = np.asarray(scale, np.float32)
+        self.offset = np.asarray(offset, np.float32)
+        self._local = threading.local()
+
+    def __getstate__(self) -> dict:
+        state = self.__dict__.copy()
+        del state["_local"]
+        return state
+
+    def __setstate__(self, state: dict) -> None:
+        self.__dict__.update(state)
+        self._local = threading.local()
+
+    def _datasets(self) -> list[rasterio.io.DatasetReader]:
+        ds = getattr(self._local, "datasets", None)
+        if ds is None:
+            ds = [rasterio.open(f) for f in self.files]
+            self._local.datasets = ds
+        return ds
+
+    def close(self) -> None:
+        for d in getattr(self._local, "datasets", None) or []:
+            d.close()
+        self._local.datasets = None
+
+    def __call__(self, row: int, col: int, height: int, width: int) -> tuple[np.ndarray, np.ndarray]:
+        win = rasterio.windows.Window(col, row, width, height)
+        t = len(self.files)
+        refl = np.empty((t, self.n_bands, height, width), np.float32)
+        valid = np.empty((t, height, width), bool)
+        indexes = list(range(1, self.n_bands + 1)) + ([self.qa_band] if self.qa_band else [])
+        for i, src in enumerate(self._datasets()):
+            try:
+                raw = src.read(indexes, window=win)
+            except rasterio.errors.RasterioIOError as exc:
+                raise RegionError(f"{self.files[i]}: cannot read window at row {row}, col {col} ({exc})") from None
+            data = raw[: self.n_bands]
+            bad = np.zeros((height, width), bool)
+            if self.nodata is not None:
+                bad |= (data == self.nodata).any(0)
+            if np.issubdtype(data.dtype, np.floating):
+                bad |= np.isnan(data).any(0)
+            if self.qa_band:
+                bad |= (raw[self.n_bands].astype(np.int64) & self.qa_mask) != 0
+            out = refl[i]
+            np.multiply(data, self.scale[i], out=out, casting="unsafe")
+            out += self.offset[i]
+            out[:, bad] = np.nan
+            valid[i] = ~bad
+        return refl, valid
 
 
 def parse_date_from_name(path: Path) -> date:
@@ -243,7 +352,10 @@ def _open_geotiff_folder(tile: TileConfig, region: RegionConfig) -> TileStack:
     if qa_band:
         invalid = invalid | qa_invalid(cube.isel(band=qa_band - 1), region.mask.invalid_bits)
     invalid = invalid.drop_vars("band", errors="ignore")
-    return _finish(tile.name, raw.drop_vars("band"), invalid, dates, region, grid)
+    stack = _finish(tile.name, raw.drop_vars("band"), invalid, dates, region, grid)
+    scale, offset = scaling_for_dates(dates, region.scaling)
+    stack.reader = WindowReader([by_date[d] for d in dates], n_refl, qa_band, region.mask.invalid_bits if qa_band else [], nodata, scale, offset)
+    return stack
 
 
 def _open_cube(tile: TileConfig, region: RegionConfig) -> TileStack:

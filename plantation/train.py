@@ -4,7 +4,7 @@
 
 1. open the region and its labels, build neighbourhood samples and the
    spatial train / validation / test split (:mod:`plantation.samples`);
-2. train ``model.members`` networks from different seeds (a small deep
+2. train ``network.members`` networks from different seeds (a small deep
    ensemble, Lakshminarayanan et al. 2017), each with early stopping on the
    validation loss;
 3. fit the temperature on the validation split and, optionally, a
@@ -60,7 +60,7 @@ class TrainConfig:
     region: RegionConfig = field(default_factory=RegionConfig)
     samples: SamplesConfig = field(default_factory=SamplesConfig)
     split: SplitConfig = field(default_factory=SplitConfig)
-    model: ModelConfig = field(default_factory=ModelConfig)
+    network: ModelConfig = field(default_factory=ModelConfig)
     training: TrainingConfig = field(default_factory=TrainingConfig)
     trainer: TrainerConfig = field(default_factory=TrainerConfig)
     calibration: CalibrationConfig = field(default_factory=CalibrationConfig)
@@ -79,7 +79,7 @@ def check_config(cfg: TrainConfig) -> None:
         raise ConfigError(f"training.gce_q: {t.gce_q!r} must be in (0, 1]")
     if not 0 <= t.date_dropout < 1:
         raise ConfigError(f"training.date_dropout: {t.date_dropout!r} must be in [0, 1)")
-    for key, val in (("training.max_epochs", t.max_epochs), ("training.batch_size", t.batch_size), ("model.members", cfg.model.members), ("model.hidden", cfg.model.hidden)):
+    for key, val in (("training.max_epochs", t.max_epochs), ("training.batch_size", t.batch_size), ("network.members", cfg.network.members), ("network.hidden", cfg.network.hidden)):
         if val < 1:
             raise ConfigError(f"{key}: {val!r} must be at least 1")
     if not 0 < cfg.calibration.interval_level < 1:
@@ -219,9 +219,9 @@ def network_spec(samples: SampleSet, cfg: TrainConfig) -> dict[str, Any]:
         "date_year": (years - years.min()).tolist(),
         "day_of_year": [float(v) for v in day_of_year_fraction(samples.dates)],
         "neighbourhood": cfg.samples.neighbourhood,
-        "conv_width": cfg.model.conv_width,
-        "hidden": cfg.model.hidden,
-        "dropout": cfg.model.dropout,
+        "conv_width": cfg.network.conv_width,
+        "hidden": cfg.network.hidden,
+        "dropout": cfg.network.dropout,
         "mean": [float(v) for v in mean],
         "std": [float(v) for v in std],
     }
@@ -298,7 +298,7 @@ def fit(samples: SampleSet, cfg: TrainConfig, folder: Path) -> TrainedModel:
     epochs: list[int] = []
     start = time.perf_counter()
     is_zero = True
-    for m in range(cfg.model.members):
+    for m in range(cfg.network.members):
         L.seed_everything(cfg.training.seed * 1000 + m, workers=True, verbose=False)
         t = cfg.training
         task = ConversionTask(

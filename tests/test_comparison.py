@@ -19,9 +19,9 @@ def test_benchmark_refuses_ddp_before_doing_anything(tmp_path):
 
 
 def test_training_part_of_the_benchmark_config():
-    cfg = ComparisonConfig(model=ModelConfig(members=2))
+    cfg = ComparisonConfig(network=ModelConfig(members=2))
     tc = train_config(cfg)
-    assert type(tc) is TrainConfig and tc.model.members == 2 and not hasattr(tc, "eval_sim")
+    assert type(tc) is TrainConfig and tc.network.members == 2 and not hasattr(tc, "eval_sim")
 
 
 def test_observability_on_the_toy_region_matches_a_pixel_by_pixel_count():

@@ -57,13 +57,13 @@ def test_sim_config_checks():
 
 
 @pytest.mark.parametrize("trainer", sorted(p.stem for p in (CONFIGS / "trainer").glob("*.yaml")))
-@pytest.mark.parametrize("model", sorted(p.stem for p in (CONFIGS / "model").glob("*.yaml")))
+@pytest.mark.parametrize("network", sorted(p.stem for p in (CONFIGS / "network").glob("*.yaml")))
 @pytest.mark.parametrize("training", sorted(p.stem for p in (CONFIGS / "training").glob("*.yaml")))
-def test_every_training_config_group_composes_and_checks(trainer, model, training):
+def test_every_training_config_group_composes_and_checks(trainer, network, training):
     from plantation.train import TrainConfig
     from plantation.train import check_config as check_train
 
-    cfg = to_object(_compose("train", [f"trainer={trainer}", f"model={model}", f"training={training}"]), TrainConfig)
+    cfg = to_object(_compose("train", [f"trainer={trainer}", f"network={network}", f"training={training}"]), TrainConfig)
     check_train(cfg)
     assert cfg.run_name == f"{cfg.region.name}_seed{cfg.training.seed}"
 

@@ -20,7 +20,7 @@ from plantation.region import open_region
 from plantation.train import ConversionTask, TrainConfig, check_config, outcome_weights
 
 ROOT = Path(__file__).resolve().parents[1]
-QUICK = ["model.members=1", "training.max_epochs=2", "trainer.enable_progress_bar=false"]
+QUICK = ["network.members=1", "training.max_epochs=2", "trainer.enable_progress_bar=false"]
 
 
 def train(tmp_path: Path, *overrides: str, name: str = "run") -> subprocess.CompletedProcess:
@@ -62,7 +62,7 @@ def test_bad_training_values_are_refused(change, message):
 
 @pytest.mark.slow
 def test_train_script_writes_a_complete_run(tmp_path):
-    res = train(tmp_path, "model.members=2", "training.max_epochs=3", "trainer.enable_progress_bar=false")
+    res = train(tmp_path, "network.members=2", "training.max_epochs=3", "trainer.enable_progress_bar=false")
     assert res.returncode == 0, res.stderr[-3000:]
     run = tmp_path / "run"
     assert str(run) in res.stdout
@@ -111,7 +111,7 @@ def test_same_config_and_seed_reproduce_the_metrics(tmp_path):
 
 @pytest.mark.slow
 def test_ddp_on_two_cpu_processes_trains_and_exports(tmp_path):
-    res = train(tmp_path, "trainer=ddp_cpu", "model.members=1", "training.max_epochs=1", "trainer.enable_progress_bar=false")
+    res = train(tmp_path, "trainer=ddp_cpu", "network.members=1", "training.max_epochs=1", "trainer.enable_progress_bar=false")
     assert res.returncode == 0, res.stderr[-3000:]
     # Two processes share each epoch: 2,096 training samples in batches of 64
     # make 32 steps on one process and 16 per process under DDP.
