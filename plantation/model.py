@@ -119,7 +119,11 @@ class ConvRecurrentNet(nn.Module):
         """
         b, t, c, h, w = x.shape
         z = self.normalise(x, valid)
-        f = self.encoder(z.reshape(b * t, c + 1, h, w))
+        z2 = z.reshape(b * t, c + 1, h, w)
+        if h > self.neighbourhood:
+            # Whole windows: oneDNN convolves channels-last images markedly faster.
+            z2 = z2.contiguous(memory_format=torch.channels_last)
+        f = self.encoder(z2)
         r = self.halo
         centre = z[:, :, :c, r : h - r, r : w - r].reshape(b * t, c, h - 2 * r, w - 2 * r)
         out = torch.cat([f, centre], 1)
@@ -139,26 +143,41 @@ class ConvRecurrentNet(nn.Module):
         Returns:
             (forward states, backward states), each (p, time, hidden).
         """
-        from torch.nn.utils.rnn import pack_padded_sequence, pad_packed_sequence
+        from torch.nn.utils.rnn import PackedSequence
 
         p, t, d = e.shape
+        h = self.hidden
         obs = observed.bool()
         lengths = obs.sum(1)
-        order = torch.argsort((~obs).to(torch.int8), dim=1, stable=True)  # observed dates first, in time order
-        packed_in = e.gather(1, order.unsqueeze(-1).expand(p, t, d))
-        out = e.new_zeros(p, t, 2 * self.hidden)
-        some = lengths > 0
-        if bool(some.any()):
-            packed = pack_padded_sequence(packed_in[some], lengths[some].cpu(), batch_first=True, enforce_sorted=False)
-            o, _ = self.gru(packed)
-            o, _ = pad_packed_sequence(o, batch_first=True, total_length=t)
-            out = out.index_put((torch.nonzero(some).squeeze(1),), o)
+        # The packed layout by hand: pixels sorted by length (longest first);
+        # compressed step j of the pixel ranked r sits at row offsets[j] + r.
+        # Building it with index arithmetic avoids padding and unpadding.
+        sorted_len, sorted_idx = torch.sort(lengths, descending=True, stable=True)
+        n_steps = int(sorted_len[0]) if p else 0
+        if n_steps == 0:
+            zero = e.new_zeros(p, t, h)
+            return zero, zero.clone()
+        rank = torch.empty_like(sorted_idx)
+        rank[sorted_idx] = torch.arange(p, device=e.device)
+        batch_sizes = (sorted_len.unsqueeze(0) > torch.arange(n_steps, device=e.device).unsqueeze(1)).sum(1)
+        offsets = torch.cumsum(batch_sizes, 0) - batch_sizes
+        total = int(batch_sizes.sum())
         seen = obs.long().cumsum(1)  # observed dates up to and including each date
+        rows = offsets[(seen - 1).clamp(0, n_steps - 1)] + rank.unsqueeze(1)  # (p, t)
+        src = torch.empty(total, dtype=torch.long, device=e.device)
+        src[rows[obs]] = torch.nonzero(obs.reshape(-1)).squeeze(1)
+        # No sorted/unsorted indices: the rows are already in sorted order, and
+        # the final states (which they would permute) are not used.
+        packed = PackedSequence(e.reshape(p * t, d).index_select(0, src), batch_sizes.cpu())
+        out = self.gru(packed)[0].data  # (total, 2H)
         fwd_at = seen - 1  # compressed position of the last observed date so far (−1: none)
         bwd_at = seen - obs.long()  # compressed position of the next observed date (= length: none)
-        h = self.hidden
-        fwd = out[..., :h].gather(1, fwd_at.clamp(0, t - 1).unsqueeze(-1).expand(p, t, h)) * (fwd_at >= 0).unsqueeze(-1)
-        bwd = out[..., h:].gather(1, bwd_at.clamp(0, t - 1).unsqueeze(-1).expand(p, t, h)) * (bwd_at < lengths.unsqueeze(1)).unsqueeze(-1)
+        fwd_ok = (fwd_at >= 0).unsqueeze(-1)
+        bwd_ok = (bwd_at < lengths.unsqueeze(1)).unsqueeze(-1)
+        fwd_rows = (offsets[fwd_at.clamp(0, n_steps - 1)] + rank.unsqueeze(1)).clamp(max=total - 1)
+        bwd_rows = (offsets[bwd_at.clamp(0, n_steps - 1)] + rank.unsqueeze(1)).clamp(max=total - 1)
+        fwd = out[:, :h].index_select(0, fwd_rows.reshape(-1)).reshape(p, t, h) * fwd_ok
+        bwd = out[:, h:].index_select(0, bwd_rows.reshape(-1)).reshape(p, t, h) * bwd_ok
         return fwd, bwd
 
     def sequence(self, feats: torch.Tensor, observed: torch.Tensor) -> torch.Tensor:
@@ -171,21 +190,26 @@ class ConvRecurrentNet(nn.Module):
         Returns:
             (p, 3 + n_years) logits.
         """
-        p, t, _ = feats.shape
-        season = self.season.unsqueeze(0).expand(p, t, 2)
-        e = self.embed(torch.cat([feats, season], -1))
+        p, t, nf = feats.shape
+        # The Linear layers below act on concatenations; applying their weight
+        # blocks part by part gives the same numbers without building them.
+        lin = self.embed[0]
+        e = self.embed[1:](nn.functional.linear(feats, lin.weight[:, :nf]) + nn.functional.linear(self.season, lin.weight[:, nf:], lin.bias))
         hf_all, hb_all = self.masked_gru(e, observed)
         hf, hb = hf_all[:, -1], hb_all[:, 0]
-        both = torch.cat([hf_all, hb_all], -1)
-        pooled_year = torch.einsum("ptf,ty->pyf", both, self.year_pool)  # (p, Y, 2H)
-        zero = e.new_zeros(p, 1, self.hidden)
-        fwd_end = hf_all[:, self.year_last]  # state after each year
+        h = self.hidden
+        fwd_end = hf_all[:, self.year_last]  # (p, Y, H) state after each year
         bwd_start = hb_all[:, self.year_first]  # state from each year on
-        before = torch.cat([zero, fwd_end[:, :-1]], 1)  # forward state before year y
-        after = torch.cat([bwd_start[:, 1:], zero], 1)  # backward state after year y
-        z_year = torch.cat([pooled_year, before, after, fwd_end, bwd_start], -1)
-        year_logits = self.year_head(z_year).squeeze(-1)
-        static = self.static_head(torch.cat([both.mean(1), hf, hb], -1))
+        w = self.year_head[0].weight  # blocks: pooled fwd, pooled bwd, before, after, fwd_end, bwd_start
+        pool = self.year_pool.t()  # (Y, t)
+        z = nn.functional.linear(torch.matmul(pool, hf_all), w[:, :h]) + nn.functional.linear(torch.matmul(pool, hb_all), w[:, h : 2 * h])
+        fe = nn.functional.linear(fwd_end, torch.cat([w[:, 2 * h : 3 * h], w[:, 4 * h : 5 * h]]))  # (p, Y, 2H)
+        bs = nn.functional.linear(bwd_start, torch.cat([w[:, 3 * h : 4 * h], w[:, 5 * h :]]))
+        z = z + fe[..., h:] + bs[..., h:] + self.year_head[0].bias
+        z[:, 1:] += fe[:, :-1, :h]  # forward state before year y
+        z[:, :-1] += bs[:, 1:, :h]  # backward state after year y
+        year_logits = self.year_head[1:](z).squeeze(-1)
+        static = self.static_head(torch.cat([hf_all.mean(1), hb_all.mean(1), hf, hb], -1))
         return torch.cat([static, year_logits], -1)
 
     def forward(self, x: torch.Tensor, valid: torch.Tensor) -> torch.Tensor:
