@@ -266,7 +266,17 @@ def encode_layers(probs: np.ndarray, epistemic: np.ndarray, clear: np.ndarray, y
 
 def _profile(stack: TileStack, window: int) -> dict[str, Any]:
     g = stack.grid
-    prof: dict[str, Any] = {"driver": "GTiff", "height": g.height, "width": g.width, "count": len(LAYERS), "dtype": "int16", "crs": g.crs, "transform": g.transform, "nodata": NODATA, "BIGTIFF": "IF_SAFER"}
+    prof: dict[str, Any] = {
+        "driver": "GTiff",
+        "height": g.height,
+        "width": g.width,
+        "count": len(LAYERS),
+        "dtype": "int16",
+        "crs": g.crs,
+        "transform": g.transform,
+        "nodata": NODATA,
+        "BIGTIFF": "IF_SAFER",
+    }
     if g.height >= 16 and g.width >= 16:
         prof.update(tiled=True, blockxsize=min(window, 256), blockysize=min(window, 256))
     return prof
@@ -335,7 +345,7 @@ def map_tile(
 
     try:
         with rasterio.open(raw, "w", **_profile(stack, settings.window)) as dst, ThreadPoolExecutor(1, "read") as reader, ThreadPoolExecutor(1, "write") as writer:
-            for i, (name, scale, units) in enumerate(LAYERS, start=1):
+            for i, (name, _, units) in enumerate(LAYERS, start=1):
                 dst.set_band_description(i, name)
                 dst.update_tags(i, units=units)
             dst.scales = [s for _, s, _ in LAYERS]
@@ -530,21 +540,23 @@ def plan(cfg: MapConfig) -> tuple[list[TileJob], list[TileResult], Artefact, Set
         tiles = [t for t in tiles if t.name in cfg.tiles]
     stacks = open_region(region)  # headers only; fails early on a bad tile
     by_name = {s.name: s for s in stacks}
+    keys = {}
+    for t in tiles:
+        stack = by_name[t.name]
+        check_compatible(art, stack, region.scaling)
+        keys[t.name] = tile_key(digest, settings, region, input_signature(stack, t))
+        if stack.reader is not None:
+            stack.reader.close()
     out = Path(cfg.out_dir)
     out.mkdir(parents=True, exist_ok=True)
     manifest = Manifest(out / "manifest.json")
     jobs, done = [], []
     for t in tiles:
-        stack = by_name[t.name]
-        check_compatible(art, stack, region.scaling)
-        key = tile_key(digest, settings, region, input_signature(stack, t))
-        prev = manifest.finished(t.name, key, out) if cfg.resume else None
+        prev = manifest.finished(t.name, keys[t.name], out) if cfg.resume else None
         if prev is not None:
             done.append(prev)
         else:
-            jobs.append(TileJob(t, region, str(model_dir), digest, settings, str(out), key))
-        if stack.reader is not None:
-            stack.reader.close()
+            jobs.append(TileJob(t, region, str(model_dir), digest, settings, str(out), keys[t.name]))
     return jobs, done, art, settings
 
 

@@ -41,7 +41,12 @@ def quicklook(cog: Path, png: Path, *, years: list[int], cutoff_year: int, max_s
     fig, axes = plt.subplots(1, 2, figsize=(12, 6.2), constrained_layout=True)
     axes[0].imshow(cls, cmap=cmap, norm=BoundaryNorm(np.arange(codes[0] - 0.5, codes[-1] + 1), cmap.N), extent=extent, interpolation="nearest")
     axes[0].set_title(f"{name}: map class")
-    axes[0].legend(handles=[Patch(color=CLASS_STYLE[c][1], label=CLASS_STYLE[c][0]) for c in codes] + [Patch(facecolor="#ffffff", edgecolor="#777777", label="no data (too few clear dates)")], loc="lower left", fontsize=7, framealpha=0.9)
+    axes[0].legend(
+        handles=[Patch(color=CLASS_STYLE[c][1], label=CLASS_STYLE[c][0]) for c in codes] + [Patch(facecolor="#ffffff", edgecolor="#777777", label="no data (too few clear dates)")],
+        loc="lower left",
+        fontsize=7,
+        framealpha=0.9,
+    )
     yr = np.ma.masked_where(np.ma.getmaskarray(onset) | (onset.filled(0) == 0), onset)
     ycmap = YEAR_RAMP.resampled(len(years))
     ycmap.set_bad("#f2f2f2")

@@ -84,11 +84,14 @@ class Grid:
 
         geod = ProjCRS.from_user_input(self.crs.to_wkt()).get_geod()
         t = self.transform
-        x0, x1 = t.c, t.c + t.a
+        # A footprint's top and bottom edges are parallels, not geodesics:
+        # points along them keep large (degree-sized) pixels exact too.
+        xs = np.linspace(t.c, t.c + t.a, 17)
+        lons = np.concatenate([xs, xs[::-1]])
         out = np.empty(self.height)
         for r in range(self.height):
             y0, y1 = t.f + r * t.e, t.f + (r + 1) * t.e
-            area, _ = geod.polygon_area_perimeter([x0, x1, x1, x0], [y0, y0, y1, y1])
+            area, _ = geod.polygon_area_perimeter(lons, np.repeat([y0, y1], len(xs)))
             out[r] = abs(area)
         return out
 

@@ -79,9 +79,19 @@ def test_benchmark_config_composes_with_another_seed():
 def test_training_typos_are_errors():
     from plantation.train import TrainConfig
 
-    with pytest.raises(ConfigCompositionException, match="model.hiden"):
-        _compose("train", ["model.hiden=8"])
+    with pytest.raises(ConfigCompositionException, match="network.hiden"):
+        _compose("train", ["network.hiden=8"])
     with pytest.raises(ConfigError, match="hiden"):
-        to_object(_compose("train", ["+model.hiden=8"]), TrainConfig)
+        to_object(_compose("train", ["+network.hiden=8"]), TrainConfig)
     with pytest.raises(ConfigCompositionException, match="training.lr"):
         _compose("train", ["training.lr=fast"])
+
+
+def test_map_config_composes_and_takes_a_model_path():
+    from plantation.mapping import MapConfig, check_config
+
+    cfg = to_object(_compose("map", ["model=somewhere/run", "engine.workers=2"]), MapConfig)
+    check_config(cfg)
+    assert cfg.model == "somewhere/run" and cfg.engine.workers == 2 and cfg.out_dir == f"outputs/maps/{cfg.region.name}"
+    with pytest.raises(ConfigError, match="windw"):
+        to_object(_compose("map", ["+windw=3"]), MapConfig)

@@ -184,3 +184,46 @@ def test_reading_many_windows_on_disk_is_equal_to_whole(make_region, tiny_values
     parts = [st.reflectance.isel(y=slice(r, r + 4), x=slice(c, c + 4)).values for r in (0, 4) for c in (0, 4)]
     whole = np.block([[parts[0], parts[1]], [parts[2], parts[3]]])
     np.testing.assert_array_equal(whole, st.reflectance.values)
+
+
+def test_window_reads_from_the_files_equal_the_lazy_arrays(make_region, tiny_values):
+    """The direct windowed reader applies the same scaling rules, nodata and QA bits as the lazy path."""
+    vals = tiny_values.copy()
+    vals[2:] += 1000
+    vals[4, 3, 5, 6] = -9999
+    qa = np.zeros((5, 8, 8), np.int16)
+    qa[1, 2, 3] = 1
+    qa[3, 0, 0] = 8  # not an invalid bit
+    rules = [ScalingRule(start=None, scale=1e-4, offset=0.0), ScalingRule(start="2016-01-01", scale=1e-4, offset=-0.1)]
+    region = make_region(values=vals, qa=qa, scaling=rules)
+    st = open_tile(region.tiles[0], region)
+    assert st.reader is not None
+    for r, c, h, w in [(0, 0, 8, 8), (1, 2, 5, 3), (7, 7, 1, 1)]:
+        refl, valid = st.read(r, c, h, w)
+        assert refl.dtype == np.float32 and valid.dtype == bool
+        np.testing.assert_array_equal(refl, st.reflectance.values[:, :, r : r + h, c : c + w])
+        np.testing.assert_array_equal(valid, st.valid.values[:, r : r + h, c : c + w])
+    _, valid = st.read(0, 0, 8, 8)
+    assert not valid[1, 2, 3] and not valid[4, 5, 6] and valid[3, 0, 0]
+
+
+def test_pixel_areas_projected_and_geodesic():
+    from plantation.region import Grid
+
+    utm = Grid(rasterio.crs.CRS.from_epsg(32650), Affine(30, 0, 6e5, 0, -30, 2e5), 3, 4)
+    # 30 m pixel = 0.09 ha (common practice, shared check values).
+    np.testing.assert_allclose(utm.row_areas_m2(), 900.0)
+    geo = Grid(rasterio.crs.CRS.from_epsg(4326), Affine(1.0, 0, 100.0, 0, -1.0, 2.0), 2, 1)
+    # Area of an ellipsoidal quadrangle, Snyder (1987) Map Projections: A Working
+    # Manual, eq. 3-12 with q(phi) of eq. 3-12: A = b^2 dlambda / 2 * (q2 - q1).
+    a, f = 6378137.0, 1 / 298.257223563
+    e = np.sqrt(f * (2 - f))
+    b = a * (1 - f)
+
+    def q(phi):
+        s = np.sin(np.radians(phi))
+        return s / (1 - e**2 * s**2) + np.log((1 + e * s) / (1 - e * s)) / (2 * e)
+
+    want = [b**2 * np.radians(1.0) / 2 * (q(hi) - q(lo)) for lo, hi in [(1, 2), (0, 1)]]
+    np.testing.assert_allclose(geo.row_areas_m2(), want, rtol=1e-6)
+    assert 1.2e10 < want[1] < 1.25e10  # about 12,300 km² (from memory, a 1° cell at the equator)

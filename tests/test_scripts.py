@@ -55,3 +55,27 @@ def test_survey_bad_input_one_line_error_nothing_written(tmp_path, overrides, me
     lines = res.stderr.strip().splitlines()
     assert len(lines) == 1 and lines[0].startswith("error: ") and message in lines[0], res.stderr
     assert not out.exists() and not list(tmp_path.glob("survey*"))
+
+
+@pytest.mark.slow
+def test_map_script_on_the_toy_region(tmp_path):
+    res = run("train.py", f"out_dir={tmp_path / 'train'}", "run_name=quick", "network.members=1", "training.max_epochs=1", "trainer.enable_progress_bar=false")
+    assert res.returncode == 0, res.stderr
+    maps = tmp_path / "maps"
+    res = run("map.py", f"model={tmp_path / 'train' / 'quick'}", f"out_dir={maps}", "progress=false", "tiles=[t01]")
+    assert res.returncode == 0, res.stderr
+    assert "tiles: 1 mapped" in res.stdout and "converted area by onset year (ha)" in res.stdout
+    assert {p.name for p in maps.iterdir()} == {"t01.tif", "t01.qml", "t01.onset_year.qml", "t01.png", "manifest.json", "summary.json"}
+    with rasterio.open(maps / "t01.tif") as src, rasterio.open(ROOT / "toy_tiles" / "t01" / "truth.tif") as truth:
+        assert src.crs == truth.crs and src.transform == truth.transform and src.shape == truth.shape
+    res = run("map.py", f"model={tmp_path / 'train' / 'quick'}", f"out_dir={maps}", "progress=false", "tiles=[t01]")
+    assert "tiles: 0 mapped, 1 already finished" in res.stdout
+
+
+@pytest.mark.slow
+def test_map_script_bad_model_is_one_line_and_writes_nothing(tmp_path):
+    res = run("map.py", f"model={tmp_path / 'none'}", f"out_dir={tmp_path / 'maps'}")
+    assert res.returncode == 1
+    lines = res.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("error: ") and "none: no model here" in lines[0], res.stderr
+    assert not (tmp_path / "maps").exists()
