@@ -1,0 +1,305 @@
+"""Mapping speed and memory, measured side by side in one run (``scripts/benchmark_speed.py``).
+
+* the machine's roofline: a large float32 GEMM on the same threads;
+* the model's achieved GFLOP/s on a window, from FLOPs counted by
+  ``torch.utils.flop_counter`` (convolutions, matrix products and the GRU's
+  own matrix products, which run as ``addmm`` on packed sequences);
+* one toy tile from GeoTIFF in to COG out (end to end) against the model
+  alone on pre-read windows (the pipeline's overhead);
+* the naive patch-by-patch path and the trees baseline on the same tile;
+* peak resident memory of a fresh process mapping a 1024² and a 4096²
+  simulated tile (a one-member network of the default size on four dates,
+  random weights: memory depends on shapes, not on what was learnt).
+"""
+
+from __future__ import annotations
+
+import json
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from dataclasses import asdict, dataclass, field, replace
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import torch
+
+from plantation.artefact import Artefact, Calibration, ModelCard, load, save
+from plantation.config import RegionConfig, TileConfig
+from plantation.inference import read_window, windows
+from plantation.mapping import Settings, map_tile, resolve_model, window_probabilities
+from plantation.model import ConvRecurrentNet
+from plantation.region import open_tile
+from plantation.samples import day_of_year_fraction, features, read_patches, year_of
+from plantation.simulate import SimulationConfig
+
+
+@dataclass
+class SpeedConfig:
+    """Schema of ``configs/benchmark_speed.yaml``."""
+
+    region: RegionConfig = field(default_factory=RegionConfig)
+    model: str = "outputs/train/selvara_toy_seed0"
+    tile: str = "t01"
+    window: int = 128
+    pixel_batch: int = 1024
+    patch_pixels: int = 2048
+    repeats: int = 3
+    rss_sizes: list[int] = field(default_factory=lambda: [1024, 4096])
+    cache_dir: str = "bench/cache/speed"
+    rss_sim: SimulationConfig = field(default_factory=SimulationConfig)
+    out: str = "bench/results/speed.json"
+
+
+def peak_rss_mb() -> float:
+    """This process's peak resident memory (VmHWM) in MB."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024
+    except OSError:
+        pass
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def gemm_gflops(n: int = 2048, repeats: int = 5) -> float:
+    """Median GFLOP/s of an n × n float32 matrix product on torch's threads."""
+    a, b = torch.randn(n, n), torch.randn(n, n)
+    for _ in range(2):
+        a @ b
+    ts = []
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        a @ b
+        ts.append(time.perf_counter() - t0)
+    return 2 * n**3 / float(np.median(ts)) / 1e9
+
+
+def _median_seconds(fn: Any, repeats: int) -> float:
+    ts = []
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        fn()
+        ts.append(time.perf_counter() - t0)
+    return float(np.median(ts))
+
+
+def model_flops(art: Artefact, x: torch.Tensor, v: torch.Tensor, pixel_batch: int) -> int:
+    from torch.utils.flop_counter import FlopCounterMode
+
+    with torch.inference_mode(), FlopCounterMode(display=False) as fc:
+        for m in art.members:
+            m.forward_window(x, v, pixel_batch)
+    return int(fc.get_total_flops())
+
+
+def random_model(folder: Path, dates: list[str], region: RegionConfig, members: int = 1) -> Path:
+    """A network of the default size for ``dates``, random weights, saved as an artefact."""
+    d = np.array(dates, dtype="datetime64[D]")
+    yrs = year_of(d)
+    spec = {
+        "n_channels": len(region.bands) + 4,
+        "date_year": (yrs - yrs.min()).tolist(),
+        "day_of_year": day_of_year_fraction(d).tolist(),
+        "neighbourhood": 5,
+        "conv_width": 32,
+        "hidden": 64,
+        "dropout": 0.0,
+    }
+    nets = []
+    for i in range(members):
+        torch.manual_seed(i)
+        nets.append(ConvRecurrentNet(**spec).eval())
+    n_out = 3 + len(np.unique(yrs))
+    card = ModelCard(
+        bands=list(region.bands),
+        indices=["NDVI", "EVI", "NBR", "NDMI"],
+        scaling=[asdict(r) for r in region.scaling],
+        dates=[str(x) for x in d],
+        years=[int(y) for y in np.unique(yrs)],
+        network=spec,
+        members=members,
+        calibration=Calibration(temperature=1.0, loss_weights=[1.0] * n_out, train_prior=[1.0 / n_out] * n_out),
+        cutoff_year=int(yrs.max()) - 1,
+        interval_level=0.8,
+        region=region.name,
+        labels_fingerprint="none",
+        package_version="bench",
+    )
+    return save(folder, card, nets)
+
+
+def make_rss_tiles(cfg: SpeedConfig, folder: Path) -> dict[int, Path]:
+    """Simulated tiles of each size in ``cfg.rss_sizes`` on four dates: the smallest simulated, larger ones as mosaics of it."""
+    import rasterio
+
+    from plantation.simulate import write_region
+
+    base = min(cfg.rss_sizes)
+    out: dict[int, Path] = {}
+    src_dir = folder / f"tile{base}"
+    if not (src_dir / "t01" / "imagery").is_dir():
+        sim = replace(cfg.rss_sim, name=f"selvara_rss{base}", tiles_x=1, tiles_y=1, tile_size=base, first_year=2023, last_year=2024, composite_doys=[100, 280])
+        write_region(sim, src_dir, progress=False)
+    out[base] = src_dir / "t01" / "imagery"
+    for size in cfg.rss_sizes:
+        if size == base:
+            continue
+        k = size // base
+        dst_dir = folder / f"tile{size}" / "imagery"
+        files = sorted(out[base].glob("*.tif"))
+        if dst_dir.is_dir() and len(list(dst_dir.glob("*.tif"))) == len(files):
+            out[size] = dst_dir
+            continue
+        dst_dir.mkdir(parents=True, exist_ok=True)
+        for f in files:
+            with rasterio.open(f) as src:
+                prof = src.profile | {"width": size, "height": size, "tiled": True, "blockxsize": 256, "blockysize": 256, "BIGTIFF": "IF_SAFER"}
+                block = src.read()
+            tmp = dst_dir / f".{f.name}.partial"
+            with rasterio.open(tmp, "w", **prof) as dst:
+                for i in range(k):
+                    for j in range(k):
+                        dst.write(block, window=rasterio.windows.Window(j * base, i * base, base, base))
+            tmp.replace(dst_dir / f.name)
+        out[size] = dst_dir
+    return out
+
+
+def rss_child(region_json: str, model_dir: str, window: int, pixel_batch: int, dest: str) -> dict[str, Any]:
+    """Map one tile in this (fresh) process; return its peak RSS and time."""
+    from plantation.config import to_object
+
+    region = to_object(json.loads(region_json), RegionConfig)
+    art = load(model_dir)
+    stack = open_tile(region.tiles[0], region)
+    t0 = time.perf_counter()
+    map_tile(stack, art, Settings(4, art.card.cutoff_year, 0.8, window, pixel_batch, 0, False), Path(dest), region=region)
+    return {"peak_rss_mb": round(peak_rss_mb(), 1), "seconds": round(time.perf_counter() - t0, 2), "pixels": stack.grid.height * stack.grid.width}
+
+
+def run(cfg: SpeedConfig) -> dict[str, Any]:
+    """Every figure of ``speed.json``."""
+    from plantation.baselines import AnnualTrees, annual_features
+    from plantation.comparison import centre_series, tile_series
+    from plantation.train import TrainConfig, load_region_samples
+
+    threads = torch.get_num_threads()
+    res: dict[str, Any] = {"threads": threads, "torch": torch.__version__}
+    model_dir = resolve_model(cfg.model)
+    art = load(model_dir)
+    tile_cfg = next((t for t in cfg.region.tiles if t.name == cfg.tile), None)
+    if tile_cfg is None:
+        from plantation.errors import ConfigError
+
+        raise ConfigError(f"tile: {cfg.tile!r} is not a tile of region {cfg.region.name!r}")
+    stack = open_tile(tile_cfg, cfg.region)
+    g = stack.grid
+    n_px = g.height * g.width
+    halo = art.members[0].halo
+    res.update(dates=len(art.card.dates), bands=len(art.card.bands), members=len(art.members), tile_px=[g.height, g.width], window=cfg.window, pixel_batch=cfg.pixel_batch)
+
+    res["gemm_gflops"] = round(gemm_gflops(), 2)
+
+    # The model on one full window of real data, FLOPs counted.
+    r0 = c0 = 0
+    w = min(cfg.window, g.height, g.width)
+    refl, valid = read_window(stack, r0, c0, w, w, halo)
+    x, v = torch.from_numpy(features(refl, art.card.bands, art.card.indices)), torch.from_numpy(valid)
+    flops = model_flops(art, x, v, cfg.pixel_batch)
+
+    def members_only() -> None:
+        with torch.inference_mode():
+            for m in art.members:
+                m.forward_window(x, v, cfg.pixel_batch)
+
+    sec = _median_seconds(members_only, cfg.repeats)
+    res["model_flops_per_px_date"] = round(flops / (w * w * len(art.card.dates) * len(art.members)))
+    res["model_gflops"] = round(flops / sec / 1e9, 2)
+    res["roofline_ratio"] = round(res["model_gflops"] / res["gemm_gflops"], 3)
+
+    # Model only: every window of the tile, inputs already in memory.
+    wins = list(windows(g.height, g.width, cfg.window))
+    inputs = []
+    for r, c, h, ww in wins:
+        a, b = read_window(stack, r, c, h, ww, halo)
+        inputs.append((torch.from_numpy(features(a, art.card.bands, art.card.indices)), torch.from_numpy(b)))
+    sec = _median_seconds(lambda: [window_probabilities(art, xi, vi, cfg.pixel_batch) for xi, vi in inputs], cfg.repeats)
+    res["model_only_px_per_s"] = round(n_px / sec, 1)
+    inputs.clear()
+
+    # End to end: GeoTIFF in, COG out, through the mapping pipeline.
+    settings = Settings(4, art.card.cutoff_year, art.card.interval_level, cfg.window, cfg.pixel_batch, 0, False)
+    with tempfile.TemporaryDirectory(prefix="plantation-speed-") as tmp:
+
+        def end_to_end() -> None:
+            map_tile(open_tile(tile_cfg, cfg.region), art, settings, Path(tmp) / "tile.tif", region=cfg.region)
+
+        sec = _median_seconds(end_to_end, cfg.repeats)
+    res["end_to_end_px_per_s"] = round(n_px / sec, 1)
+    res["pipeline_ratio"] = round(res["end_to_end_px_per_s"] / res["model_only_px_per_s"], 3)
+
+    # Naive patch by patch: each pixel's k x k patch through forward(), batched.
+    rng = np.random.default_rng(0)
+    idx = rng.choice(n_px, size=min(cfg.patch_pixels, n_px), replace=False)
+    pr, pv = read_patches(stack, idx // g.width, idx % g.width, art.members[0].neighbourhood)
+    xp = torch.from_numpy(features(pr, art.card.bands, art.card.indices))
+    vp = torch.from_numpy(pv)
+
+    def patchwise() -> None:
+        with torch.inference_mode():
+            for i in range(0, len(idx), 256):
+                z = torch.stack([m(xp[i : i + 256], vp[i : i + 256]) for m in art.members])
+                art.calibrated_log_probs(z).exp()
+
+    sec = _median_seconds(patchwise, cfg.repeats)
+    res["patchwise_px_per_s"] = round(len(idx) / sec, 1)
+    res["fullconv_speedup"] = round(res["model_only_px_per_s"] / res["patchwise_px_per_s"], 2)
+
+    # The trees baseline mapping the same tile (reading, annual features, prediction).
+    tc = TrainConfig(region=cfg.region)
+    _, _, samples = load_region_samples(tc)
+    train = samples.part("train")
+    date_year = year_of(samples.dates) - year_of(samples.dates).min()
+    ny = len(samples.outcomes.years)
+    xs, vs = centre_series(train)
+    trees = AnnualTrees().fit(annual_features(xs, vs, date_year, ny, samples.channels), train.target, samples.outcomes.size)
+
+    def trees_map() -> None:
+        xt, vt = tile_series(open_tile(tile_cfg, cfg.region), list(cfg.region.bands), list(art.card.indices))
+        trees.predict_proba(annual_features(xt, vt, date_year, ny, samples.channels))
+
+    sec = _median_seconds(trees_map, cfg.repeats)
+    res["trees_px_per_s"] = round(n_px / sec, 1)
+    res["model_vs_trees"] = round(res["end_to_end_px_per_s"] / res["trees_px_per_s"], 3)
+
+    # Peak memory of fresh processes mapping large simulated tiles.
+    cache = Path(cfg.cache_dir)
+    tiles = make_rss_tiles(cfg, cache)
+    base_folder = tiles[min(cfg.rss_sizes)]
+    first = open_tile(TileConfig(name="t01", path=str(base_folder)), cfg.region)
+    rss_model = random_model(cache / "rss_model", [str(d) for d in first.dates], cfg.region)
+    rss: dict[str, Any] = {"dates": len(first.dates), "members": 1, "window": cfg.window}
+    for size, folder in sorted(tiles.items()):
+        region = replace(cfg.region, name=f"rss{size}", tiles=[TileConfig(name="t01", path=str(folder))])
+        region_json = json.dumps(asdict(region))
+        with tempfile.TemporaryDirectory(prefix="plantation-rss-") as tmp:
+            code = "import json, sys; from plantation.speed import rss_child; print(json.dumps(rss_child(*sys.argv[1:3], int(sys.argv[3]), int(sys.argv[4]), sys.argv[5])))"
+            proc = subprocess.run(
+                [sys.executable, "-c", code, region_json, str(rss_model), str(cfg.window), str(cfg.pixel_batch), str(Path(tmp) / "tile.tif")], capture_output=True, text=True, check=False
+            )
+            if proc.returncode != 0:
+                raise RuntimeError(f"memory run for {size}² failed: {proc.stderr.strip().splitlines()[-1] if proc.stderr.strip() else proc.returncode}")
+            child = json.loads(proc.stdout.strip().splitlines()[-1])
+        res[f"peak_rss_mb_{size}"] = child["peak_rss_mb"]
+        rss[f"seconds_{size}"] = child["seconds"]
+        rss[f"px_per_s_{size}"] = round(child["pixels"] / child["seconds"], 1)
+    sizes = sorted(cfg.rss_sizes)
+    if len(sizes) > 1:
+        res["rss_ratio"] = round(res[f"peak_rss_mb_{sizes[-1]}"] / res[f"peak_rss_mb_{sizes[0]}"], 3)
+    res["rss_run"] = rss
+    res["date"] = time.strftime("%Y-%m-%d")
+    return res
