@@ -97,6 +97,7 @@ class EngineConfig:
     workers: int = 0
     threads: int = 0
     scheduler: str | None = None
+    gdal_cache_mb: int | None = 256
 
 
 @dataclass
@@ -616,6 +617,9 @@ def run(cfg: MapConfig) -> MapSummary:
             is written for a tile that fails.
     """
     t0 = time.perf_counter()
+    if cfg.engine.gdal_cache_mb:
+        # Before GDAL's first read in this process; LocalCluster workers inherit it.
+        os.environ.setdefault("GDAL_CACHEMAX", str(int(cfg.engine.gdal_cache_mb)))
     jobs, done, _art, settings = plan(cfg)
     out = Path(cfg.out_dir)
     manifest = Manifest(out / "manifest.json")

@@ -15,6 +15,7 @@
 from __future__ import annotations
 
 import json
+import os
 import resource
 import subprocess
 import sys
@@ -50,6 +51,7 @@ class SpeedConfig:
     repeats: int = 3
     rss_sizes: list[int] = field(default_factory=lambda: [1024, 4096])
     cache_dir: str = "bench/cache/speed"
+    gdal_cache_mb: int = 128
     rss_sim: SimulationConfig = field(default_factory=SimulationConfig)
     out: str = "bench/results/speed.json"
 
@@ -282,14 +284,15 @@ def run(cfg: SpeedConfig) -> dict[str, Any]:
     base_folder = tiles[min(cfg.rss_sizes)]
     first = open_tile(TileConfig(name="t01", path=str(base_folder)), cfg.region)
     rss_model = random_model(cache / "rss_model", [str(d) for d in first.dates], cfg.region)
-    rss: dict[str, Any] = {"dates": len(first.dates), "members": 1, "window": cfg.window}
+    rss: dict[str, Any] = {"dates": len(first.dates), "members": 1, "window": cfg.window, "gdal_cache_mb": cfg.gdal_cache_mb}
     for size, folder in sorted(tiles.items()):
         region = replace(cfg.region, name=f"rss{size}", tiles=[TileConfig(name="t01", path=str(folder))])
         region_json = json.dumps(asdict(region))
         with tempfile.TemporaryDirectory(prefix="plantation-rss-") as tmp:
             code = "import json, sys; from plantation.speed import rss_child; print(json.dumps(rss_child(*sys.argv[1:3], int(sys.argv[3]), int(sys.argv[4]), sys.argv[5])))"
+            env = {**os.environ, "GDAL_CACHEMAX": str(cfg.gdal_cache_mb)}
             proc = subprocess.run(
-                [sys.executable, "-c", code, region_json, str(rss_model), str(cfg.window), str(cfg.pixel_batch), str(Path(tmp) / "tile.tif")], capture_output=True, text=True, check=False
+                [sys.executable, "-c", code, region_json, str(rss_model), str(cfg.window), str(cfg.pixel_batch), str(Path(tmp) / "tile.tif")], capture_output=True, text=True, check=False, env=env
             )
             if proc.returncode != 0:
                 raise RuntimeError(f"memory run for {size}² failed: {proc.stderr.strip().splitlines()[-1] if proc.stderr.strip() else proc.returncode}")
