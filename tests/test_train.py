@@ -131,7 +131,7 @@ def test_ddp_on_two_cpu_processes_trains_and_exports(tmp_path):
         (["region.labels.path=null"], "labels.path is not set"),
         (["region.tiles.1.path=no/such/folder"], "no/such/folder: tile 't02' folder does not exist"),
         (["training.loss=focal"], "training.loss: 'focal' is not one of"),
-        (["+model.width=3"], "width"),
+        (["+network.width=3"], "width"),
     ],
 )
 def test_train_bad_input_one_line_error_nothing_written(tmp_path, overrides, message):
