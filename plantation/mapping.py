@@ -167,6 +167,9 @@ class TileResult:
     after_cutoff_ha: float
     seconds: float
     finished: str = ""
+    #: The model folder and the sha256 over its two files (provenance for the assessment).
+    model: str = ""
+    model_sha256: str = ""
 
 
 def check_config(cfg: MapConfig) -> None:
@@ -429,6 +432,8 @@ def map_tile_task(job: TileJob, on_window: Callable[[int], None] | None = None) 
         after_cutoff_ha=after,
         seconds=time.perf_counter() - t0,
         finished=time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+        model=job.model_dir,
+        model_sha256=job.model_digest,
     )
 
 

@@ -44,7 +44,7 @@ from plantation.artefact import Calibration, ModelCard, calibrated_log_probs
 from plantation.artefact import save as save_artefact
 from plantation.config import CalibrationConfig, ModelConfig, RegionConfig, SamplesConfig, SplitConfig, TrainerConfig, TrainingConfig
 from plantation.errors import ConfigError
-from plantation.labels import LabelSet, read_labels
+from plantation.labels import LABEL_CODES, LabelSet, read_labels
 from plantation.model import ConvRecurrentNet
 from plantation.outcomes import summarise
 from plantation.region import TileStack, open_region
@@ -343,6 +343,8 @@ def fit(samples: SampleSet, cfg: TrainConfig, folder: Path) -> TrainedModel:
     test = samples.part("test")
     if len(test):
         metrics["test"] = score_samples(nets, cal, test, cfg.calibration)
+    held, held_name = (test, "test") if len(test) else (val, "val")
+    metrics["validation"] = reliability_record(nets, cal, held, held_name, cfg.calibration)
     return TrainedModel(nets, spec, cal, metrics, is_zero)
 
 
@@ -369,6 +371,43 @@ def score_samples(nets: list[ConvRecurrentNet], cal: Calibration, s: SampleSet, 
         out["conformal_coverage"] = round(float(sets[np.arange(len(s)), s.target].mean()), 4)
         out["conformal_mean_size"] = round(float(sets.sum(-1).mean()), 3)
     return out
+
+
+#: Nominal levels at which the year intervals' coverage is checked.
+COVERAGE_LEVELS = (0.5, 0.8, 0.9, 0.95)
+
+
+def reliability_record(nets: list[ConvRecurrentNet], cal: Calibration, s: SampleSet, split: str, cc: CalibrationConfig, n_bins: int = 10) -> dict[str, Any]:
+    """How well the calibrated probabilities and intervals hold on held-out points (for the report).
+
+    ``reliability``: per equal-width bin of p_conversion, the mean predicted
+    probability, the observed share of conversions and the number of points
+    (empty bins left out). ``interval_coverage``: for each nominal level, the
+    share of true conversions mapped as conversion whose true onset year lies
+    in the interval of that level (the interval is of the year given
+    conversion, so misses of the class are not counted here). The sample is
+    the stratified label sample, so these are not map accuracies.
+    """
+    probs = np.exp(calibrated_log_probs(member_logits(nets, s), cal).numpy())
+    years = s.outcomes.years
+    true_label = s.outcomes.label_code(s.target)
+    true_year = s.outcomes.onset_year(s.target)
+    conv = true_label == LABEL_CODES["conversion"]
+    base = summarise(probs, years, cutoff_year=cc.cutoff_year, level=cc.interval_level)
+    p = base.p_conversion.astype(np.float64)
+    b = np.minimum((p * n_bins).astype(np.int64), n_bins - 1)
+    bins = []
+    for k in range(n_bins):
+        m = b == k
+        if m.any():
+            bins.append({"p_mean": round(float(p[m].mean()), 4), "observed": round(float(conv[m].mean()), 4), "n": int(m.sum())})
+    hit = conv & (base.label == LABEL_CODES["conversion"])
+    cover = []
+    for level in COVERAGE_LEVELS:
+        sm = summarise(probs, years, cutoff_year=cc.cutoff_year, level=level)
+        ok = hit & (sm.year_low <= true_year) & (true_year <= sm.year_high)
+        cover.append({"level": level, "coverage": round(float(ok.sum() / max(hit.sum(), 1)), 4), "n": int(hit.sum())})
+    return {"split": split, "n": len(s), "reliability": bins, "ece": round(calibration.expected_calibration_error(p, conv, n_bins), 4), "interval_coverage": cover}
 
 
 def load_region_samples(cfg: TrainConfig) -> tuple[list[TileStack], LabelSet, SampleSet]:
@@ -433,6 +472,8 @@ def run(cfg: TrainConfig, resolved_config: str | None = None) -> Path:
     if resolved_config is not None:
         (work / "config.yaml").write_text(resolved_config)
     save_artefact(work / "model", model_card(cfg, samples, trained, labels), trained.members)
+    # Beside the artefact, so that a map's assessment can show how the model's probabilities held up.
+    (work / "model" / "validation.json").write_text(json.dumps(trained.metrics["validation"], indent=1))
     # Swap in the new run; the old one goes only once the new one is in place.
     old = final.with_name(final.name + ".old")
     if old.exists():
