@@ -1,0 +1,40 @@
+"""The farm-plot cutoff report: `python scripts/plots.py plots=<file> map=<mapped region> [cutoff=2020-12-31]`."""
+
+import sys
+
+import hydra
+from omegaconf import DictConfig
+
+from plantation.cli import guarded
+from plantation.config import register_configs, to_object
+from plantation.errors import PlantationError
+
+register_configs()
+
+
+@hydra.main(version_base="1.3", config_path="../configs", config_name="plots")
+@guarded
+def main(cfg: DictConfig) -> None:
+    from plantation.farmplots import PlotsConfig, run
+    from plantation.mapping import NOTICE
+
+    result = run(to_object(cfg, PlotsConfig))
+    print("\n".join(result.lines()))
+    for kind, path in result.files.items():
+        print(f"{kind:<8} {path}")
+    print(NOTICE)
+    try:
+        from plantation.report import build_report
+    except ImportError:
+        build_report = None
+    if build_report is not None:
+        try:
+            print(f"report   {build_report(result.out_dir)}")
+        except PlantationError as exc:
+            # The plot outputs are complete; a report that cannot be built yet
+            # (e.g. no accuracy assessment in the folder) does not undo them.
+            print(f"report not built: {exc}", file=sys.stderr)
+
+
+if __name__ == "__main__":
+    main()
