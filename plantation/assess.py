@@ -24,10 +24,11 @@ import pandas as pd
 
 from plantation.config import RegionConfig
 from plantation.design import FORMAT as DESIGN_FORMAT
-from plantation.design import MAP_FORMAT, SIMULATED, open_map
+from plantation.design import SIMULATED
 from plantation.errors import ConfigError, InputNotFoundError, LabelError, PlantationError
 from plantation.estimators import Estimate, EstimationError, Strata, accuracy, stratified_mean, stratified_ratio, z_value
 from plantation.labels import LABEL_NAMES
+from plantation.mapped import open_map, sha256_of
 
 FORMAT = "plantation-assessment/1"
 REQUIRED = ("point_id", "stratum", "map_class", "map_onset_year", "label", "onset_year")
@@ -55,14 +56,6 @@ class AssessConfig:
     allow_unlabelled: bool = False
     #: Write report.html as well.
     report: bool = True
-
-
-def _sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as f:
-        for block in iter(lambda: f.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
 
 
 def read_sample_table(path: str | Path) -> tuple[pd.DataFrame, str]:
@@ -298,7 +291,6 @@ def run(cfg: AssessConfig, resolved_config: str | None = None, echo: Any = print
     if now != design.get("tiles"):
         raise PlantationError(f"{cfg.map}: the map's tiles differ from those the sample was drawn from ({design_path}); draw a new sample for this map")
     man = json.loads((mapped.folder / "manifest.json").read_text())
-    assert man.get("format") == MAP_FORMAT
     years = list(range(min(mapped.years), max(mapped.years) + 1)) if mapped.years else []
     checked = check_sample(table, unit, samples, design, years, allow_unlabelled=cfg.allow_unlabelled, fpc=cfg.finite_population_correction)
     if checked.dropped:
@@ -312,7 +304,7 @@ def run(cfg: AssessConfig, resolved_config: str | None = None, echo: Any = print
         result = estimate(checked, years=years, cutoff_year=mapped.cutoff_year, mapped_by_year=mapped_by_year, confidence=cfg.confidence)
     except EstimationError as exc:
         raise PlantationError(f"{samples}: {exc}") from None
-    model_dir = Path(cfg.model) if cfg.model else next((Path(e["model"]) for e in man["tiles"].values() if e.get("model")), None)
+    model_dir = Path(cfg.model) if cfg.model else (Path(mapped.model) if mapped.model else None)
     model_prov, validation = _model_provenance(model_dir)
     simulated = bool(design.get("simulated_reference")) or bool((checked.table.get("interpreter", pd.Series(dtype=str)) == SIMULATED).any())
     doc: dict[str, Any] = {
@@ -322,7 +314,7 @@ def run(cfg: AssessConfig, resolved_config: str | None = None, echo: Any = print
         "generated": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
         "simulated_reference": simulated,
         **result,
-        "sample": {"path": str(samples), "sha256": _sha256(samples), "n": len(checked.table), "dropped_unlabelled": checked.dropped, "design": str(design_path)},
+        "sample": {"path": str(samples), "sha256": sha256_of(samples), "n": len(checked.table), "dropped_unlabelled": checked.dropped, "design": str(design_path)},
         "provenance": {"model": model_prov, "map_manifest_sha256": mapped.manifest_sha256, "design_config": design.get("config"), "config": resolved_config},
         "validation": validation,
     }

@@ -22,7 +22,6 @@ the map (count, then pick), so memory follows the strip, not the tile.
 
 from __future__ import annotations
 
-import hashlib
 import json
 import os
 from collections.abc import Iterator
@@ -41,10 +40,10 @@ from plantation.config import RegionConfig
 from plantation.errors import ConfigError, InputNotFoundError, PlantationError
 from plantation.estimators import allocate, cochran_sample_size, expected_overall_se
 from plantation.labels import LABEL_CODES, LABEL_NAMES
+from plantation.mapped import MappedRegion, MapTile, open_map, sha256_of
 from plantation.region import Grid
 
 FORMAT = "plantation-sample-design/1"
-MAP_FORMAT = "plantation-map/1"
 MAP_NODATA = -32768
 #: Blank columns the interpreters fill in, in this order.
 REFERENCE_COLUMNS = ("label", "onset_year", "confidence", "interpreter", "note")
@@ -107,72 +106,6 @@ class Stratum:
     weight: float = 0.0
     assumed_users_accuracy: float = 0.0
     n: int = 0
-
-
-@dataclass
-class MapTile:
-    name: str
-    path: Path
-    sha256: str
-    grid: Grid
-
-
-@dataclass
-class MappedRegion:
-    """The finished tiles of a mapped region folder, checked against its manifest."""
-
-    folder: Path
-    tiles: list[MapTile]
-    cutoff_year: int
-    years: list[int]
-    manifest_sha256: str
-
-
-def _sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as f:
-        for block in iter(lambda: f.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
-
-
-def open_map(folder: str | Path) -> MappedRegion:
-    """Read ``manifest.json`` of a mapped region and check every tile file against it.
-
-    Raises:
-        InputNotFoundError: no folder, manifest or tile file.
-        PlantationError: the manifest is not a map manifest, a file's bytes
-            differ from it, or the tiles disagree on the cutoff year.
-    """
-    folder = Path(folder)
-    man = folder / "manifest.json"
-    if not man.is_file():
-        raise InputNotFoundError(f"{folder}: no manifest.json, so not a mapped region folder; map it with scripts/map.py")
-    try:
-        raw = json.loads(man.read_text())
-    except json.JSONDecodeError as exc:
-        raise PlantationError(f"{man}: not valid JSON ({exc.msg}, line {exc.lineno})") from None
-    if raw.get("format") != MAP_FORMAT or not raw.get("tiles"):
-        raise PlantationError(f"{man}: not a map manifest with tiles (format {raw.get('format')!r})")
-    tiles, cutoffs, years = [], set(), set()
-    for name in sorted(raw["tiles"]):
-        e = raw["tiles"][name]
-        path = folder / e["file"]
-        if not path.is_file():
-            raise InputNotFoundError(f"{path}: tile {name} is in the manifest but its file is missing; map the region again")
-        digest = _sha256(path)
-        if digest != e.get("sha256"):
-            raise PlantationError(f"{path}: its bytes differ from the manifest (sha256); the map was changed after mapping, map it again")
-        with rasterio.open(path) as src:
-            if src.count < 8:
-                raise PlantationError(f"{path}: {src.count} bands, expected the 8 layers of a mapped tile")
-            cutoffs.add(src.tags().get("cutoff_year"))
-            grid = Grid(src.crs, src.transform, src.height, src.width)
-        years.update(int(y) for y in e.get("converted_ha", {}))
-        tiles.append(MapTile(name, path, digest, grid))
-    if len(cutoffs) != 1 or None in cutoffs:
-        raise PlantationError(f"{folder}: tiles disagree on (or lack) the cutoff_year tag: {sorted(map(str, cutoffs))}")
-    return MappedRegion(folder, tiles, int(cutoffs.pop()), sorted(years), _sha256(man))
 
 
 def year_groups(years: list[int], cutoff_year: int, size: int) -> list[tuple[int, int]]:
@@ -468,7 +401,7 @@ def run(cfg: DesignConfig, resolved_config: str | None = None, echo: Any = print
         "expected_overall_se": round(design.expected_overall_se, 6),
         "seed": cfg.seed,
         "simulated_reference": cfg.fill_from_truth,
-        "samples_sha256": _sha256(csv),
+        "samples_sha256": sha256_of(csv),
         "strata": [asdict(s) for s in design.strata],
         "config": resolved_config,
     }

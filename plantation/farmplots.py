@@ -62,9 +62,9 @@ import shapely
 from pyproj import CRS, Geod, Transformer
 
 from plantation.config import RegionConfig
-from plantation.errors import ConfigError, InputNotFoundError, PlantationError, RegionError
+from plantation.errors import ConfigError, InputNotFoundError, PlantationError
 from plantation.labels import LABEL_CODES
-from plantation.region import Grid
+from plantation.mapped import MapTile, open_map
 
 KIND = "plantation-plots/1"
 VERDICTS: tuple[str, ...] = ("low_evidence", "review", "strong_evidence")
@@ -351,54 +351,6 @@ def reproject(geom: Any, tr: Transformer | None) -> Any:
 
 
 # --------------------------------------------------------------------------- the map
-
-
-@dataclass
-class MapTile:
-    """One tile of a mapped region: its COG, grid and cutoff year."""
-
-    name: str
-    path: Path
-    grid: Grid
-    cutoff_year: int
-    scale: float
-    offset: float
-
-
-def open_map(folder: str | Path) -> list[MapTile]:
-    """The finished tiles of a mapped region (those in its ``manifest.json``).
-
-    Raises:
-        InputNotFoundError: no folder, manifest or tile file.
-        PlantationError: a tile is not a map this package wrote.
-    """
-    from plantation.mapping import BAND, LAYERS, Manifest
-
-    folder = Path(folder)
-    if not (folder / "manifest.json").is_file():
-        raise InputNotFoundError(f"{folder}: no mapped region here (no manifest.json); map the region with scripts/map.py")
-    manifest = Manifest(folder / "manifest.json")
-    if not manifest.tiles:
-        raise PlantationError(f"{folder / 'manifest.json'}: lists no finished tile; map the region with scripts/map.py")
-    names = tuple(name for name, _, _ in LAYERS)
-    tiles = []
-    for name in sorted(manifest.tiles):
-        path = folder / manifest.tiles[name]["file"]
-        if not path.is_file():
-            raise InputNotFoundError(f"{path}: tile {name!r} of {folder / 'manifest.json'} is missing; map the region again with scripts/map.py")
-        with rasterio.open(path) as src:
-            if tuple(src.descriptions) != names:
-                raise PlantationError(f"{path}: bands {list(src.descriptions)}, expected {list(names)} (a map written by scripts/map.py)")
-            tag = src.tags().get("cutoff_year")
-            if tag is None or not str(tag).strip().lstrip("-").isdigit():
-                raise PlantationError(f"{path}: no cutoff_year tag; map the region again with scripts/map.py")
-            band = BAND["p_after_cutoff"] - 1
-            grid = Grid(crs=src.crs, transform=src.transform, height=src.height, width=src.width)
-            tiles.append(MapTile(name, path, grid, int(tag), float(src.scales[band]), float(src.offsets[band])))
-        t = grid.transform
-        if t.b != 0 or t.d != 0 or t.a <= 0 or t.e >= 0:
-            raise RegionError(f"{path}: the grid is rotated or not north-up; reproject the map to a north-up grid first")
-    return tiles
 
 
 @dataclass
@@ -732,10 +684,10 @@ def run(cfg: PlotsConfig) -> PlotsResult:
     from plantation.mapping import NOTICE, file_digest
 
     check_config(cfg)
-    tiles = open_map(cfg.map)
-    cutoff = parse_cutoff(cfg.cutoff) if cfg.cutoff is not None else parse_cutoff(tiles[0].cutoff_year)
-    for t in tiles:
-        check_map_cutoff(t.cutoff_year, cutoff, t.path)
+    mapped = open_map(cfg.map)
+    tiles = mapped.tiles
+    cutoff = parse_cutoff(cfg.cutoff) if cfg.cutoff is not None else parse_cutoff(mapped.cutoff_year)
+    check_map_cutoff(mapped.cutoff_year, cutoff, tiles[0].path)
     plots = read_plots(cfg.plots, cfg.id_field)
     good, problems = check_plots(plots)
     to_wgs84 = _transformer(plots.crs, _WGS84)
@@ -783,6 +735,7 @@ def run(cfg: PlotsConfig) -> PlotsResult:
         "plots_file": str(cfg.plots),
         "plots_sha256": file_digest([Path(cfg.plots)]),
         "map_dir": str(cfg.map),
+        "map_manifest_sha256": mapped.manifest_sha256,
         "cutoff": {"date": cutoff.date.isoformat(), "year": cutoff.year, "straddle_year": cutoff.straddle_year},
         "interval_level": float(cfg.interval_level),
         "thresholds": asdict(cfg.verdict),

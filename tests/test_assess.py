@@ -24,6 +24,7 @@ from plantation.design import DesignConfig, stratify, stratum_list, year_groups
 from plantation.design import run as design_run
 from plantation.errors import PlantationError
 from plantation.estimators import Strata, allocate, stratified_mean
+from plantation.mapping import LAYERS
 
 CRS = "EPSG:32650"
 YEARS = list(range(2013, 2025))
@@ -116,6 +117,9 @@ def _write_map(folder: Path, cls: np.ndarray, onset: np.ndarray, truth_cls: np.n
     tif = folder / "t1.tif"
     with rasterio.open(tif, "w", driver="GTiff", width=w, height=h, count=8, dtype="int16", crs=CRS, transform=tr, nodata=-32768) as dst:
         dst.write(layers)
+        for i, (name, _, _) in enumerate(LAYERS, start=1):
+            dst.set_band_description(i, name)
+        dst.scales = [s for _, s, _ in LAYERS]
         dst.update_tags(cutoff_year=str(cutoff))
     conv_ha = {str(y): float(((cls == 2) & (onset == y)).sum() * 0.09) for y in YEARS}
     man = {"format": "plantation-map/1", "tiles": {"t1": {"file": "t1.tif", "sha256": hashlib.sha256(tif.read_bytes()).hexdigest(), "converted_ha": conv_ha, "tile": "t1"}}}

@@ -10,6 +10,7 @@ under unknown dependence).
 
 from __future__ import annotations
 
+import hashlib
 import json
 import shutil
 import subprocess
@@ -84,7 +85,7 @@ def write_tile(folder: Path, name: str = "t01", *, cls=None, onset=None, p_after
         dst.update_tags(cutoff_year=str(cutoff_year), interval_level="0.8")
     man = folder / "manifest.json"
     doc = json.loads(man.read_text()) if man.exists() else {"format": FORMAT, "producer": "test", "tiles": {}}
-    doc["tiles"][name] = {"file": path.name, "sha256": "", "tile": name}
+    doc["tiles"][name] = {"file": path.name, "sha256": hashlib.sha256(path.read_bytes()).hexdigest(), "tile": name}
     man.write_text(json.dumps(doc))
     return folder
 
@@ -368,7 +369,7 @@ def test_outputs_schema_and_geojson_in_wgs84(tmp_path):
     out = tmp_path / "out"
     assert sorted(p.name for p in out.iterdir()) == ["plots.csv", "plots.geojson", "plots.json"]
     doc = json.loads((out / "plots.json").read_text())
-    assert list(doc) == ["kind", "plots_file", "plots_sha256", "map_dir", "cutoff", "interval_level", "thresholds", "plots", "problems", "counts", "notice"]
+    assert list(doc) == ["kind", "plots_file", "plots_sha256", "map_dir", "map_manifest_sha256", "cutoff", "interval_level", "thresholds", "plots", "problems", "counts", "notice"]
     assert doc["kind"] == "plantation-plots/1" and len(doc["plots_sha256"]) == 64
     assert doc["thresholds"] == {"strong_min_ha": 0.5, "review_min_ha": 0.1, "review_min_share": 0.02, "min_mean_clear": 8.0, "min_mapped_share": 0.9}
     (p,) = doc["plots"]

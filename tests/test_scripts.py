@@ -70,6 +70,24 @@ def test_map_script_on_the_toy_region(tmp_path):
         assert src.crs == truth.crs and src.transform == truth.transform and src.shape == truth.shape
     res = run("map.py", f"model={tmp_path / 'train' / 'quick'}", f"out_dir={maps}", "progress=false", "tiles=[t01]")
     assert "tiles: 0 mapped, 1 already finished" in res.stdout
+    # The rest of the chain, as the README's main command runs it.
+    out = tmp_path / "assess"
+    res = run("sample.py", f"map={maps}", f"out_dir={out}", "fill_from_truth=true")
+    assert res.returncode == 0, res.stderr
+    assert "forest_buffer" in res.stdout and (out / "samples.gpkg").is_file()
+    res = run("assess.py", f"map={maps}", f"out_dir={out}")
+    assert res.returncode == 0, res.stderr
+    assert "overall accuracy" in res.stdout and "simulated truth" in res.stdout
+    doc = json.loads((out / "assessment.json").read_text())
+    assert doc["validation"]["split"] == "test" and doc["provenance"]["model"]["sha256"]
+    res = run("plots.py", f"map={maps}", f"out_dir={out}", "progress=false")
+    assert res.returncode == 0, res.stderr
+    plots = json.loads((out / "plots.json").read_text())
+    # Only t01 was mapped: the demo plots over t02 are listed as outside the map, not dropped.
+    assert len(plots["plots"]) == 40 and 0 < plots["counts"]["problem"] < 40
+    assert {p["problem"] for p in plots["problems"]} == {"outside_map"}
+    html = (out / "report.html").read_text()
+    assert "report.html" in res.stdout and "Farm plots" in html and "Error matrix" in html
 
 
 @pytest.mark.slow
@@ -79,3 +97,22 @@ def test_map_script_bad_model_is_one_line_and_writes_nothing(tmp_path):
     lines = res.stderr.strip().splitlines()
     assert len(lines) == 1 and lines[0].startswith("error: ") and "none: no model here" in lines[0], res.stderr
     assert not (tmp_path / "maps").exists()
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize(
+    ("script", "overrides", "message"),
+    [
+        ("sample.py", ["map=__TMP__/nomap"], "nomap: no mapped region here (no manifest.json)"),
+        ("sample.py", ["target_se=0.7"], "target_se: 0.7 must be in (0, 0.5)"),
+        ("assess.py", ["samples=__TMP__/none.csv"], "none.csv: sample file not found"),
+        ("plots.py", ["plots=__TMP__/none.geojson", "map=__TMP__/nomap"], "nomap: no mapped region here"),
+    ],
+)
+def test_assessment_scripts_bad_input_one_line(tmp_path, script, overrides, message):
+    out = tmp_path / "out"
+    res = run(script, f"out_dir={out}", *[o.replace("__TMP__", str(tmp_path)) for o in overrides])
+    assert res.returncode == 1, res.stdout
+    lines = res.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith("error: ") and message in lines[0], res.stderr
+    assert not out.exists()
