@@ -18,7 +18,6 @@ way round.
 from __future__ import annotations
 
 import base64
-import hashlib
 import html
 import json
 import math
@@ -33,6 +32,7 @@ import rasterio
 from plantation import __version__
 from plantation.errors import PlantationError
 from plantation.labels import LABEL_CODES
+from plantation.mapped import sha256_of
 from plantation.mapping import NOTICE
 from plantation.styles import CLASS_STYLE
 
@@ -187,14 +187,6 @@ def _load(path: Path, kind: str) -> dict[str, Any] | None:
     return data
 
 
-def _sha256(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as f:
-        for block in iter(lambda: f.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
-
-
 def _locate(value: Any, folder: Path) -> Path | None:
     """A file or folder named in a JSON file: as given if absolute, else beside the JSON or under the working directory."""
     if not value:
@@ -210,7 +202,7 @@ def _check(path: Path | None, expected: Any) -> str:
     """Whether the file at hand still has the recorded sha256 (empty when it cannot be checked)."""
     if path is None or not path.is_file() or not expected:
         return ""
-    if _sha256(path) == str(expected):
+    if sha256_of(path) == str(expected):
         return ' <span class="ok">✓ matches the file at hand</span>'
     return ' <span class="bad">✗ differs from the file at hand: it changed after this record was made</span>'
 

@@ -23,17 +23,13 @@ def main(cfg: DictConfig) -> None:
     for kind, path in result.files.items():
         print(f"{kind:<8} {path}")
     print(NOTICE)
+    from plantation.report import build_report
+
     try:
-        from plantation.report import build_report
-    except ImportError:
-        build_report = None
-    if build_report is not None:
-        try:
-            print(f"report   {build_report(result.out_dir)}")
-        except PlantationError as exc:
-            # The plot outputs are complete; a report that cannot be built yet
-            # (e.g. no accuracy assessment in the folder) does not undo them.
-            print(f"report not built: {exc}", file=sys.stderr)
+        print(f"report   {build_report(result.out_dir)}")
+    except PlantationError as exc:
+        # The plot outputs are complete; a report that cannot be built does not undo them.
+        print(f"report not built: {exc}", file=sys.stderr)
 
 
 if __name__ == "__main__":
