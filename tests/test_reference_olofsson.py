@@ -17,6 +17,7 @@ Sources:
 from __future__ import annotations
 
 import json
+import os
 from pathlib import Path
 
 import numpy as np
@@ -25,7 +26,9 @@ from sklearn.metrics import accuracy_score, precision_score, recall_score
 
 from plantation.estimators import Strata, accuracy, allocate, cochran_sample_size, expected_overall_se, stratified_mean, stratified_ratio
 
-REFERENCE = Path(__file__).resolve().parents[2] / "shared" / "reference" / "olofsson2014_example.json"
+#: The shared check values beside the checkout (or where PLANTATION_SHARED points).
+SHARED = Path(os.environ.get("PLANTATION_SHARED", Path(__file__).resolve().parents[2] / "shared"))
+REFERENCE = SHARED / "reference" / "olofsson2014_example.json"
 
 
 @pytest.fixture(scope="module")
