@@ -11,7 +11,6 @@ from counting the map's pixels (the pixel counts are shown beside them).
 
 from __future__ import annotations
 
-import hashlib
 import json
 import os
 import time
@@ -263,12 +262,8 @@ def _model_provenance(folder: Path | None) -> tuple[dict[str, Any] | None, dict[
     if not card_path.is_file():
         return {"path": str(folder), "note": "model folder not found"}, None
     card = json.loads(card_path.read_text())
-    h = hashlib.sha256()
-    for name in ("model.json", "model.safetensors"):
-        f = folder / name
-        if f.is_file():
-            h.update(f.read_bytes())
-    prov = {"path": str(folder), "sha256": h.hexdigest(), "region": card.get("region"), "labels_fingerprint": card.get("labels_fingerprint"), "package_version": card.get("package_version")}
+    digest = sha256_of(*[folder / n for n in ("model.json", "model.safetensors") if (folder / n).is_file()])
+    prov = {"path": str(folder), "sha256": digest, "region": card.get("region"), "labels_fingerprint": card.get("labels_fingerprint"), "package_version": card.get("package_version")}
     vfile = folder / "validation.json"
     return prov, (json.loads(vfile.read_text()) if vfile.is_file() else None)
 

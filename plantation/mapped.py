@@ -51,11 +51,13 @@ class MappedRegion:
     model_sha256: str | None = None
 
 
-def sha256_of(path: Path) -> str:
+def sha256_of(*paths: Path) -> str:
+    """sha256 over the bytes of one or more files, in order (the same digest as the mapping job's)."""
     h = hashlib.sha256()
-    with open(path, "rb") as f:
-        for block in iter(lambda: f.read(1 << 20), b""):
-            h.update(block)
+    for path in paths:
+        with open(path, "rb") as f:
+            for block in iter(lambda f=f: f.read(1 << 20), b""):
+                h.update(block)
     return h.hexdigest()
 
 
