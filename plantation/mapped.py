@@ -9,7 +9,6 @@ tiles exist and refuse a map changed after it was made.
 
 from __future__ import annotations
 
-import hashlib
 import json
 from dataclasses import dataclass
 from pathlib import Path
@@ -52,13 +51,10 @@ class MappedRegion:
 
 
 def sha256_of(*paths: Path) -> str:
-    """sha256 over the bytes of one or more files, in order (the same digest as the mapping job's)."""
-    h = hashlib.sha256()
-    for path in paths:
-        with open(path, "rb") as f:
-            for block in iter(lambda f=f: f.read(1 << 20), b""):
-                h.update(block)
-    return h.hexdigest()
+    """sha256 over the bytes of one or more files, in order: the mapping job's digest, so the two compare."""
+    from plantation.mapping import file_digest
+
+    return file_digest(list(paths))
 
 
 def open_map(folder: str | Path, *, verify: bool = True) -> MappedRegion:
