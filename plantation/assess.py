@@ -285,18 +285,13 @@ def run(cfg: AssessConfig, resolved_config: str | None = None, echo: Any = print
     now = {t.name: t.sha256 for t in mapped.tiles}
     if now != design.get("tiles"):
         raise PlantationError(f"{cfg.map}: the map's tiles differ from those the sample was drawn from ({design_path}); draw a new sample for this map")
-    man = json.loads((mapped.folder / "manifest.json").read_text())
     years = list(range(min(mapped.years), max(mapped.years) + 1)) if mapped.years else []
     checked = check_sample(table, unit, samples, design, years, allow_unlabelled=cfg.allow_unlabelled, fpc=cfg.finite_population_correction)
     if checked.dropped:
         ids = ", ".join(checked.dropped[:5]) + (", ..." if len(checked.dropped) > 5 else "")
         echo(f"warning: {len(checked.dropped)} unlabelled point(s) dropped ({ids}); the estimates assume they are missing at random")
-    mapped_by_year: dict[int, float] = {}
-    for e in man["tiles"].values():
-        for y, a in e.get("converted_ha", {}).items():
-            mapped_by_year[int(y)] = mapped_by_year.get(int(y), 0.0) + float(a)
     try:
-        result = estimate(checked, years=years, cutoff_year=mapped.cutoff_year, mapped_by_year=mapped_by_year, confidence=cfg.confidence)
+        result = estimate(checked, years=years, cutoff_year=mapped.cutoff_year, mapped_by_year=mapped.converted_ha, confidence=cfg.confidence)
     except EstimationError as exc:
         raise PlantationError(f"{samples}: {exc}") from None
     model_dir = Path(cfg.model) if cfg.model else (Path(mapped.model) if mapped.model else None)

@@ -37,17 +37,22 @@ class MapTile:
 class MappedRegion:
     """The tiles of a mapped region, sorted by name.
 
-    ``years`` are the onset years the map can hold (the manifest's per-year
-    areas); ``model`` and ``model_sha256`` what made it, where recorded.
+    ``converted_ha`` is the map's pixel-count area mapped as converted by
+    onset year, summed over tiles (its keys are the years the map can hold);
+    ``model`` and ``model_sha256`` what made it, where recorded.
     """
 
     folder: Path
     tiles: list[MapTile]
     cutoff_year: int
-    years: list[int]
+    converted_ha: dict[int, float]
     manifest_sha256: str
     model: str | None = None
     model_sha256: str | None = None
+
+    @property
+    def years(self) -> list[int]:
+        return sorted(self.converted_ha)
 
 
 def sha256_of(*paths: Path) -> str:
@@ -88,7 +93,7 @@ def open_map(folder: str | Path, *, verify: bool = True) -> MappedRegion:
     names = tuple(name for name, _, _ in LAYERS)
     band = BAND["p_after_cutoff"] - 1
     tiles: list[MapTile] = []
-    years: set[int] = set()
+    converted: dict[int, float] = {}
     models: set[tuple[str, str]] = set()
     for name in sorted(raw["tiles"]):
         e = raw["tiles"][name]
@@ -110,11 +115,12 @@ def open_map(folder: str | Path, *, verify: bool = True) -> MappedRegion:
         if t.b != 0 or t.d != 0 or t.a <= 0 or t.e >= 0:
             raise RegionError(f"{path}: the grid is rotated or not north-up; reproject the map to a north-up grid first")
         tiles.append(tile)
-        years.update(int(y) for y in e.get("converted_ha", {}))
+        for y, a in e.get("converted_ha", {}).items():
+            converted[int(y)] = converted.get(int(y), 0.0) + float(a)
         if e.get("model"):
             models.add((str(e["model"]), str(e.get("model_sha256", ""))))
     cutoffs = sorted({t.cutoff_year for t in tiles})
     if len(cutoffs) != 1:
         raise PlantationError(f"{folder}: tiles were mapped with different cutoff years {cutoffs}; map them again with one cutoff_year")
     model, model_sha = models.pop() if len(models) == 1 else (None, None)
-    return MappedRegion(folder, tiles, cutoffs[0], sorted(years), sha256_of(man), model, model_sha)
+    return MappedRegion(folder, tiles, cutoffs[0], dict(sorted(converted.items())), sha256_of(man), model, model_sha)
