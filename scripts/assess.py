@@ -2,9 +2,10 @@
 
 import hydra
 from omegaconf import DictConfig, OmegaConf
+from plantation.cli.compose import register_configs
 
-from plantation.cli import guarded
-from plantation.config import register_configs, to_object
+from plantation.cli.errors import guarded
+from plantation.config import to_object
 
 register_configs()
 
@@ -12,8 +13,8 @@ register_configs()
 @hydra.main(version_base="1.3", config_path="../configs", config_name="assess")
 @guarded
 def main(cfg: DictConfig) -> None:
-    from plantation.assess import AssessConfig, run
-    from plantation.mapping import NOTICE
+    from plantation.assessment.assess import AssessConfig, run
+    from plantation.mapping.folder import NOTICE
 
     run(to_object(cfg, AssessConfig), resolved_config=OmegaConf.to_yaml(cfg, resolve=True))
     print(NOTICE)

@@ -2,9 +2,10 @@
 
 import hydra
 from omegaconf import DictConfig
+from plantation.cli.compose import register_configs
 
-from plantation.cli import guarded
-from plantation.config import register_configs, to_object
+from plantation.cli.errors import guarded
+from plantation.config import to_object
 
 register_configs()
 
@@ -12,7 +13,7 @@ register_configs()
 @hydra.main(version_base="1.3", config_path="../configs", config_name="benchmark_accuracy")
 @guarded
 def main(cfg: DictConfig) -> None:
-    from plantation.comparison import ComparisonConfig, run
+    from plantation.benchmarks.accuracy import ComparisonConfig, run
 
     report = run(to_object(cfg, ComparisonConfig))
     keys = ("year_exact", "year_within1", "conversion_f1", "macro_f1", "year_mae", "ece", "interval80_coverage", "train_seconds")

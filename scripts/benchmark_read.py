@@ -18,9 +18,10 @@ from pathlib import Path
 
 import hydra
 from omegaconf import DictConfig
+from plantation.cli.compose import register_configs
 
-from plantation.cli import guarded
-from plantation.config import register_configs, to_object
+from plantation.cli.errors import guarded
+from plantation.config import to_object
 
 register_configs()
 
@@ -44,9 +45,9 @@ def read_windows(folder: str, bands: int, window: int, nodata: int, proc_change:
     """Read every window of tile t01 once; return timings and peak RSS (MB)."""
     import numpy as np
 
-    from plantation.config import MaskConfig, RegionConfig, ScalingRule, TileConfig
-    from plantation.indices import ndvi
-    from plantation.region import open_tile
+    from plantation.imagery.config import MaskConfig, RegionConfig, ScalingRule, TileConfig
+    from plantation.imagery.indices import ndvi
+    from plantation.imagery.region import open_tile
 
     base = peak_rss_mb()
     region = RegionConfig(
@@ -92,7 +93,7 @@ def read_windows(folder: str, bands: int, window: int, nodata: int, proc_change:
 @hydra.main(version_base="1.3", config_path="../configs", config_name="benchmark_read")
 @guarded
 def main(cfg: DictConfig) -> None:
-    from plantation.simulate import BANDS, SimulationConfig, write_region
+    from plantation.simulation.landscape import BANDS, SimulationConfig, write_region
 
     sim = to_object(cfg.sim, SimulationConfig)
     work = Path(cfg.work_dir)

@@ -6,9 +6,10 @@ from pathlib import Path
 
 import hydra
 from omegaconf import DictConfig
+from plantation.cli.compose import register_configs
 
-from plantation.cli import guarded
-from plantation.config import register_configs, to_object
+from plantation.cli.errors import guarded
+from plantation.config import to_object
 
 register_configs()
 
@@ -16,7 +17,7 @@ register_configs()
 @hydra.main(version_base="1.3", config_path="../configs", config_name="benchmark_speed")
 @guarded
 def main(cfg: DictConfig) -> None:
-    from plantation.speed import SpeedConfig, run
+    from plantation.benchmarks.speed import SpeedConfig, run
 
     sc = to_object(cfg, SpeedConfig)
     res = run(sc)

@@ -2,9 +2,10 @@
 
 import hydra
 from omegaconf import DictConfig
+from plantation.cli.compose import register_configs
 
-from plantation.cli import guarded
-from plantation.config import register_configs, to_object
+from plantation.cli.errors import guarded
+from plantation.config import to_object
 
 register_configs()
 
@@ -12,7 +13,8 @@ register_configs()
 @hydra.main(version_base="1.3", config_path="../configs", config_name="map")
 @guarded
 def main(cfg: DictConfig) -> None:
-    from plantation.mapping import NOTICE, MapConfig, run
+    from plantation.mapping.folder import NOTICE
+    from plantation.mapping.job import MapConfig, run
 
     summary = run(to_object(cfg, MapConfig))
     print("\n".join(summary.lines()))

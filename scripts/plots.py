@@ -4,9 +4,10 @@ import sys
 
 import hydra
 from omegaconf import DictConfig
+from plantation.cli.compose import register_configs
 
-from plantation.cli import guarded
-from plantation.config import register_configs, to_object
+from plantation.cli.errors import guarded
+from plantation.config import to_object
 from plantation.errors import PlantationError
 
 register_configs()
@@ -15,15 +16,15 @@ register_configs()
 @hydra.main(version_base="1.3", config_path="../configs", config_name="plots")
 @guarded
 def main(cfg: DictConfig) -> None:
-    from plantation.farmplots import PlotsConfig, run
-    from plantation.mapping import NOTICE
+    from plantation.farmplots.cutoff import PlotsConfig, run
+    from plantation.mapping.folder import NOTICE
 
     result = run(to_object(cfg, PlotsConfig))
     print("\n".join(result.lines()))
     for kind, path in result.files.items():
         print(f"{kind:<8} {path}")
     print(NOTICE)
-    from plantation.report import build_report
+    from plantation.report.page import build_report
 
     try:
         print(f"report   {build_report(result.out_dir)}")

@@ -2,9 +2,10 @@
 
 import hydra
 from omegaconf import DictConfig, OmegaConf
+from plantation.cli.compose import register_configs
 
-from plantation.cli import guarded
-from plantation.config import register_configs, to_object
+from plantation.cli.errors import guarded
+from plantation.config import to_object
 
 register_configs()
 
@@ -12,7 +13,7 @@ register_configs()
 @hydra.main(version_base="1.3", config_path="../configs", config_name="sample")
 @guarded
 def main(cfg: DictConfig) -> None:
-    from plantation.design import DesignConfig, run
+    from plantation.assessment.design import DesignConfig, run
 
     run(to_object(cfg, DesignConfig), resolved_config=OmegaConf.to_yaml(cfg, resolve=True))
 

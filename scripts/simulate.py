@@ -2,9 +2,10 @@
 
 import hydra
 from omegaconf import DictConfig
+from plantation.cli.compose import register_configs
 
-from plantation.cli import guarded
-from plantation.config import register_configs, to_object
+from plantation.cli.errors import guarded
+from plantation.config import to_object
 
 register_configs()
 
@@ -12,7 +13,7 @@ register_configs()
 @hydra.main(version_base="1.3", config_path="../configs", config_name="simulate")
 @guarded
 def main(cfg: DictConfig) -> None:
-    from plantation.simulate import SimulationConfig, write_region
+    from plantation.simulation.landscape import SimulationConfig, write_region
 
     out = write_region(to_object(cfg.sim, SimulationConfig), cfg.out, progress=cfg.progress)
     print(f"simulated region written to {out}/")

@@ -2,9 +2,10 @@
 
 import hydra
 from omegaconf import DictConfig
+from plantation.cli.compose import register_configs
 
-from plantation.cli import guarded
-from plantation.config import register_configs, to_object
+from plantation.cli.errors import guarded
+from plantation.config import to_object
 
 register_configs()
 
@@ -12,7 +13,7 @@ register_configs()
 @hydra.main(version_base="1.3", config_path="../configs", config_name="survey")
 @guarded
 def main(cfg: DictConfig) -> None:
-    from plantation.survey import SurveyConfig, run
+    from plantation.reference.survey import SurveyConfig, run
 
     out = run(to_object(cfg, SurveyConfig))
     print(f"survey written to {out}/ (survey.json, clear_count_*.tif, labels.gpkg, index_series.png, clear_views.png)")

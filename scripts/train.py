@@ -4,9 +4,10 @@ import os
 
 import hydra
 from omegaconf import DictConfig, OmegaConf
+from plantation.cli.compose import register_configs
 
-from plantation.cli import guarded
-from plantation.config import register_configs, to_object
+from plantation.cli.errors import guarded
+from plantation.config import to_object
 
 register_configs()
 
@@ -14,7 +15,7 @@ register_configs()
 @hydra.main(version_base="1.3", config_path="../configs", config_name="train")
 @guarded
 def main(cfg: DictConfig) -> None:
-    from plantation.train import TrainConfig, run
+    from plantation.model.training import TrainConfig, run
 
     out = run(to_object(cfg, TrainConfig), resolved_config=OmegaConf.to_yaml(cfg, resolve=True))
     if os.environ.get("LOCAL_RANK", "0") == "0":  # processes started by DDP stay quiet

@@ -10,7 +10,7 @@ import pytest
 import rasterio
 from affine import Affine
 
-from plantation.config import LabelsConfig, MaskConfig, RegionConfig, ScalingRule, TileConfig
+from plantation.imagery.config import LabelsConfig, MaskConfig, RegionConfig, ScalingRule, TileConfig
 
 ROOT = Path(__file__).resolve().parents[1]
 BANDS = ["blue", "green", "red", "nir", "swir1", "swir2"]

@@ -8,10 +8,11 @@ import numpy as np
 import pytest
 import torch
 
-from plantation import artefact
-from plantation.artefact import Calibration, ModelCard, calibrated_log_probs
 from plantation.errors import InputNotFoundError, PlantationError
-from plantation.model import ConvRecurrentNet
+from plantation.model import artefact
+from plantation.model.artefact import calibrated_log_probs
+from plantation.model.card import Calibration, ModelCard
+from plantation.model.network import ConvRecurrentNet
 
 SPEC = {"n_channels": 4, "date_year": [0, 0, 1, 1], "day_of_year": [0.1, 0.6, 0.1, 0.6], "neighbourhood": 3, "conv_width": 4, "hidden": 8, "dropout": 0.0}
 
@@ -104,10 +105,10 @@ def test_incomplete_card_and_damaged_weights_are_refused(tmp_path):
 
 
 def test_inference_refuses_a_tile_the_model_was_not_trained_for(make_region):
-    from plantation.config import ScalingRule
     from plantation.errors import RegionError
-    from plantation.inference import check_compatible
-    from plantation.region import open_region
+    from plantation.imagery.config import ScalingRule
+    from plantation.imagery.region import open_region
+    from plantation.model.inference import check_compatible
     from tests.conftest import BANDS, DATES
 
     spec = SPEC | {"n_channels": 10, "date_year": [0, 0, 1, 1, 2], "day_of_year": [0.1, 0.6, 0.1, 0.6, 0.6]}

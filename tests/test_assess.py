@@ -17,14 +17,14 @@ import pytest
 import rasterio
 from affine import Affine
 
-from plantation.assess import AssessConfig, check_sample, read_sample_table
-from plantation.assess import run as assess_run
-from plantation.config import RegionConfig, TileConfig
-from plantation.design import DesignConfig, stratify, stratum_list, year_groups
-from plantation.design import run as design_run
+from plantation.assessment.assess import AssessConfig, check_sample, read_sample_table
+from plantation.assessment.assess import run as assess_run
+from plantation.assessment.design import DesignConfig, stratify, stratum_list, year_groups
+from plantation.assessment.design import run as design_run
+from plantation.assessment.estimators import Strata, allocate, stratified_mean
 from plantation.errors import PlantationError
-from plantation.estimators import Strata, allocate, stratified_mean
-from plantation.mapping import LAYERS
+from plantation.imagery.config import RegionConfig, TileConfig
+from plantation.mapping.folder import LAYERS
 
 CRS = "EPSG:32650"
 YEARS = list(range(2013, 2025))

@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from plantation.baselines import AnnualTrees, BreakRule, annual_features, annual_medians, largest_drop
-from plantation.outcomes import Outcomes
+from plantation.benchmarks.baselines import AnnualTrees, BreakRule, annual_features, annual_medians, largest_drop
+from plantation.model.outcomes import Outcomes
 
 CHANNELS = ("blue", "green", "red", "nir", "swir1", "swir2", "NDVI", "EVI", "NBR", "NDMI")
 

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy.special import softmax
 
-from plantation.calibration import adjust_priors, conformal_sets, conformal_threshold, fit_temperature, mutual_information, nll, reweight
+from plantation.model.calibration import adjust_priors, conformal_sets, conformal_threshold, fit_temperature, mutual_information, nll, reweight
 
 
 def _overconfident(n: int, k: int, seed: int, scale: float = 4.0) -> tuple[np.ndarray, np.ndarray]:

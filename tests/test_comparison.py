@@ -4,11 +4,11 @@ from __future__ import annotations
 
 import pytest
 
-from plantation.comparison import ComparisonConfig, train_config
-from plantation.comparison import run as run_comparison
-from plantation.config import ModelConfig, TrainerConfig
+from plantation.benchmarks.accuracy import ComparisonConfig, train_config
+from plantation.benchmarks.accuracy import run as run_comparison
 from plantation.errors import ConfigError
-from plantation.train import TrainConfig
+from plantation.model.config import NetworkConfig, TrainerConfig
+from plantation.model.training import TrainConfig
 
 
 def test_benchmark_refuses_ddp_before_doing_anything(tmp_path):
@@ -19,7 +19,7 @@ def test_benchmark_refuses_ddp_before_doing_anything(tmp_path):
 
 
 def test_training_part_of_the_benchmark_config():
-    cfg = ComparisonConfig(network=ModelConfig(members=2))
+    cfg = ComparisonConfig(network=NetworkConfig(members=2))
     tc = train_config(cfg)
     assert type(tc) is TrainConfig and tc.network.members == 2 and not hasattr(tc, "eval_sim")
 
@@ -28,11 +28,13 @@ def test_observability_on_the_toy_region_matches_a_pixel_by_pixel_count():
     import numpy as np
     import rasterio
     from hydra import compose, initialize_config_dir
+    from plantation.cli.compose import register_configs
 
-    from plantation.comparison import conversion_observability
-    from plantation.config import RegionConfig, register_configs, to_object
-    from plantation.region import open_region
-    from plantation.simulate import SimulationConfig, build_landscape, dates_of, decimal_year
+    from plantation.benchmarks.accuracy import conversion_observability
+    from plantation.config import to_object
+    from plantation.imagery.config import RegionConfig
+    from plantation.imagery.region import open_region
+    from plantation.simulation.landscape import SimulationConfig, build_landscape, dates_of, decimal_year
     from tests.conftest import ROOT
 
     register_configs()

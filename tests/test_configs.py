@@ -7,11 +7,13 @@ from pathlib import Path
 import pytest
 from hydra import compose, initialize_config_dir
 from hydra.errors import ConfigCompositionException
+from plantation.cli.compose import register_configs
 
-from plantation.config import RegionConfig, register_configs, to_object
+from plantation.config import to_object
 from plantation.errors import ConfigError
-from plantation.simulate import SimulationConfig, check_config
-from plantation.survey import SurveyConfig
+from plantation.imagery.config import RegionConfig
+from plantation.reference.survey import SurveyConfig
+from plantation.simulation.landscape import SimulationConfig, check_config
 
 CONFIGS = Path(__file__).resolve().parents[1] / "configs"
 register_configs()
@@ -60,8 +62,8 @@ def test_sim_config_checks():
 @pytest.mark.parametrize("network", sorted(p.stem for p in (CONFIGS / "network").glob("*.yaml")))
 @pytest.mark.parametrize("training", sorted(p.stem for p in (CONFIGS / "training").glob("*.yaml")))
 def test_every_training_config_group_composes_and_checks(trainer, network, training):
-    from plantation.train import TrainConfig
-    from plantation.train import check_config as check_train
+    from plantation.model.training import TrainConfig
+    from plantation.model.training import check_config as check_train
 
     cfg = to_object(_compose("train", [f"trainer={trainer}", f"network={network}", f"training={training}"]), TrainConfig)
     check_train(cfg)
@@ -69,7 +71,7 @@ def test_every_training_config_group_composes_and_checks(trainer, network, train
 
 
 def test_benchmark_config_composes_with_another_seed():
-    from plantation.comparison import ComparisonConfig
+    from plantation.benchmarks.accuracy import ComparisonConfig
 
     cfg = to_object(_compose("benchmark_accuracy"), ComparisonConfig)
     sim = to_object(_compose("simulate").sim, SimulationConfig)
@@ -77,7 +79,7 @@ def test_benchmark_config_composes_with_another_seed():
 
 
 def test_training_typos_are_errors():
-    from plantation.train import TrainConfig
+    from plantation.model.training import TrainConfig
 
     with pytest.raises(ConfigCompositionException, match="network.hiden"):
         _compose("train", ["network.hiden=8"])
@@ -88,7 +90,7 @@ def test_training_typos_are_errors():
 
 
 def test_map_config_composes_and_takes_a_model_path():
-    from plantation.mapping import MapConfig, check_config
+    from plantation.mapping.job import MapConfig, check_config
 
     cfg = to_object(_compose("map", ["model=somewhere/run", "engine.workers=2"]), MapConfig)
     check_config(cfg)

@@ -28,17 +28,8 @@ from affine import Affine
 from pyproj import Geod, Proj, Transformer
 
 from plantation.errors import ConfigError, InputNotFoundError, PlantationError
-from plantation.farmplots import (
-    COLUMNS,
-    Cutoff,
-    PlotsConfig,
-    VerdictConfig,
-    comonotone_range_ha,
-    parse_cutoff,
-    run,
-    verdict,
-)
-from plantation.mapping import FORMAT, LAYERS, NODATA
+from plantation.farmplots.cutoff import COLUMNS, Cutoff, PlotsConfig, VerdictConfig, comonotone_range_ha, parse_cutoff, run, verdict
+from plantation.mapping.folder import FORMAT, LAYERS, NODATA
 
 ROOT = Path(__file__).resolve().parents[1]
 CRS = "EPSG:32650"
@@ -404,8 +395,9 @@ def test_outputs_schema_and_geojson_in_wgs84(tmp_path):
 
 def test_config_composes_and_typos_are_errors():
     from hydra import compose, initialize_config_dir
+    from plantation.cli.compose import register_configs
 
-    from plantation.config import register_configs, to_object
+    from plantation.config import to_object
 
     register_configs()
     with initialize_config_dir(config_dir=str(ROOT / "configs"), version_base="1.3"):
@@ -439,9 +431,10 @@ def test_script_on_a_tiny_map(tmp_path):
 def test_demo_plots_regenerate_from_the_truth(tmp_path):
     """toy_tiles/plots.geojson is what _write_plots makes of the toy truth rasters (byte for byte)."""
     from hydra import compose, initialize_config_dir
+    from plantation.cli.compose import register_configs
 
-    from plantation.config import register_configs, to_object
-    from plantation.simulate import SimulationConfig, _write_plots
+    from plantation.config import to_object
+    from plantation.simulation.landscape import SimulationConfig, _write_plots
 
     register_configs()
     with initialize_config_dir(config_dir=str(ROOT / "configs"), version_base="1.3"):

@@ -12,8 +12,8 @@ from pyproj import Transformer
 from rasterio.crs import CRS as RioCRS
 
 from plantation.errors import LabelError
-from plantation.labels import read_labels
-from plantation.region import Grid
+from plantation.imagery.region import Grid
+from plantation.reference.labels import read_labels
 from tests.conftest import CRS, TRANSFORM, pixel_centre
 
 GRIDS = {"t1": Grid(RioCRS.from_user_input(CRS), TRANSFORM, 8, 8)}

@@ -13,15 +13,17 @@ import rasterio
 import torch
 from affine import Affine
 
-from plantation import artefact
-from plantation.artefact import Calibration, ModelCard
-from plantation.config import MaskConfig, RegionConfig, ScalingRule, TileConfig
 from plantation.errors import ConfigError, InputNotFoundError, RegionError
-from plantation.inference import predict_tile, read_window
-from plantation.mapping import BAND, LAYERS, NODATA, EngineConfig, MapConfig, Settings, encode_layers, run, window_probabilities
-from plantation.model import ConvRecurrentNet
-from plantation.region import open_region
-from plantation.samples import features, read_patches
+from plantation.imagery.config import MaskConfig, RegionConfig, ScalingRule, TileConfig
+from plantation.imagery.region import open_region
+from plantation.mapping.folder import BAND, LAYERS, NODATA
+from plantation.mapping.job import EngineConfig, MapConfig, run
+from plantation.mapping.tiles import Settings, encode_layers, window_probabilities
+from plantation.model import artefact
+from plantation.model.card import Calibration, ModelCard
+from plantation.model.inference import predict_tile, read_window
+from plantation.model.network import ConvRecurrentNet
+from plantation.model.patches import features, read_patches
 from tests.conftest import BANDS, CRS, write_stack
 
 DATES = ["2015-03-01", "2015-06-01", "2015-09-01", "2015-12-01", "2016-03-01", "2016-06-01", "2016-09-01", "2016-12-01"]
@@ -180,7 +182,7 @@ def test_output_is_a_valid_cog_with_nearest_overviews(tmp_path):
     """rio-cogeo's validator (a reference implementation of the COG layout rules) accepts the file."""
     from rio_cogeo.cogeo import cog_validate
 
-    from plantation.mapping import write_cog
+    from plantation.mapping.tiles import write_cog
 
     rng = np.random.default_rng(0)
     data = rng.integers(1, 5, (len(LAYERS), 600, 520)).astype(np.int16)
@@ -232,7 +234,7 @@ def test_rerun_skips_finished_tiles_and_redoes_changed_or_damaged_ones(region, m
 
 
 def test_an_interrupted_tile_leaves_nothing_that_looks_finished(region, model_dir, tmp_path, monkeypatch):
-    import plantation.mapping as mapping
+    import plantation.mapping.tiles as mapping
 
     calls = {"n": 0}
     real = mapping.window_probabilities
@@ -260,7 +262,7 @@ def test_two_dask_workers_give_the_single_process_files(region, model_dir, tmp_p
 
 
 def test_styles_and_quicklook_describe_the_layers(region, model_dir, tmp_path):
-    from plantation.styles import CLASS_STYLE
+    from plantation.mapping.styles import CLASS_STYLE
 
     run(_cfg(region, model_dir, tmp_path / "out", quicklook=True, tiles=["t1"]))
     out = tmp_path / "out"

@@ -7,7 +7,7 @@ import pytest
 import torch
 from torch import nn
 
-from plantation.model import ConvRecurrentNet
+from plantation.model.network import ConvRecurrentNet
 
 T = 12  # three years of four dates
 DATE_YEAR = [i // 4 for i in range(T)]

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from plantation.errors import LabelError
-from plantation.outcomes import Outcomes, summarise, year_interval
+from plantation.model.outcomes import Outcomes, summarise, year_interval
 
 YEARS = (2015, 2016, 2017, 2018, 2019)
 

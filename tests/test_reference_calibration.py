@@ -12,7 +12,7 @@ import pytest
 from sklearn.calibration import calibration_curve
 from sklearn.metrics import brier_score_loss
 
-from plantation.calibration import expected_calibration_error
+from plantation.model.calibration import expected_calibration_error
 
 
 @pytest.mark.parametrize("seed", range(4))

@@ -7,7 +7,7 @@ EVI Huete et al. 2002; NBR Key & Benson 2006; NDMI Gao 1996.
 spyndex evaluates each index from its catalogue formula string with its own
 parameter names (N = NIR, R = red, B = blue, S1 = SWIR1, S2 = SWIR2) and its
 catalogued EVI constants (g, C1, C2, L), so a wrong sign, a swapped band or a
-wrong constant in ``plantation.indices`` shows up as a mismatch here.
+wrong constant in ``plantation.imagery.indices`` shows up as a mismatch here.
 """
 
 from __future__ import annotations
@@ -18,8 +18,8 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from plantation import indices
 from plantation.errors import ConfigError
+from plantation.imagery import indices
 
 spyndex = pytest.importorskip("spyndex")
 

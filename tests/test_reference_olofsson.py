@@ -24,7 +24,7 @@ import numpy as np
 import pytest
 from sklearn.metrics import accuracy_score, precision_score, recall_score
 
-from plantation.estimators import Strata, accuracy, allocate, cochran_sample_size, expected_overall_se, stratified_mean, stratified_ratio
+from plantation.assessment.estimators import Strata, accuracy, allocate, cochran_sample_size, expected_overall_se, stratified_mean, stratified_ratio
 
 #: The shared check values beside the checkout (or where PLANTATION_SHARED points).
 SHARED = Path(os.environ.get("PLANTATION_SHARED", Path(__file__).resolve().parents[2] / "shared"))

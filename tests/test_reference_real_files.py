@@ -37,9 +37,9 @@ import pytest
 import rasterio
 import xarray as xr
 
-from plantation.config import MaskConfig, RegionConfig, ScalingRule, TileConfig
-from plantation.indices import ndvi
-from plantation.region import open_tile
+from plantation.imagery.config import MaskConfig, RegionConfig, ScalingRule, TileConfig
+from plantation.imagery.indices import ndvi
+from plantation.imagery.region import open_tile
 
 # --------------------------------------------------------------------------
 # Fetching the reference files
@@ -417,10 +417,11 @@ def test_simulated_forest_falls_inside_the_real_forest(s2_stack):
     envelope is compared, not the medians themselves.
     """
     from hydra import compose, initialize_config_dir
+    from plantation.cli.compose import register_configs
 
-    from plantation.config import register_configs, to_object
-    from plantation.region import open_region
-    from plantation.survey import SurveyConfig
+    from plantation.config import to_object
+    from plantation.imagery.region import open_region
+    from plantation.reference.survey import SurveyConfig
 
     root = Path(__file__).resolve().parents[1]
     register_configs()

@@ -10,7 +10,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from plantation.baselines import optimal_partition
+from plantation.benchmarks.baselines import optimal_partition
 
 rpt = pytest.importorskip("ruptures")
 

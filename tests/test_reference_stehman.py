@@ -17,7 +17,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from plantation.estimators import Strata, accuracy
+from plantation.assessment.estimators import Strata, accuracy
 
 REFERENCE = "AAAAACBABCABBBBBAABBCCCCCDDBBADDDDDDDCCB"
 MAP = "AAAAAAABBBABBBBBBBBBBBCCCCCCBBDDDDDDDDDD"

@@ -11,9 +11,9 @@ import rioxarray  # noqa: F401
 import xarray as xr
 from affine import Affine
 
-from plantation.config import MaskConfig, RegionConfig, ScalingRule, TileConfig
 from plantation.errors import ConfigError, InputNotFoundError, RegionError
-from plantation.region import open_region, open_tile, scaling_for_dates
+from plantation.imagery.config import MaskConfig, RegionConfig, ScalingRule, TileConfig
+from plantation.imagery.region import open_region, open_tile, scaling_for_dates
 from tests.conftest import BANDS, CRS, DATES, TRANSFORM, write_stack
 
 
@@ -208,7 +208,7 @@ def test_window_reads_from_the_files_equal_the_lazy_arrays(make_region, tiny_val
 
 
 def test_pixel_areas_projected_and_geodesic():
-    from plantation.region import Grid
+    from plantation.imagery.region import Grid
 
     utm = Grid(rasterio.crs.CRS.from_epsg(32650), Affine(30, 0, 6e5, 0, -30, 2e5), 3, 4)
     # 30 m pixel = 0.09 ha (common practice, shared check values).

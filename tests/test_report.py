@@ -19,9 +19,9 @@ from affine import Affine
 from rasterio.enums import Resampling
 
 from plantation.errors import PlantationError
-from plantation.mapping import LAYERS, NODATA, NOTICE, SCALE
-from plantation.plots import read_mosaic
-from plantation.report import build_report
+from plantation.mapping.folder import LAYERS, NODATA, NOTICE, SCALE
+from plantation.report.figures import read_mosaic
+from plantation.report.page import build_report
 
 CRS = "EPSG:32650"
 SIDE = 64
@@ -34,7 +34,7 @@ EVIL = "<script>alert(1)</script>"
 
 
 def write_tile(path: Path, x0: float, *, seed: int, overviews: bool) -> Path:
-    """One 64 × 64 mapped tile laid out as plantation.mapping writes it: 8 int16 bands, scales on 5–7, nodata on 1–7."""
+    """One 64 × 64 mapped tile laid out as plantation.mapping.tiles writes it: 8 int16 bands, scales on 5–7, nodata on 1–7."""
     rng = np.random.default_rng(seed)
     cls = np.ones((SIDE, SIDE), np.int16)
     cls[40:, :20] = 4

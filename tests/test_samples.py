@@ -7,9 +7,9 @@ import pandas as pd
 import pytest
 
 from plantation.errors import ConfigError, RegionError
-from plantation.labels import read_labels
-from plantation.region import open_region
-from plantation.samples import build_samples, check_years, day_of_year_fraction, features, read_patches, spatial_split
+from plantation.imagery.region import open_region
+from plantation.model.patches import build_patches, check_years, day_of_year_fraction, features, read_patches, spatial_split
+from plantation.reference.labels import read_labels
 from tests.conftest import BANDS, pixel_centre
 
 
@@ -92,7 +92,7 @@ def test_build_samples_encodes_outcomes(make_region, tmp_path):
     region = make_region(labels=path)
     stacks = open_region(region)
     labels = read_labels(path, grids={s.name: s.grid for s in stacks}, years=[2015, 2016, 2017], csv_crs=region.labels.crs)
-    s = build_samples(stacks, labels, bands=BANDS, index_names=["NDVI"], k=3, block=4, shares=[1.0, 0.0, 0.0], seed=0)
+    s = build_patches(stacks, labels, bands=BANDS, index_names=["NDVI"], k=3, block=4, shares=[1.0, 0.0, 0.0], seed=0)
     assert s.x.shape == (3, 5, 7, 3, 3)
     order = np.argsort(s.row)
     assert s.target[order].tolist() == [0, 3 + 1, 2]  # 2016 is the second year

@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 from sklearn.metrics import f1_score
 
-from plantation.outcomes import Summary
-from plantation.scores import map_scores
+from plantation.benchmarks.scores import map_scores
+from plantation.model.outcomes import Summary
 
 
 def _summary(label, year, lo, hi, p):

@@ -16,11 +16,11 @@ import pandas as pd
 import pytest
 import rasterio
 
-from plantation import spectra
-from plantation.config import LabelsConfig, MaskConfig, RegionConfig, ScalingRule, TileConfig
-from plantation.labels import LABEL_CODES, read_labels
-from plantation.region import open_region
-from plantation.simulate import EVENTS, QA_CLOUD, SimulationConfig, Simulator, tile_names, write_region
+from plantation.imagery.config import LabelsConfig, MaskConfig, RegionConfig, ScalingRule, TileConfig
+from plantation.imagery.region import open_region
+from plantation.reference.labels import LABEL_CODES, read_labels
+from plantation.simulation import spectra
+from plantation.simulation.landscape import EVENTS, QA_CLOUD, SimulationConfig, Simulator, tile_names, write_region
 
 
 @pytest.fixture(scope="module")
@@ -196,8 +196,9 @@ def test_deterministic_and_window_independent(tmp_path, table):
 def test_committed_toy_region_regenerates_exactly(tmp_path, table):
     """toy_tiles/ is what `scripts/simulate.py` writes from configs/sim/toy.yaml."""
     from hydra import compose, initialize_config_dir
+    from plantation.cli.compose import register_configs
 
-    from plantation.config import register_configs, to_object
+    from plantation.config import to_object
 
     root = Path(__file__).resolve().parents[1]
     register_configs()

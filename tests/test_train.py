@@ -12,12 +12,12 @@ import numpy as np
 import pytest
 import torch
 
-from plantation import artefact
-from plantation.config import TrainingConfig
 from plantation.errors import ConfigError
-from plantation.inference import predict_tile
-from plantation.region import open_region
-from plantation.train import ConversionTask, TrainConfig, check_config, outcome_weights
+from plantation.imagery.region import open_region
+from plantation.model import artefact
+from plantation.model.config import TrainingConfig
+from plantation.model.inference import predict_tile
+from plantation.model.training import ConversionTask, TrainConfig, check_config, outcome_weights
 
 ROOT = Path(__file__).resolve().parents[1]
 QUICK = ["network.members=1", "training.max_epochs=2", "trainer.enable_progress_bar=false"]
@@ -83,7 +83,8 @@ def test_train_script_writes_a_complete_run(tmp_path):
     # The exported model maps a corner of a toy tile: one distribution per pixel.
     from omegaconf import OmegaConf
 
-    from plantation.config import RegionConfig, to_object
+    from plantation.config import to_object
+    from plantation.imagery.config import RegionConfig
 
     cfg = OmegaConf.load(run / "config.yaml")
     region = to_object(cfg.region, RegionConfig)

@@ -1,6 +1,6 @@
 """Run an exported model over whole tiles, window by window.
 
-The network is fully convolutional in space (see :mod:`plantation.model`):
+The network is fully convolutional in space (see :mod:`plantation.model.network`):
 each window is read with a halo of ``(k − 1) / 2`` pixels, so every pixel
 gets exactly the neighbourhood it would get as a training patch, and window
 seams leave no trace.
@@ -14,12 +14,12 @@ from dataclasses import asdict, dataclass
 import numpy as np
 import torch
 
-from plantation.artefact import Artefact
-from plantation.calibration import mutual_information
-from plantation.config import ScalingRule
 from plantation.errors import RegionError
-from plantation.region import TileStack
-from plantation.samples import features
+from plantation.imagery.config import ScalingRule
+from plantation.imagery.region import TileStack
+from plantation.model.artefact import Artefact
+from plantation.model.calibration import mutual_information
+from plantation.model.patches import features
 
 
 @dataclass

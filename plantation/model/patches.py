@@ -20,24 +20,24 @@ from dataclasses import dataclass
 import numpy as np
 import xarray as xr
 
-from plantation import indices as idx
 from plantation.errors import ConfigError, LabelError, RegionError
-from plantation.labels import LabelSet
-from plantation.outcomes import Outcomes
-from plantation.region import TileStack
+from plantation.imagery import indices as idx
+from plantation.imagery.region import TileStack
+from plantation.model.outcomes import Outcomes
+from plantation.reference.labels import LabelSet
 
 SPLITS: tuple[str, ...] = ("train", "val", "test")
 
 
 @dataclass
-class SampleSet:
+class PatchSet:
     """Neighbourhood samples of labelled points.
 
     Attributes:
         x: float32 (n, time, channel, k, k): reflectance bands then indices,
             NaN where not observed.
         valid: bool (n, time, k, k).
-        target: int64 (n,) outcome index (see :class:`~plantation.outcomes.Outcomes`).
+        target: int64 (n,) outcome index (see :class:`~plantation.model.outcomes.Outcomes`).
         tile, row, col: where each sample's centre pixel is.
         split: int8 (n,): 0 train, 1 validation, 2 test, −1 dropped (too
             close to a training point).
@@ -60,12 +60,12 @@ class SampleSet:
     def __len__(self) -> int:
         return len(self.target)
 
-    def subset(self, mask: np.ndarray) -> SampleSet:
+    def subset(self, mask: np.ndarray) -> PatchSet:
         """The samples where ``mask`` is True (arrays are views or copies; metadata shared)."""
         m = np.asarray(mask)
-        return SampleSet(self.x[m], self.valid[m], self.target[m], self.tile[m], self.row[m], self.col[m], self.split[m], self.channels, self.dates, self.outcomes)
+        return PatchSet(self.x[m], self.valid[m], self.target[m], self.tile[m], self.row[m], self.col[m], self.split[m], self.channels, self.dates, self.outcomes)
 
-    def part(self, name: str) -> SampleSet:
+    def part(self, name: str) -> PatchSet:
         """One split by name: ``train``, ``val`` or ``test``."""
         if name not in SPLITS:
             raise ValueError(f"split {name!r} is not one of {SPLITS}")
@@ -97,7 +97,7 @@ def features(reflectance: np.ndarray, bands: Sequence[str], index_names: Sequenc
         reflectance: float32 (..., band, y, x) surface reflectance, NaN where
             invalid; ``band`` is axis −3.
         bands: band roles in order.
-        index_names: indices to add (see :data:`plantation.indices.INDICES`).
+        index_names: indices to add (see :data:`plantation.imagery.indices.INDICES`).
 
     Returns:
         float32 (..., band + index, y, x). Indices are clipped to [−1, 1]
@@ -202,7 +202,7 @@ def check_years(dates: np.ndarray) -> tuple[int, ...]:
     return tuple(int(y) for y in years)
 
 
-def build_samples(stacks: Sequence[TileStack], labels: LabelSet, *, bands: Sequence[str], index_names: Sequence[str], k: int, block: int, shares: Sequence[float], seed: int) -> SampleSet:
+def build_patches(stacks: Sequence[TileStack], labels: LabelSet, *, bands: Sequence[str], index_names: Sequence[str], k: int, block: int, shares: Sequence[float], seed: int) -> PatchSet:
     """Samples for every labelled point of a region, with a spatial split.
 
     Raises:
@@ -236,7 +236,7 @@ def build_samples(stacks: Sequence[TileStack], labels: LabelSet, *, bands: Seque
     row = np.concatenate(rows).astype(np.int64)
     col = np.concatenate(cols).astype(np.int64)
     split = spatial_split(np.concatenate(gxs), np.concatenate(gys), block=block, shares=shares, k=k, seed=seed)
-    return SampleSet(
+    return PatchSet(
         x=np.concatenate(xs),
         valid=np.concatenate(vs),
         target=np.concatenate(targets),

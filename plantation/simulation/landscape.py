@@ -51,8 +51,8 @@ from rasterio.windows import Window
 from scipy.ndimage import gaussian_filter
 
 from plantation.errors import ConfigError
-from plantation.labels import LABEL_CODES, LABEL_NAMES
-from plantation.spectra import CLOUD, HAZE, WATER, SpectralTable, default_table
+from plantation.reference.labels import LABEL_CODES, LABEL_NAMES
+from plantation.simulation.spectra import CLOUD, HAZE, WATER, SpectralTable, default_table
 
 BANDS: tuple[str, ...] = ("blue", "green", "red", "nir", "swir1", "swir2")
 

@@ -31,10 +31,10 @@ import rasterio
 
 from plantation import __version__
 from plantation.errors import PlantationError
-from plantation.labels import LABEL_CODES
-from plantation.mapped import sha256_of
-from plantation.mapping import NOTICE
-from plantation.styles import CLASS_STYLE
+from plantation.mapping.folder import NOTICE, sha256_of
+from plantation.mapping.styles import CLASS_STYLE
+from plantation.reference.labels import LABEL_CODES
+from plantation.report import figures
 
 ASSESSMENT_KIND = "plantation-assessment/1"
 PLOTS_KIND = "plantation-plots/1"
@@ -249,8 +249,6 @@ def _header(region: str, dates: list[tuple[str, str]], simulated: bool, assessed
 
 def _map_section(map_dir: Path | None, years_hint: Sequence[int], cutoff_hint: int | None) -> tuple[str, str | None]:
     """The quicklooks section, and the region named in the tiles' tags (if any)."""
-    from plantation import plots
-
     head = '<section id="maps"><h2>1. Map quicklooks</h2>'
     if map_dir is None:
         return head + _notrun("Map quicklooks not drawn: no map folder was given or found.") + "</section>", None
@@ -258,7 +256,7 @@ def _map_section(map_dir: Path | None, years_hint: Sequence[int], cutoff_hint: i
     if not cogs:
         return head + _notrun("Map quicklooks not drawn: the map folder holds no mapped tiles (<tile>.tif).") + "</section>", None
     try:
-        m = plots.read_mosaic(cogs)
+        m = figures.read_mosaic(cogs)
     except PlantationError as exc:
         return head + _notrun(f"Map quicklooks not drawn: {exc}") + "</section>", None
     with rasterio.open(map_dir / f"{m.tiles[0]}.tif") as src:
@@ -285,11 +283,11 @@ def _map_section(map_dir: Path | None, years_hint: Sequence[int], cutoff_hint: i
     lvl = f"{level:.0%}" if level else "credible"
     body = (
         f'<p class="muted">{" ".join(notes)}</p>'
-        f"<figure>{_img(plots.onset_overview(m, years=yr, cutoff_year=cutoff), 'Onset-year map')}"
+        f"<figure>{_img(figures.onset_overview(m, years=yr, cutoff_year=cutoff), 'Onset-year map')}"
         '<figcaption class="caption">Onset year: the most probable year each pixel was converted to tree-crop plantation, on a colour ramp from early (violet) to recent (orange). '
         + (f"The black line in the colour bar is the cutoff: years to its right are after {esc(cutoff)}. " if cutoff is not None else "")
         + "Pixels not mapped as converted are drawn in pale tones by their mapped class.</figcaption></figure>"
-        f"<figure>{_img(plots.uncertainty_overview(m, interval_level=level), 'Uncertainty maps')}"
+        f"<figure>{_img(figures.uncertainty_overview(m, interval_level=level), 'Uncertainty maps')}"
         f'<figcaption class="caption">Uncertainty, three ways. First: how many years the {esc(lvl)} interval of the onset year spans, on converted pixels '
         "(green: the year is pinned to one year; red: the imagery leaves several years open). "
         "Second: p_conversion, the calibrated probability that the pixel was converted in any year of the series; it says how strongly the imagery points to a conversion, not that one happened. "
@@ -306,8 +304,6 @@ def _est_cells(d: Mapping[str, Any] | None, digits: int = 3) -> list[str]:
 
 
 def _areas_section(a: dict[str, Any] | None) -> str:
-    from plantation import plots
-
     head = '<section id="areas"><h2>2. Converted area by onset year</h2>'
     if a is None:
         return head + _notrun("Accuracy assessment not run: no assessment.json, so there are no sample-based area estimates.") + "</section>"
@@ -317,7 +313,7 @@ def _areas_section(a: dict[str, Any] | None) -> str:
     cutoff = after.get("cutoff_year")
     if not rows:
         return head + _notrun("The assessment holds no estimates by onset year.") + "</section>"
-    fig = plots.area_by_year_bars(rows, cutoff_year=cutoff, confidence=conf)
+    fig = figures.area_by_year_bars(rows, cutoff_year=cutoff, confidence=conf)
     tr = []
     for r in rows:
         late = cutoff is not None and r.get("year") is not None and int(r["year"]) > int(cutoff)
@@ -458,8 +454,6 @@ def _accuracy_section(a: dict[str, Any] | None) -> str:
 
 
 def _validation_section(a: dict[str, Any] | None) -> str:
-    from plantation import plots
-
     head = '<section id="calibration"><h2>4. Calibration on held-out data</h2>'
     if a is None:
         return head + _notrun("Accuracy assessment not run: no assessment.json, so the model's validation record is not at hand.") + "</section>"
@@ -470,7 +464,7 @@ def _validation_section(a: dict[str, Any] | None) -> str:
     figs = []
     if v.get("reliability"):
         figs.append(
-            f"<figure>{_img(plots.reliability_diagram(v['reliability'], ece=v.get('ece'), split=split), 'Reliability diagram')}"
+            f"<figure>{_img(figures.reliability_diagram(v['reliability'], ece=v.get('ece'), split=split), 'Reliability diagram')}"
             '<figcaption class="caption">Points binned by their p_conversion: the bin\'s mean probability against the share that were conversions. '
             "On the dashed line, a probability of 0.7 means about 7 conversions in 10 such points; below it the model is over-confident, above it under-confident. "
             "Bars: points per bin.</figcaption></figure>"
@@ -478,7 +472,7 @@ def _validation_section(a: dict[str, Any] | None) -> str:
     cov = v.get("interval_coverage") or []
     if cov:
         figs.append(
-            f"<figure>{_img(plots.interval_coverage_plot(cov), 'Interval coverage')}"
+            f"<figure>{_img(figures.interval_coverage_plot(cov), 'Interval coverage')}"
             '<figcaption class="caption">For each nominal level, the share of held-out conversions whose true year lies inside the onset-year interval of that level. '
             "Below the dashed line the intervals are too narrow.</figcaption></figure>"
         )

@@ -11,7 +11,7 @@ A bidirectional GRU reads the dates of each pixel. On a date when the centre
 pixel is not observed the recurrent state is carried over unchanged, so a
 masked date cannot change the output whatever its stored values.
 
-The head scores every outcome of :mod:`plantation.outcomes`: three static
+The head scores every outcome of :mod:`plantation.model.outcomes`: three static
 outcomes from the whole sequence, and one conversion score per year from the
 states around that year (the same small network for every year, so evidence
 learnt in one year transfers to the others). A softmax over all of them gives
@@ -29,7 +29,7 @@ import numpy as np
 import torch
 from torch import nn
 
-from plantation.outcomes import N_STATIC
+from plantation.model.outcomes import N_STATIC
 
 
 class ConvRecurrentNet(nn.Module):

@@ -1,13 +1,13 @@
 """The farm-plot cutoff report: for each plot, how much of it the map says was converted after a cutoff date.
 
 Input: a mapped region (the folder ``scripts/map.py`` writes: one COG per
-tile with the bands of :data:`plantation.mapping.LAYERS`, and its
+tile with the bands of :data:`plantation.mapping.folder.LAYERS`, and its
 ``manifest.json``) and a vector file of farm plots (GeoPackage or GeoJSON
 polygons, any CRS, an id attribute).
 
 For each plot, every map pixel under it counts with the exact share of the
 pixel the polygon covers (``exactextract``'s coverage fractions), times the
-pixel's area (:meth:`plantation.region.Grid.row_areas_m2`: the pixel size for a
+pixel's area (:meth:`plantation.imagery.region.Grid.row_areas_m2`: the pixel size for a
 projected CRS, geodesic rows for a geographic one). A plot may straddle tiles:
 its pixels are gathered from every tile it touches. Per plot (areas in
 hectares):
@@ -39,7 +39,7 @@ hectares):
 
 Plots that cannot be measured are listed with a problem (never dropped, never
 fatal): :data:`PROBLEMS`. The verdicts are probabilistic evidence to be
-verified, not findings (:data:`plantation.mapping.NOTICE`).
+verified, not findings (:data:`plantation.mapping.folder.NOTICE`).
 """
 
 from __future__ import annotations
@@ -61,10 +61,10 @@ import rasterio.windows
 import shapely
 from pyproj import CRS, Geod, Transformer
 
-from plantation.config import RegionConfig
 from plantation.errors import ConfigError, InputNotFoundError, PlantationError
-from plantation.labels import LABEL_CODES
-from plantation.mapped import MapTile, open_map
+from plantation.imagery.config import RegionConfig
+from plantation.mapping.folder import BAND, NODATA, NOTICE, MapTile, file_digest, open_map
+from plantation.reference.labels import LABEL_CODES
 
 KIND = "plantation-plots/1"
 VERDICTS: tuple[str, ...] = ("low_evidence", "review", "strong_evidence")
@@ -359,7 +359,7 @@ class Pixels:
 
     Attributes:
         covered_m2: covered area: fraction of the pixel inside the plot × pixel area (m²).
-        cls: class code; :data:`plantation.mapping.NODATA` where the pixel has no data.
+        cls: class code; :data:`plantation.mapping.folder.NODATA` where the pixel has no data.
         onset: onset year (0 where no conversion is mapped).
         p_after: p_after_cutoff (scaled to a probability); NaN where no data.
         clear: clear dates.
@@ -389,8 +389,6 @@ class TileReader:
     def __init__(self, tile: MapTile) -> None:
         from exactextract.raster import NumPyRasterSource
 
-        from plantation.mapping import BAND
-
         self.tile = tile
         g = tile.grid
         west, south, east, north = g.bounds
@@ -410,8 +408,6 @@ class TileReader:
     def pixels(self, geom: Any) -> Pixels:
         """Pixels of this tile under ``geom`` (a (Multi)Polygon in the tile's CRS)."""
         from exactextract import exact_extract
-
-        from plantation.mapping import NODATA
 
         if not geom.intersects(self.footprint):
             return Pixels.empty()
@@ -481,8 +477,6 @@ def comonotone_range_ha(covered_m2: np.ndarray, p: np.ndarray, level: float) -> 
 
 def measure(px: Pixels, area_ha: float, cutoff: Cutoff, level: float) -> dict[str, Any]:
     """The numbers of one plot from its pixels (see the module docstring); areas in ha."""
-    from plantation.mapping import NODATA
-
     data = px.cls != NODATA
     cov = px.covered_m2
     mapped_ha = float(cov[data].sum()) / 1e4
@@ -680,8 +674,6 @@ def run(cfg: PlotsConfig) -> PlotsResult:
             or the map's cutoff year is not the cutoff's; nothing is written.
     """
     from tqdm import tqdm
-
-    from plantation.mapping import NOTICE, file_digest
 
     check_config(cfg)
     mapped = open_map(cfg.map)

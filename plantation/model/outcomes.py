@@ -23,7 +23,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from plantation.errors import LabelError
-from plantation.labels import LABEL_CODES
+from plantation.reference.labels import LABEL_CODES
 
 #: Outcome index of each non-conversion label; conversions start at N_STATIC.
 STATIC_OUTCOMES: dict[str, int] = {"stable_forest": 0, "old_plantation": 1, "other": 2}
@@ -56,7 +56,7 @@ class Outcomes:
         return np.array([self.index(lab, y) for lab, y in zip(labels, onset_years, strict=True)], dtype=np.int64)
 
     def label_code(self, outcome: np.ndarray) -> np.ndarray:
-        """Label code (see :data:`plantation.labels.LABEL_CODES`) of outcome indices."""
+        """Label code (see :data:`plantation.reference.labels.LABEL_CODES`) of outcome indices."""
         lut = np.array([LABEL_CODES["stable_forest"], LABEL_CODES["old_plantation"], LABEL_CODES["other"]] + [LABEL_CODES["conversion"]] * len(self.years))
         return lut[np.asarray(outcome)]
 

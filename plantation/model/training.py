@@ -3,12 +3,12 @@
 ``run(cfg)`` is the whole job behind ``scripts/train.py``:
 
 1. open the region and its labels, build neighbourhood samples and the
-   spatial train / validation / test split (:mod:`plantation.samples`);
+   spatial train / validation / test split (:mod:`plantation.model.patches`);
 2. train ``network.members`` networks from different seeds (a small deep
    ensemble, Lakshminarayanan et al. 2017), each with early stopping on the
    validation loss;
 3. fit the temperature on the validation split and, optionally, a
-   split-conformal threshold on it (:mod:`plantation.calibration`);
+   split-conformal threshold on it (:mod:`plantation.model.calibration`);
 4. score the test split and write the run folder.
 
 Class imbalance: each outcome's loss weight is (n_outcome)^−½, normalised
@@ -39,16 +39,19 @@ import torch
 from torch import nn
 from torch.utils.data import DataLoader, TensorDataset
 
-from plantation import __version__, calibration
-from plantation.artefact import Calibration, ModelCard, calibrated_log_probs
-from plantation.artefact import save as save_artefact
-from plantation.config import CalibrationConfig, ModelConfig, RegionConfig, SamplesConfig, SplitConfig, TrainerConfig, TrainingConfig
+from plantation import __version__
 from plantation.errors import ConfigError
-from plantation.labels import LABEL_CODES, LabelSet, read_labels
-from plantation.model import ConvRecurrentNet
-from plantation.outcomes import summarise
-from plantation.region import TileStack, open_region
-from plantation.samples import SPLITS, SampleSet, build_samples, day_of_year_fraction, year_of
+from plantation.imagery.config import RegionConfig
+from plantation.imagery.region import TileStack, open_region
+from plantation.model import calibration
+from plantation.model.artefact import calibrated_log_probs
+from plantation.model.artefact import save as save_artefact
+from plantation.model.card import Calibration, ModelCard, write_validation
+from plantation.model.config import CalibrationConfig, NetworkConfig, PatchConfig, SplitConfig, TrainerConfig, TrainingConfig
+from plantation.model.network import ConvRecurrentNet
+from plantation.model.outcomes import summarise
+from plantation.model.patches import SPLITS, PatchSet, build_patches, day_of_year_fraction, year_of
+from plantation.reference.labels import LABEL_CODES, LabelSet, read_labels
 
 log = logging.getLogger(__name__)
 
@@ -58,9 +61,9 @@ class TrainConfig:
     """Schema of ``configs/train.yaml``."""
 
     region: RegionConfig = field(default_factory=RegionConfig)
-    samples: SamplesConfig = field(default_factory=SamplesConfig)
+    patches: PatchConfig = field(default_factory=PatchConfig)
     split: SplitConfig = field(default_factory=SplitConfig)
-    network: ModelConfig = field(default_factory=ModelConfig)
+    network: NetworkConfig = field(default_factory=NetworkConfig)
     training: TrainingConfig = field(default_factory=TrainingConfig)
     trainer: TrainerConfig = field(default_factory=TrainerConfig)
     calibration: CalibrationConfig = field(default_factory=CalibrationConfig)
@@ -102,7 +105,7 @@ def outcome_weights(targets: np.ndarray, n_outcomes: int, scheme: str) -> np.nda
     return w / (w[targets].mean())
 
 
-def feature_statistics(samples: SampleSet) -> tuple[np.ndarray, np.ndarray]:
+def feature_statistics(samples: PatchSet) -> tuple[np.ndarray, np.ndarray]:
     """Mean and standard deviation per channel over valid observations (float64)."""
     x = np.moveaxis(samples.x, 2, -1)  # (n, t, k, k, c)
     v = samples.valid
@@ -194,13 +197,13 @@ class SampleDataModule(L.LightningDataModule):
     worker process per loader costs more than it saves for a model this small.
     """
 
-    def __init__(self, samples: SampleSet, batch_size: int) -> None:
+    def __init__(self, samples: PatchSet, batch_size: int) -> None:
         super().__init__()
         self.samples = samples
         self.batch_size = batch_size
 
     @staticmethod
-    def tensors(s: SampleSet) -> TensorDataset:
+    def tensors(s: PatchSet) -> TensorDataset:
         return TensorDataset(torch.from_numpy(s.x), torch.from_numpy(s.valid), torch.from_numpy(s.target))
 
     def train_dataloader(self) -> DataLoader:
@@ -210,7 +213,7 @@ class SampleDataModule(L.LightningDataModule):
         return DataLoader(self.tensors(self.samples.part("val")), batch_size=256)
 
 
-def network_spec(samples: SampleSet, cfg: TrainConfig) -> dict[str, Any]:
+def network_spec(samples: PatchSet, cfg: TrainConfig) -> dict[str, Any]:
     """Constructor arguments of the network (plain lists and numbers, for JSON and checkpoints)."""
     mean, std = feature_statistics(samples.part("train"))
     years = year_of(samples.dates)
@@ -218,7 +221,7 @@ def network_spec(samples: SampleSet, cfg: TrainConfig) -> dict[str, Any]:
         "n_channels": len(samples.channels),
         "date_year": (years - years.min()).tolist(),
         "day_of_year": [float(v) for v in day_of_year_fraction(samples.dates)],
-        "neighbourhood": cfg.samples.neighbourhood,
+        "neighbourhood": cfg.patches.neighbourhood,
         "conv_width": cfg.network.conv_width,
         "hidden": cfg.network.hidden,
         "dropout": cfg.network.dropout,
@@ -227,7 +230,7 @@ def network_spec(samples: SampleSet, cfg: TrainConfig) -> dict[str, Any]:
     }
 
 
-def member_logits(nets: list[ConvRecurrentNet], s: SampleSet, batch: int = 512) -> torch.Tensor:
+def member_logits(nets: list[ConvRecurrentNet], s: PatchSet, batch: int = 512) -> torch.Tensor:
     """(members, n, outcomes) logits of samples, networks in eval mode."""
     out = []
     with torch.inference_mode():
@@ -280,7 +283,7 @@ class TrainedModel:
     is_global_zero: bool = True
 
 
-def fit(samples: SampleSet, cfg: TrainConfig, folder: Path) -> TrainedModel:
+def fit(samples: PatchSet, cfg: TrainConfig, folder: Path) -> TrainedModel:
     """Train the ensemble on ``samples`` (split already assigned) and calibrate it.
 
     Checkpoints and logs go under ``folder``.
@@ -348,7 +351,7 @@ def fit(samples: SampleSet, cfg: TrainConfig, folder: Path) -> TrainedModel:
     return TrainedModel(nets, spec, cal, metrics, is_zero)
 
 
-def score_samples(nets: list[ConvRecurrentNet], cal: Calibration, s: SampleSet, cc: CalibrationConfig) -> dict[str, Any]:
+def score_samples(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchSet, cc: CalibrationConfig) -> dict[str, Any]:
     """Label-sample metrics (the sample is stratified, so these are not map accuracies)."""
     probs = np.exp(calibrated_log_probs(member_logits(nets, s), cal).numpy())
     years = s.outcomes.years
@@ -377,7 +380,7 @@ def score_samples(nets: list[ConvRecurrentNet], cal: Calibration, s: SampleSet, 
 COVERAGE_LEVELS = (0.5, 0.8, 0.9, 0.95)
 
 
-def reliability_record(nets: list[ConvRecurrentNet], cal: Calibration, s: SampleSet, split: str, cc: CalibrationConfig, n_bins: int = 10) -> dict[str, Any]:
+def reliability_record(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchSet, split: str, cc: CalibrationConfig, n_bins: int = 10) -> dict[str, Any]:
     """How well the calibrated probabilities and intervals hold on held-out points (for the report).
 
     ``reliability``: per equal-width bin of p_conversion, the mean predicted
@@ -410,20 +413,20 @@ def reliability_record(nets: list[ConvRecurrentNet], cal: Calibration, s: Sample
     return {"split": split, "n": len(s), "reliability": bins, "ece": round(calibration.expected_calibration_error(p, conv, n_bins), 4), "interval_coverage": cover}
 
 
-def load_region_samples(cfg: TrainConfig) -> tuple[list[TileStack], LabelSet, SampleSet]:
+def load_region_samples(cfg: TrainConfig) -> tuple[list[TileStack], LabelSet, PatchSet]:
     """Open the region and labels of ``cfg`` and cut the samples."""
     if not cfg.region.labels.path:
         raise ConfigError(f"region {cfg.region.name!r}: labels.path is not set; training needs labelled points")
     stacks = open_region(cfg.region)
     labels = read_labels(cfg.region.labels.path, grids={s.name: s.grid for s in stacks}, years=[int(y) for y in stacks[0].years], csv_crs=cfg.region.labels.crs)
-    samples = build_samples(stacks, labels, bands=cfg.region.bands, index_names=cfg.samples.indices, k=cfg.samples.neighbourhood, block=cfg.split.block, shares=cfg.split.shares, seed=cfg.split.seed)
+    samples = build_patches(stacks, labels, bands=cfg.region.bands, index_names=cfg.patches.indices, k=cfg.patches.neighbourhood, block=cfg.split.block, shares=cfg.split.shares, seed=cfg.split.seed)
     return stacks, labels, samples
 
 
-def model_card(cfg: TrainConfig, samples: SampleSet, trained: TrainedModel, labels: LabelSet) -> ModelCard:
+def model_card(cfg: TrainConfig, samples: PatchSet, trained: TrainedModel, labels: LabelSet) -> ModelCard:
     return ModelCard(
         bands=list(cfg.region.bands),
-        indices=[n.upper() for n in cfg.samples.indices],
+        indices=[n.upper() for n in cfg.patches.indices],
         scaling=[asdict(r) for r in cfg.region.scaling],
         dates=[str(d) for d in samples.dates.astype("datetime64[D]")],
         years=list(samples.outcomes.years),
@@ -444,7 +447,7 @@ def run(cfg: TrainConfig, resolved_config: str | None = None) -> Path:
     The folder holds ``config.yaml`` (resolved), ``labels.json`` (fingerprint,
     counts, split sizes), ``metrics.json``, ``checkpoints/member<i>.ckpt``,
     ``logs/`` (CSV per member) and the artefact ``model/`` (see
-    :mod:`plantation.artefact`). It is built as ``<run_name>.partial`` and
+    :mod:`plantation.model.artefact`). It is built as ``<run_name>.partial`` and
     renamed when complete; an earlier run of the same name is replaced.
     """
     check_config(cfg)
@@ -473,7 +476,7 @@ def run(cfg: TrainConfig, resolved_config: str | None = None) -> Path:
         (work / "config.yaml").write_text(resolved_config)
     save_artefact(work / "model", model_card(cfg, samples, trained, labels), trained.members)
     # Beside the artefact, so that a map's assessment can show how the model's probabilities held up.
-    (work / "model" / "validation.json").write_text(json.dumps(trained.metrics["validation"], indent=1))
+    write_validation(work / "model", trained.metrics["validation"])
     # Swap in the new run; the old one goes only once the new one is in place.
     old = final.with_name(final.name + ".old")
     if old.exists():

@@ -12,9 +12,9 @@ from typing import Any
 import numpy as np
 from sklearn.metrics import f1_score
 
-from plantation.calibration import expected_calibration_error
-from plantation.labels import LABEL_CODES
-from plantation.outcomes import Summary
+from plantation.model.calibration import expected_calibration_error
+from plantation.model.outcomes import Summary
+from plantation.reference.labels import LABEL_CODES
 
 CONVERSION = LABEL_CODES["conversion"]
 

@@ -1,6 +1,6 @@
 """A stratified random validation sample drawn from a mapped region, for interpreters to label.
 
-Strata are built from the map (the COGs written by :mod:`plantation.mapping`):
+Strata are built from the map (the COGs written by :mod:`plantation.mapping.tiles`):
 
 * ``conversion_<first>_<last>``: mapped conversion, in groups of onset years
   that never straddle the cutoff (so the after-cutoff area has strata of its own);
@@ -15,7 +15,7 @@ Strata are built from the map (the COGs written by :mod:`plantation.mapping`):
 The total sample size comes from the target standard error of overall accuracy
 (Cochran's formula as in Olofsson et al. 2014, eq. 13, with assumed user's
 accuracies per stratum kind), a floor per stratum protects rare strata, and
-the rest is allocated by area (:func:`plantation.estimators.allocate`).
+the rest is allocated by area (:func:`plantation.assessment.estimators.allocate`).
 Pixels are drawn without replacement within each stratum, in two passes over
 the map (count, then pick), so memory follows the strip, not the tile.
 """
@@ -36,12 +36,12 @@ import rasterio.windows
 from pyproj import Transformer
 from scipy.ndimage import maximum_filter
 
-from plantation.config import RegionConfig
+from plantation.assessment.estimators import allocate, cochran_sample_size, expected_overall_se
 from plantation.errors import ConfigError, InputNotFoundError, PlantationError
-from plantation.estimators import allocate, cochran_sample_size, expected_overall_se
-from plantation.labels import LABEL_CODES, LABEL_NAMES
-from plantation.mapped import MappedRegion, MapTile, open_map, sha256_of
-from plantation.region import Grid
+from plantation.imagery.config import RegionConfig
+from plantation.imagery.region import Grid
+from plantation.mapping.folder import MappedRegion, MapTile, open_map, sha256_of
+from plantation.reference.labels import LABEL_CODES, LABEL_NAMES
 
 FORMAT = "plantation-sample-design/1"
 MAP_NODATA = -32768

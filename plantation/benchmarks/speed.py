@@ -28,14 +28,20 @@ from typing import Any
 import numpy as np
 import torch
 
-from plantation.artefact import Artefact, Calibration, ModelCard, load, save
-from plantation.config import RegionConfig, TileConfig
-from plantation.inference import read_window, windows
-from plantation.mapping import Settings, map_tile, resolve_model, window_probabilities
-from plantation.model import ConvRecurrentNet
-from plantation.region import open_tile
-from plantation.samples import day_of_year_fraction, features, read_patches, year_of
-from plantation.simulate import SimulationConfig
+from plantation.benchmarks.accuracy import centre_series, tile_series
+from plantation.benchmarks.baselines import AnnualTrees, annual_features
+from plantation.config import to_object
+from plantation.errors import ConfigError
+from plantation.imagery.config import RegionConfig, TileConfig
+from plantation.imagery.region import open_tile
+from plantation.mapping.tiles import Settings, map_tile, window_probabilities
+from plantation.model.artefact import Artefact, load, save
+from plantation.model.card import Calibration, ModelCard, resolve_model
+from plantation.model.inference import read_window, windows
+from plantation.model.network import ConvRecurrentNet
+from plantation.model.patches import day_of_year_fraction, features, read_patches, year_of
+from plantation.model.training import TrainConfig, load_region_samples
+from plantation.simulation.landscape import SimulationConfig, write_region
 
 
 @dataclass
@@ -138,8 +144,6 @@ def make_rss_tiles(cfg: SpeedConfig, folder: Path) -> dict[int, Path]:
     """Simulated tiles of each size in ``cfg.rss_sizes`` on four dates: the smallest simulated, larger ones as mosaics of it."""
     import rasterio
 
-    from plantation.simulate import write_region
-
     base = min(cfg.rss_sizes)
     out: dict[int, Path] = {}
     src_dir = folder / f"tile{base}"
@@ -173,8 +177,6 @@ def make_rss_tiles(cfg: SpeedConfig, folder: Path) -> dict[int, Path]:
 
 def rss_child(region_json: str, model_dir: str, window: int, pixel_batch: int, dest: str) -> dict[str, Any]:
     """Map one tile in this (fresh) process; return its peak RSS and time."""
-    from plantation.config import to_object
-
     region = to_object(json.loads(region_json), RegionConfig)
     art = load(model_dir)
     stack = open_tile(region.tiles[0], region)
@@ -185,18 +187,12 @@ def rss_child(region_json: str, model_dir: str, window: int, pixel_batch: int, d
 
 def run(cfg: SpeedConfig) -> dict[str, Any]:
     """Every figure of ``speed.json``."""
-    from plantation.baselines import AnnualTrees, annual_features
-    from plantation.comparison import centre_series, tile_series
-    from plantation.train import TrainConfig, load_region_samples
-
     threads = torch.get_num_threads()
     res: dict[str, Any] = {"threads": threads, "torch": torch.__version__}
     model_dir = resolve_model(cfg.model)
     art = load(model_dir)
     tile_cfg = next((t for t in cfg.region.tiles if t.name == cfg.tile), None)
     if tile_cfg is None:
-        from plantation.errors import ConfigError
-
         raise ConfigError(f"tile: {cfg.tile!r} is not a tile of region {cfg.region.name!r}")
     stack = open_tile(tile_cfg, cfg.region)
     g = stack.grid

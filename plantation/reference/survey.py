@@ -28,11 +28,11 @@ import pandas as pd
 import rasterio
 import xarray as xr
 
-from plantation import indices
-from plantation.config import RegionConfig
 from plantation.errors import ConfigError
-from plantation.labels import LABEL_NAMES, LabelSet, read_labels
-from plantation.region import TileStack, open_region
+from plantation.imagery import indices
+from plantation.imagery.config import RegionConfig
+from plantation.imagery.region import TileStack, open_region
+from plantation.reference.labels import LABEL_NAMES, LabelSet, read_labels
 
 
 @dataclass

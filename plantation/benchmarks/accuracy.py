@@ -9,7 +9,7 @@ The reference sample is stratified, so every method's probabilities reflect
 the sample's outcome frequencies, not the map's. With ``prior_adjust`` the
 model's and the trees' probabilities are re-weighted to the held-out
 region's frequencies estimated from its unlabelled pixels by EM (Saerens et
-al. 2002, see :mod:`plantation.calibration`); the truth is never used.
+al. 2002, see :mod:`plantation.model.calibration`); the truth is never used.
 """
 
 from __future__ import annotations
@@ -27,18 +27,18 @@ import numpy as np
 import rasterio
 import torch
 
-from plantation import artefact as art_io
-from plantation.baselines import AnnualTrees, BreakRule, annual_features
-from plantation.calibration import adjust_priors
-from plantation.config import RegionConfig, TileConfig
+from plantation.benchmarks.baselines import AnnualTrees, BreakRule, annual_features
+from plantation.benchmarks.scores import map_scores
 from plantation.errors import ConfigError
-from plantation.inference import predict_tile
-from plantation.outcomes import Outcomes, summarise
-from plantation.region import TileStack, open_region
-from plantation.samples import SampleSet, features, year_of
-from plantation.scores import map_scores
-from plantation.simulate import Landscape, SimulationConfig, build_landscape, dates_of, decimal_year, tile_names, write_region
-from plantation.train import TrainConfig, fit, load_region_samples, model_card
+from plantation.imagery.config import RegionConfig, TileConfig
+from plantation.imagery.region import TileStack, open_region
+from plantation.model import artefact as art_io
+from plantation.model.calibration import adjust_priors
+from plantation.model.inference import predict_tile
+from plantation.model.outcomes import Outcomes, summarise
+from plantation.model.patches import PatchSet, features, year_of
+from plantation.model.training import TrainConfig, fit, load_region_samples, model_card
+from plantation.simulation.landscape import Landscape, SimulationConfig, build_landscape, dates_of, decimal_year, tile_names, write_region
 
 
 @dataclass
@@ -79,7 +79,7 @@ def eval_region_config(train_region: RegionConfig, sim: SimulationConfig, folder
     return replace(train_region, name=f"{sim.name}_seed{sim.seed}", tiles=tiles)
 
 
-def centre_series(s: SampleSet) -> tuple[np.ndarray, np.ndarray]:
+def centre_series(s: PatchSet) -> tuple[np.ndarray, np.ndarray]:
     """(n, time, channel) values and (n, time) validity of each sample's centre pixel."""
     r = s.x.shape[-1] // 2
     return s.x[:, :, :, r, r], s.valid[:, :, r, r]
@@ -176,7 +176,7 @@ def run(cfg: ComparisonConfig) -> dict[str, Any]:
         tp = predict_tile(artefact, st, window=cfg.window, progress=cfg.progress, scaling=region.scaling)
         map_seconds["model"] += time.perf_counter() - t0
         probs["model"].append(tp.probs.reshape(-1, outcomes.size))
-        x, v = tile_series(st, list(cfg.region.bands), list(cfg.samples.indices))
+        x, v = tile_series(st, list(cfg.region.bands), list(cfg.patches.indices))
         t0 = time.perf_counter()
         probs["trees"].append(trees.predict_proba(annual_features(x, v, date_year, ny, samples.channels)))
         map_seconds["trees"] += time.perf_counter() - t0

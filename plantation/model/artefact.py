@@ -1,4 +1,4 @@
-"""The exported model: weights in safetensors plus JSON metadata, loadable without pickle.
+"""The exported model loaded for inference: the card plus one network per ensemble member, without pickle.
 
 An artefact is two files side by side:
 
@@ -16,9 +16,8 @@ ever unpickled.
 
 from __future__ import annotations
 
-import json
 import os
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -27,48 +26,8 @@ import torch
 from safetensors.torch import load_file, save_file
 
 from plantation.errors import InputNotFoundError, PlantationError
-from plantation.model import ConvRecurrentNet
-
-FORMAT = "plantation-model/1"
-
-
-@dataclass
-class Calibration:
-    """How member logits become calibrated outcome probabilities.
-
-    p = softmax((log mean_m softmax(z_m) − log w) / T), where ``w`` are the
-    per-outcome loss weights used in training (dividing them out restores
-    the posteriors of the reference sample) and ``T`` is the temperature
-    fitted on validation data. ``train_prior`` is the outcome frequency of
-    the training sample, the starting point for prior adjustment on a map.
-    """
-
-    temperature: float = 1.0
-    loss_weights: list[float] = field(default_factory=list)
-    train_prior: list[float] = field(default_factory=list)
-    #: Split-conformal threshold on 1 − p(outcome) (None: not calibrated).
-    conformal_qhat: float | None = None
-    conformal_alpha: float | None = None
-
-
-@dataclass
-class ModelCard:
-    """Metadata of an artefact (the content of ``model.json``)."""
-
-    bands: list[str]
-    indices: list[str]
-    scaling: list[dict[str, Any]]
-    dates: list[str]
-    years: list[int]
-    network: dict[str, Any]
-    members: int
-    calibration: Calibration
-    cutoff_year: int
-    interval_level: float
-    region: str
-    labels_fingerprint: str
-    package_version: str
-    format: str = FORMAT
+from plantation.model.card import CARD, FORMAT, WEIGHTS, Calibration, ModelCard, read_card, write_card
+from plantation.model.network import ConvRecurrentNet
 
 
 @dataclass
@@ -101,12 +60,10 @@ def save(folder: str | Path, card: ModelCard, members: list[ConvRecurrentNet]) -
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     tensors = {f"member{i}.{k}": v.detach().contiguous().clone() for i, m in enumerate(members) for k, v in m.state_dict().items()}
-    tmp = folder / "model.safetensors.partial"
+    tmp = folder / (WEIGHTS + ".partial")
     save_file(tensors, str(tmp), metadata={"format": FORMAT})
-    os.replace(tmp, folder / "model.safetensors")
-    tmpj = folder / "model.json.partial"
-    tmpj.write_text(json.dumps(asdict(card), indent=2))
-    os.replace(tmpj, folder / "model.json")
+    os.replace(tmp, folder / WEIGHTS)
+    write_card(folder, card)
     return folder
 
 
@@ -118,21 +75,11 @@ def load(folder: str | Path) -> Artefact:
         PlantationError: the files are not a plantation model or do not match.
     """
     folder = Path(folder)
-    meta, weights = folder / "model.json", folder / "model.safetensors"
+    meta, weights = folder / CARD, folder / WEIGHTS
     for f in (meta, weights):
         if not f.is_file():
-            raise InputNotFoundError(f"{f}: model file not found (export a model with scripts/train.py)")
-    try:
-        raw = json.loads(meta.read_text())
-    except json.JSONDecodeError as exc:
-        raise PlantationError(f"{meta}: not valid JSON ({exc.msg}, line {exc.lineno})") from None
-    if raw.get("format") != FORMAT:
-        raise PlantationError(f"{meta}: format {raw.get('format')!r}, expected {FORMAT!r}")
-    try:
-        raw["calibration"] = Calibration(**raw["calibration"])
-        card = ModelCard(**raw)
-    except (TypeError, KeyError) as exc:
-        raise PlantationError(f"{meta}: not a complete model card ({exc})") from None
+            raise InputNotFoundError(f"{f.absolute()}: model file not found (export a model with `plantation train`)")
+    card = read_card(folder)
     try:
         tensors = load_file(str(weights))
     except Exception as exc:  # safetensors raises its own error type for a damaged file

@@ -25,7 +25,7 @@ import pandas as pd
 from pyproj import CRS, Transformer
 
 from plantation.errors import InputNotFoundError, LabelError
-from plantation.region import Grid
+from plantation.imagery.region import Grid
 
 #: Label names in code order (code = index + 1; 0 is reserved for "no data").
 LABEL_NAMES: tuple[str, ...] = ("stable_forest", "conversion", "old_plantation", "other")

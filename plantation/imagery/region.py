@@ -11,7 +11,7 @@ A region is a list of tiles. Each tile is either
 Nothing is read at open time but file headers: values come as dask arrays
 chunked in space, so a tile larger than memory is processed window by window.
 Stored integers become reflectance (unitless, float32) through the region's
-:class:`~plantation.config.ScalingRule` list, resolved per date.
+:class:`~plantation.imagery.config.ScalingRule` list, resolved per date.
 """
 
 from __future__ import annotations
@@ -31,8 +31,8 @@ import xarray as xr
 from affine import Affine
 from rasterio.crs import CRS
 
-from plantation.config import RegionConfig, ScalingRule, TileConfig
 from plantation.errors import ConfigError, InputNotFoundError, RegionError
+from plantation.imagery.config import RegionConfig, ScalingRule, TileConfig
 
 _DATE = re.compile(r"(\d{4})-(\d{2})-(\d{2})")
 _RASTER_SUFFIXES = (".tif", ".tiff")

@@ -1,8 +1,8 @@
 """Accuracy and area of a mapped region from its interpreted validation sample.
 
-Reads the sample drawn by :mod:`plantation.design` after interpreters filled
+Reads the sample drawn by :mod:`plantation.assessment.design` after interpreters filled
 its reference columns, checks it row by row, and estimates with
-:mod:`plantation.estimators`: the error matrix in area proportions, overall,
+:mod:`plantation.assessment.estimators`: the error matrix in area proportions, overall,
 user's and producer's accuracy, the area of each class, converted area per
 onset year and after the cutoff, and the timing accuracy of conversions —
 each with its standard error and interval. Areas come from the sample, not
@@ -21,13 +21,14 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from plantation.config import RegionConfig
-from plantation.design import FORMAT as DESIGN_FORMAT
-from plantation.design import SIMULATED
+from plantation.assessment.design import FORMAT as DESIGN_FORMAT
+from plantation.assessment.design import SIMULATED
+from plantation.assessment.estimators import Estimate, EstimationError, Strata, accuracy, stratified_mean, stratified_ratio, z_value
 from plantation.errors import ConfigError, InputNotFoundError, LabelError, PlantationError
-from plantation.estimators import Estimate, EstimationError, Strata, accuracy, stratified_mean, stratified_ratio, z_value
-from plantation.labels import LABEL_NAMES
-from plantation.mapped import open_map, sha256_of
+from plantation.imagery.config import RegionConfig
+from plantation.mapping.folder import open_map, sha256_of
+from plantation.model.card import CARD, WEIGHTS, read_card, read_validation, resolve_model
+from plantation.reference.labels import LABEL_NAMES
 
 FORMAT = "plantation-assessment/1"
 REQUIRED = ("point_id", "stratum", "map_class", "map_onset_year", "label", "onset_year")
@@ -255,17 +256,14 @@ def _model_provenance(folder: Path | None) -> tuple[dict[str, Any] | None, dict[
     """The model's card summary and its validation record, if the folder holds them."""
     if folder is None:
         return None, None
-    card_path = folder / "model.json"
-    if not card_path.is_file() and (folder / "model" / "model.json").is_file():
-        folder = folder / "model"
-        card_path = folder / "model.json"
-    if not card_path.is_file():
+    try:
+        folder = resolve_model(folder)
+    except InputNotFoundError:
         return {"path": str(folder), "note": "model folder not found"}, None
-    card = json.loads(card_path.read_text())
-    digest = sha256_of(*[folder / n for n in ("model.json", "model.safetensors") if (folder / n).is_file()])
-    prov = {"path": str(folder), "sha256": digest, "region": card.get("region"), "labels_fingerprint": card.get("labels_fingerprint"), "package_version": card.get("package_version")}
-    vfile = folder / "validation.json"
-    return prov, (json.loads(vfile.read_text()) if vfile.is_file() else None)
+    card = read_card(folder)
+    digest = sha256_of(*[folder / n for n in (CARD, WEIGHTS) if (folder / n).is_file()])
+    prov = {"path": str(folder), "sha256": digest, "region": card.region, "labels_fingerprint": card.labels_fingerprint, "package_version": card.package_version}
+    return prov, read_validation(folder)
 
 
 def run(cfg: AssessConfig, resolved_config: str | None = None, echo: Any = print) -> dict[str, Any]:
@@ -314,10 +312,6 @@ def run(cfg: AssessConfig, resolved_config: str | None = None, echo: Any = print
     _write_tables(doc, out)
     for line in summary_lines(doc):
         echo(line)
-    if cfg.report:
-        from plantation.report import build_report
-
-        echo(f"report: {build_report(out, map_dir=mapped.folder)}")
     return doc
 
 

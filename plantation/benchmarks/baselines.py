@@ -1,7 +1,7 @@
 """What a practitioner would use instead of the network, for side-by-side benchmarks.
 
 Both baselines read the centre pixel's series only and return the same
-outcome distribution as the network (see :mod:`plantation.outcomes`), so one
+outcome distribution as the network (see :mod:`plantation.model.outcomes`), so one
 scoring code compares all three.
 
 * :class:`AnnualTrees` — gradient-boosted trees (scikit-learn's
@@ -29,7 +29,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from plantation.outcomes import N_STATIC, Outcomes
+from plantation.model.outcomes import N_STATIC, Outcomes
 
 SUMMARY_CHANNELS: tuple[str, ...] = ("NDVI", "NBR", "NDMI", "swir1", "red")
 

@@ -1,0 +1,251 @@
+"""The map folder's format: its layers, ``manifest.json`` and the checked reading of a mapped region.
+
+A mapped region folder holds one Cloud-Optimized GeoTIFF per tile with the
+bands of :data:`LAYERS` (all int16, nodata :data:`NODATA`, probabilities
+scaled by :data:`SCALE`), a QGIS style and quicklook per tile, and
+``manifest.json``, which records each finished tile's file, sha256, key and
+areas. This module is the one place that knows that format: the mapping job
+writes it through :class:`Manifest`; sampling, assessment, the farm-plot
+check and the report read it through :func:`open_map`, so they agree on which
+tiles exist and refuse a map changed after it was made. It never imports
+torch.
+
+Output layers:
+
+=====  ==============  =====================================================
+band   description     content
+=====  ==============  =====================================================
+1      class           1 stable natural forest, 2 converted to plantation
+                       during the series, 3 plantation before the series,
+                       4 other land or disturbance (codes of
+                       :data:`plantation.reference.labels.LABEL_CODES`)
+2      onset_year      modal conversion year; 0 where no conversion is mapped
+3, 4   onset_lo/hi     the interval of conversion years (level from the
+                       model card or config); 0 where no conversion
+5      p_conversion    probability of conversion in any year (× 1e-4)
+6      p_after_cutoff  probability of conversion after the cutoff year (× 1e-4)
+7      epistemic       ensemble disagreement, mutual information in nats (× 1e-4)
+8      clear_dates     dates on which the pixel was observed (never nodata)
+=====  ==============  =====================================================
+
+Bands 1–7 hold :data:`NODATA` where a pixel has fewer than ``min_clear``
+clear dates.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+from collections.abc import Sequence
+from dataclasses import asdict, dataclass
+from pathlib import Path
+from typing import Any
+
+import rasterio
+
+from plantation import __version__
+from plantation.errors import InputNotFoundError, PlantationError, RegionError
+from plantation.imagery.region import Grid
+
+FORMAT = "plantation-map/1"
+NODATA = -32768
+#: Scaled layers store round(value / SCALE).
+SCALE = 1e-4
+
+#: (description, GDAL scale, units) per band, in band order.
+LAYERS: tuple[tuple[str, float, str], ...] = (
+    ("class", 1.0, "code"),
+    ("onset_year", 1.0, "year"),
+    ("onset_lo", 1.0, "year"),
+    ("onset_hi", 1.0, "year"),
+    ("p_conversion", SCALE, "probability"),
+    ("p_after_cutoff", SCALE, "probability"),
+    ("epistemic", SCALE, "nats"),
+    ("clear_dates", 1.0, "dates"),
+)
+BAND = {name: i + 1 for i, (name, _, _) in enumerate(LAYERS)}
+
+NOTICE = (
+    "Probabilistic evidence of conversion from satellite imagery, not a finding about any plot or person. "
+    "Verify with high-resolution imagery and field checks, under local law and licensed practice, before acting on it."
+)
+
+
+@dataclass
+class TileResult:
+    """What mapping one tile produced.
+
+    ``converted_ha`` maps onset year → hectares mapped as converted in that
+    year (pixel areas from the grid's CRS).
+    """
+
+    tile: str
+    file: str
+    key: str
+    sha256: str
+    pixels: int
+    mapped_pixels: int
+    converted_ha: dict[int, float]
+    after_cutoff_ha: float
+    seconds: float
+    finished: str = ""
+    #: The model folder and the sha256 over its two files (provenance for the assessment).
+    model: str = ""
+    model_sha256: str = ""
+
+
+
+def file_digest(paths: Sequence[Path]) -> str:
+    """sha256 over the bytes of files, in order."""
+    h = hashlib.sha256()
+    for p in paths:
+        with open(p, "rb") as f:
+            for block in iter(lambda f=f: f.read(1 << 20), b""):
+                h.update(block)
+    return h.hexdigest()
+
+
+
+class Manifest:
+    """``manifest.json`` in the output folder: what made each finished tile.
+
+    Only the process driving the run writes it, atomically, after a tile's
+    files are all in place, so an entry always describes complete files.
+    """
+
+    def __init__(self, path: Path) -> None:
+        self.path = path
+        self.tiles: dict[str, dict[str, Any]] = {}
+        if path.is_file():
+            try:
+                raw = json.loads(path.read_text())
+            except json.JSONDecodeError as exc:
+                raise PlantationError(f"{path}: not valid JSON ({exc.msg}, line {exc.lineno}); delete it to map every tile again") from None
+            if raw.get("format") != FORMAT:
+                raise PlantationError(f"{path}: format {raw.get('format')!r}, expected {FORMAT!r}")
+            self.tiles = raw.get("tiles", {})
+
+    def finished(self, name: str, key: str, folder: Path) -> TileResult | None:
+        """The recorded result if tile ``name`` was finished with ``key`` and its file is intact."""
+        e = self.tiles.get(name)
+        if not e or e.get("key") != key:
+            return None
+        f = folder / e["file"]
+        if not f.is_file() or file_digest([f]) != e.get("sha256"):
+            return None
+        r = TileResult(**e)
+        r.converted_ha = {int(k): v for k, v in r.converted_ha.items()}
+        return r
+
+    def record(self, result: TileResult) -> None:
+        self.tiles[result.tile] = asdict(result)
+        tmp = self.path.with_name(self.path.name + ".partial")
+        tmp.write_text(json.dumps({"format": FORMAT, "producer": f"plantation {__version__}", "tiles": self.tiles}, indent=1, sort_keys=True))
+        os.replace(tmp, self.path)
+
+
+
+
+
+@dataclass
+class MapTile:
+    """One finished tile: its file, bytes' sha256, grid and the scale of its p_after_cutoff band."""
+
+    name: str
+    path: Path
+    sha256: str
+    grid: Grid
+    cutoff_year: int
+    #: p_after_cutoff = stored × scale + offset.
+    scale: float
+    offset: float
+
+
+@dataclass
+class MappedRegion:
+    """The tiles of a mapped region, sorted by name.
+
+    ``converted_ha`` is the map's pixel-count area mapped as converted by
+    onset year, summed over tiles (its keys are the years the map can hold);
+    ``model`` and ``model_sha256`` what made it, where recorded.
+    """
+
+    folder: Path
+    tiles: list[MapTile]
+    cutoff_year: int
+    converted_ha: dict[int, float]
+    manifest_sha256: str
+    model: str | None = None
+    model_sha256: str | None = None
+
+    @property
+    def years(self) -> list[int]:
+        return sorted(self.converted_ha)
+
+
+def sha256_of(*paths: Path) -> str:
+    """sha256 over the bytes of one or more files, in order: the mapping job's digest, so the two compare."""
+    return file_digest(list(paths))
+
+
+def open_map(folder: str | Path, *, verify: bool = True) -> MappedRegion:
+    """Read ``manifest.json`` of a mapped region and check each tile's file.
+
+    Args:
+        folder: the mapped region folder (``out_dir`` of scripts/map.py).
+        verify: compare every tile's bytes with the sha256 in the manifest.
+
+    Raises:
+        InputNotFoundError: no folder, manifest or tile file.
+        PlantationError: the manifest is not a map manifest; a file's bytes
+            differ from it; a tile lacks the mapped layers or the
+            ``cutoff_year`` tag; the tiles disagree on the cutoff year.
+        RegionError: a tile's grid is rotated or not north-up.
+    """
+    folder = Path(folder)
+    man = folder / "manifest.json"
+    if not man.is_file():
+        raise InputNotFoundError(f"{folder}: no mapped region here (no manifest.json); map the region with scripts/map.py")
+    try:
+        raw = json.loads(man.read_text())
+    except json.JSONDecodeError as exc:
+        raise PlantationError(f"{man}: not valid JSON ({exc.msg}, line {exc.lineno})") from None
+    if raw.get("format") != FORMAT:
+        raise PlantationError(f"{man}: format {raw.get('format')!r}, expected {FORMAT!r} (a manifest written by scripts/map.py)")
+    if not raw.get("tiles"):
+        raise PlantationError(f"{man}: lists no finished tile; map the region with scripts/map.py")
+    names = tuple(name for name, _, _ in LAYERS)
+    band = BAND["p_after_cutoff"] - 1
+    tiles: list[MapTile] = []
+    converted: dict[int, float] = {}
+    models: set[tuple[str, str]] = set()
+    for name in sorted(raw["tiles"]):
+        e = raw["tiles"][name]
+        path = folder / e["file"]
+        if not path.is_file():
+            raise InputNotFoundError(f"{path}: tile {name!r} of {man} is missing; map the region again with scripts/map.py")
+        digest = sha256_of(path) if verify else str(e.get("sha256", ""))
+        if verify and digest != e.get("sha256"):
+            raise PlantationError(f"{path}: its bytes differ from the manifest (sha256); the map was changed after mapping, map it again")
+        with rasterio.open(path) as src:
+            if tuple(src.descriptions) != names:
+                raise PlantationError(f"{path}: bands {list(src.descriptions)}, expected {list(names)} (a map written by scripts/map.py)")
+            tag = str(src.tags().get("cutoff_year", "")).strip()
+            if not tag.lstrip("-").isdigit():
+                raise PlantationError(f"{path}: no cutoff_year tag; map the region again with scripts/map.py")
+            grid = Grid(src.crs, src.transform, src.height, src.width)
+            tile = MapTile(name, path, digest, grid, int(tag), float(src.scales[band]), float(src.offsets[band]))
+        t = grid.transform
+        if t.b != 0 or t.d != 0 or t.a <= 0 or t.e >= 0:
+            raise RegionError(f"{path}: the grid is rotated or not north-up; reproject the map to a north-up grid first")
+        tiles.append(tile)
+        for y, a in e.get("converted_ha", {}).items():
+            converted[int(y)] = converted.get(int(y), 0.0) + float(a)
+        if e.get("model"):
+            models.add((str(e["model"]), str(e.get("model_sha256", ""))))
+    cutoffs = sorted({t.cutoff_year for t in tiles})
+    if len(cutoffs) != 1:
+        raise PlantationError(f"{folder}: tiles were mapped with different cutoff years {cutoffs}; map them again with one cutoff_year")
+    model, model_sha = models.pop() if len(models) == 1 else (None, None)
+    return MappedRegion(folder, tiles, cutoffs[0], dict(sorted(converted.items())), sha256_of(man), model, model_sha)

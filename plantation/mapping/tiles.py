@@ -1,0 +1,303 @@
+"""Map one tile: windows read with the network's halo, inferred fully convolutionally, written as a COG.
+
+Per tile, windows are read (with the network's halo), inferred fully
+convolutionally and written in a pipeline: one thread reads the next window
+while the network runs on this one, another summarises and writes the last
+one. Peak memory depends on the window, not on the tile. The finished
+tiled GeoTIFF is converted to a COG only once the tile is complete (GDAL
+builds overviews from the whole raster). :func:`map_tile_task` is one tile
+as a task, the same in this process or on a dask worker.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import logging
+import os
+import time
+from collections import deque
+from collections.abc import Callable, Sequence
+from concurrent.futures import Future, ThreadPoolExecutor
+from dataclasses import asdict, dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import rasterio
+import rasterio.shutil
+import torch
+
+from plantation import __version__
+from plantation.imagery.config import RegionConfig, TileConfig
+from plantation.imagery.region import TileStack, open_tile
+from plantation.mapping.folder import BAND, FORMAT, LAYERS, NODATA, NOTICE, SCALE, TileResult, file_digest
+from plantation.mapping.quicklook import quicklook
+from plantation.mapping.styles import class_style, onset_style, write_style
+from plantation.model.artefact import Artefact, load
+from plantation.model.calibration import mutual_information
+from plantation.model.inference import check_compatible, read_window, windows
+from plantation.model.outcomes import summarise
+from plantation.model.patches import features
+from plantation.reference.labels import LABEL_CODES
+
+log = logging.getLogger(__name__)
+
+
+@dataclass(frozen=True)
+class Settings:
+    """What decides a tile's content (and so its manifest key), plus how to compute it."""
+
+    min_clear: int
+    cutoff_year: int
+    interval_level: float
+    window: int
+    pixel_batch: int
+    threads: int
+    quicklook: bool
+
+    def content_key(self) -> dict[str, Any]:
+        # Window, batch and threads change float rounding at most, not what the map says.
+        return {"min_clear": self.min_clear, "cutoff_year": self.cutoff_year, "interval_level": self.interval_level, "format": FORMAT}
+
+
+@dataclass
+class TileJob:
+    """Everything a worker needs to map one tile (picklable)."""
+
+    tile: TileConfig
+    region: RegionConfig
+    model_dir: str
+    model_digest: str
+    settings: Settings
+    out_dir: str
+    key: str
+
+
+
+def input_signature(stack: TileStack, tile: TileConfig) -> list[list[Any]]:
+    """Name, size and modification time of every input file of a tile."""
+    files = [Path(f) for f in stack.reader.files] if stack.reader is not None else [Path(tile.path)]
+    out = []
+    for f in files:
+        st = f.stat()
+        out.append([f.name, st.st_size, st.st_mtime_ns])
+    return out
+
+
+def tile_key(model_digest: str, settings: Settings, region: RegionConfig, signature: list[list[Any]]) -> str:
+    """Digest of everything that decides a tile's content."""
+    blob = json.dumps(
+        {"model": model_digest, "settings": settings.content_key(), "scaling": [asdict(r) for r in region.scaling], "mask": asdict(region.mask), "nodata": region.nodata, "inputs": signature},
+        sort_keys=True,
+    )
+    return hashlib.sha256(blob.encode()).hexdigest()
+
+
+# --------------------------------------------------------------------------- per-window math
+
+
+def window_probabilities(art: Artefact, x: torch.Tensor, valid: torch.Tensor, pixel_batch: int | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Calibrated probabilities (h, w, outcomes) and epistemic MI (h, w) of a window's interior pixels."""
+    with torch.inference_mode():
+        z = torch.stack([m.forward_window(x, valid, pixel_batch) for m in art.members])  # (m, h, w, o)
+        probs = art.calibrated_log_probs(z).exp()
+        if len(art.members) > 1:
+            # Disagreement between members, each calibrated like the mapped probabilities.
+            each = torch.stack([art.calibrated_log_probs(zm.unsqueeze(0)) for zm in z]).exp()
+            epi = mutual_information(each.numpy())
+        else:
+            epi = np.zeros(probs.shape[:-1], np.float32)
+    return probs.numpy(), np.asarray(epi, np.float32)
+
+
+def encode_layers(probs: np.ndarray, epistemic: np.ndarray, clear: np.ndarray, years: Sequence[int], *, cutoff_year: int, level: float, min_clear: int) -> np.ndarray:
+    """The int16 layers (band, h, w) of :data:`LAYERS` for probabilities (h, w, outcomes).
+
+    Pixels with fewer than ``min_clear`` clear dates get :data:`NODATA` in
+    every band but ``clear_dates``.
+    """
+    s = summarise(probs, years, cutoff_year=cutoff_year, level=level)
+    h, w = clear.shape
+    out = np.empty((len(LAYERS), h, w), np.int16)
+    out[0] = s.label
+    out[1] = s.year
+    out[2] = s.year_low
+    out[3] = s.year_high
+    out[4] = np.rint(s.p_conversion / SCALE)
+    out[5] = np.rint(s.p_after_cutoff / SCALE)
+    out[6] = np.rint(np.clip(epistemic, 0, 32767 * SCALE) / SCALE)
+    out[7] = clear
+    out[:7, clear < min_clear] = NODATA
+    return out
+
+
+# --------------------------------------------------------------------------- one tile
+
+
+def _profile(stack: TileStack, window: int) -> dict[str, Any]:
+    g = stack.grid
+    prof: dict[str, Any] = {
+        "driver": "GTiff",
+        "height": g.height,
+        "width": g.width,
+        "count": len(LAYERS),
+        "dtype": "int16",
+        "crs": g.crs,
+        "transform": g.transform,
+        "nodata": NODATA,
+        "BIGTIFF": "IF_SAFER",
+    }
+    if g.height >= 16 and g.width >= 16:
+        prof.update(tiled=True, blockxsize=min(window, 256), blockysize=min(window, 256))
+    return prof
+
+
+def write_cog(src: Path, dest: Path) -> None:
+    """Convert a finished tiled GeoTIFF into a COG at ``dest`` (through a temporary name).
+
+    Overviews use nearest-neighbour resampling for every band: averaging
+    would invent classes and years that never existed, and a nearest
+    probability is still one some pixel has.
+    """
+    tmp = dest.with_name(f".{dest.name}.partial")
+    try:
+        rasterio.shutil.copy(src, tmp, driver="COG", COMPRESS="DEFLATE", PREDICTOR="2", BLOCKSIZE="256", OVERVIEW_RESAMPLING="NEAREST", BIGTIFF="IF_SAFER", NUM_THREADS="2")
+        os.replace(tmp, dest)
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
+def map_tile(
+    stack: TileStack,
+    art: Artefact,
+    settings: Settings,
+    dest: Path,
+    *,
+    region: RegionConfig | None = None,
+    on_window: Callable[[int], None] | None = None,
+) -> tuple[int, dict[int, float], float]:
+    """Map one tile to a COG at ``dest``; returns (mapped pixels, converted ha by year, ha converted after the cutoff).
+
+    Reads ahead one window and writes behind one, so the network never
+    waits on the disk when the disk is faster than the network.
+    ``on_window(pixels)`` is called after each window is written.
+    """
+    check_compatible(art, stack, region.scaling if region is not None else None)
+    g = stack.grid
+    halo = art.members[0].halo
+    years = art.card.years
+    areas = g.row_areas_m2() / 1e4
+    conv = LABEL_CODES["conversion"]
+    wins = list(windows(g.height, g.width, settings.window))
+    raw = dest.with_name(f".{dest.stem}.raw.tif")
+    mapped = 0
+    by_year = np.zeros(len(years))
+    after = 0.0
+
+    def read(win: tuple[int, int, int, int]) -> tuple[torch.Tensor, torch.Tensor]:
+        r0, c0, h, w = win
+        refl, valid = read_window(stack, r0, c0, h, w, halo)
+        return torch.from_numpy(features(refl, art.card.bands, art.card.indices)), torch.from_numpy(valid)
+
+    def write(dst: Any, win: tuple[int, int, int, int], probs: np.ndarray, epi: np.ndarray, clear: np.ndarray) -> int:
+        nonlocal mapped, after
+        r0, c0, h, w = win
+        layers = encode_layers(probs, epi, clear, years, cutoff_year=settings.cutoff_year, level=settings.interval_level, min_clear=settings.min_clear)
+        dst.write(layers, window=rasterio.windows.Window(c0, r0, w, h))
+        ok = layers[0] != NODATA
+        mapped += int(ok.sum())
+        is_conv = ok & (layers[0] == conv)
+        row_ha = areas[r0 : r0 + h, None]
+        for i, y in enumerate(years):
+            by_year[i] += float((row_ha * (is_conv & (layers[1] == y))).sum())
+        after += float((row_ha * (is_conv & (layers[1] > settings.cutoff_year))).sum())
+        return h * w
+
+    try:
+        with rasterio.open(raw, "w", **_profile(stack, settings.window)) as dst, ThreadPoolExecutor(1, "read") as reader, ThreadPoolExecutor(1, "write") as writer:
+            for i, (name, _, units) in enumerate(LAYERS, start=1):
+                dst.set_band_description(i, name)
+                dst.update_tags(i, units=units)
+            dst.scales = [s for _, s, _ in LAYERS]
+            dst.offsets = [0.0] * len(LAYERS)
+            dst.update_tags(
+                notice=NOTICE,
+                class_codes="1 stable natural forest; 2 converted to tree-crop plantation; 3 plantation before the series; 4 other land or disturbance",
+                cutoff_year=str(settings.cutoff_year),
+                interval_level=str(settings.interval_level),
+                min_clear_dates=str(settings.min_clear),
+                model_region=art.card.region,
+                producer=f"plantation {__version__}",
+            )
+            ahead: deque[Future] = deque(reader.submit(read, w) for w in wins[:2])
+            behind: deque[Future] = deque()
+            for k, win in enumerate(wins):
+                x, v = ahead.popleft().result()
+                if k + 2 < len(wins):
+                    ahead.append(reader.submit(read, wins[k + 2]))
+                probs, epi = window_probabilities(art, x, v, settings.pixel_batch)
+                clear = v[:, halo : v.shape[1] - halo, halo : v.shape[2] - halo].sum(0).numpy().astype(np.int16)
+                behind.append(writer.submit(write, dst, win, probs, epi, clear))
+                while len(behind) > 1:
+                    n = behind.popleft().result()
+                    if on_window:
+                        on_window(n)
+            while behind:
+                n = behind.popleft().result()
+                if on_window:
+                    on_window(n)
+        write_cog(raw, dest)
+    finally:
+        raw.unlink(missing_ok=True)
+        if stack.reader is not None:
+            stack.reader.close()
+    return mapped, {int(y): float(a) for y, a in zip(years, by_year, strict=True)}, after
+
+
+# --------------------------------------------------------------------------- tasks
+
+_ARTEFACTS: dict[str, Artefact] = {}
+
+
+def cached_artefact(folder: str, digest: str) -> Artefact:
+    """Load an artefact once per process (a dask worker keeps it between tasks)."""
+    art = _ARTEFACTS.get(digest)
+    if art is None:
+        art = load(folder)
+        _ARTEFACTS.clear()
+        _ARTEFACTS[digest] = art
+    return art
+
+
+def map_tile_task(job: TileJob, on_window: Callable[[int], None] | None = None) -> TileResult:
+    """Map one tile and write its COG, styles and quicklook into ``job.out_dir``."""
+    t0 = time.perf_counter()
+    if job.settings.threads:
+        torch.set_num_threads(job.settings.threads)
+    art = cached_artefact(job.model_dir, job.model_digest)
+    stack = open_tile(job.tile, job.region)
+    out = Path(job.out_dir)
+    dest = out / f"{job.tile.name}.tif"
+    mapped, by_year, after = map_tile(stack, art, job.settings, dest, region=job.region, on_window=on_window)
+    write_style(class_style(BAND["class"]), out / f"{job.tile.name}.qml")
+    write_style(onset_style(art.card.years, job.settings.cutoff_year, BAND["onset_year"]), out / f"{job.tile.name}.onset_year.qml")
+    if job.settings.quicklook:
+        quicklook(dest, out / f"{job.tile.name}.png", years=art.card.years, cutoff_year=job.settings.cutoff_year)
+    g = stack.grid
+    return TileResult(
+        tile=job.tile.name,
+        file=dest.name,
+        key=job.key,
+        sha256=file_digest([dest]),
+        pixels=g.height * g.width,
+        mapped_pixels=mapped,
+        converted_ha=by_year,
+        after_cutoff_ha=after,
+        seconds=time.perf_counter() - t0,
+        finished=time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+        model=job.model_dir,
+        model_sha256=job.model_digest,
+    )
+
+

@@ -1,0 +1,139 @@
+"""The model folder's format: ``model.json`` (the card), ``validation.json``, and where a model folder is.
+
+A model folder holds ``model.safetensors`` (the weights, read by
+:mod:`plantation.model.artefact`), ``model.json`` (everything needed to build
+the inputs and read the outputs: band roles, scaling rules, indices, dates and
+years, the network's constructor arguments with normalisation statistics, the
+calibration, the cutoff year and the package version) and, after training,
+``validation.json`` (reliability and interval coverage on the held-out test
+split). This module reads and writes the card and never imports torch, so the
+assessment and the report can describe a model without loading it.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+from plantation.errors import InputNotFoundError, PlantationError
+
+FORMAT = "plantation-model/1"
+CARD = "model.json"
+WEIGHTS = "model.safetensors"
+VALIDATION = "validation.json"
+
+
+@dataclass
+class Calibration:
+    """How member logits become calibrated outcome probabilities.
+
+    p = softmax((log mean_m softmax(z_m) − log w) / T), where ``w`` are the
+    per-outcome loss weights used in training (dividing them out restores
+    the posteriors of the reference sample) and ``T`` is the temperature
+    fitted on validation data. ``train_prior`` is the outcome frequency of
+    the training sample, the starting point for prior adjustment on a map.
+    """
+
+    temperature: float = 1.0
+    loss_weights: list[float] = field(default_factory=list)
+    train_prior: list[float] = field(default_factory=list)
+    #: Split-conformal threshold on 1 − p(outcome) (None: not calibrated).
+    conformal_qhat: float | None = None
+    conformal_alpha: float | None = None
+
+
+@dataclass
+class ModelCard:
+    """Metadata of an artefact (the content of ``model.json``)."""
+
+    bands: list[str]
+    indices: list[str]
+    scaling: list[dict[str, Any]]
+    dates: list[str]
+    years: list[int]
+    network: dict[str, Any]
+    members: int
+    calibration: Calibration
+    cutoff_year: int
+    interval_level: float
+    region: str
+    labels_fingerprint: str
+    package_version: str
+    format: str = FORMAT
+
+
+def resolve_model(path: str | Path) -> Path:
+    """The artefact folder of a training run folder (``<run>/model``) or of an artefact folder itself.
+
+    Raises:
+        InputNotFoundError: neither holds a ``model.json``.
+    """
+    p = Path(path)
+    for cand in (p, p / "model"):
+        if (cand / "model.json").is_file():
+            return cand
+    raise InputNotFoundError(f"{p}: no model here (expected a training run folder with model/model.json, or a folder with model.json); train one with `plantation train`")
+
+
+
+
+def write_card(folder: str | Path, card: ModelCard) -> Path:
+    """Write ``model.json`` into ``folder`` atomically."""
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    tmp = folder / (CARD + ".partial")
+    tmp.write_text(json.dumps(asdict(card), indent=2))
+    os.replace(tmp, folder / CARD)
+    return folder / CARD
+
+
+def read_card(folder: str | Path) -> ModelCard:
+    """Read ``model.json`` of a model folder.
+
+    Raises:
+        InputNotFoundError: there is no ``model.json``.
+        PlantationError: the file is not valid JSON, not a plantation model
+            card, or incomplete.
+    """
+    meta = Path(folder) / CARD
+    if not meta.is_file():
+        raise InputNotFoundError(f"{meta.absolute()}: model file not found (export a model with `plantation train`)")
+    try:
+        raw = json.loads(meta.read_text())
+    except json.JSONDecodeError as exc:
+        raise PlantationError(f"{meta}: not valid JSON ({exc.msg}, line {exc.lineno})") from None
+    if not isinstance(raw, dict) or raw.get("format") != FORMAT:
+        got = raw.get("format") if isinstance(raw, dict) else None
+        raise PlantationError(f"{meta}: format {got!r}, expected {FORMAT!r}")
+    try:
+        raw["calibration"] = Calibration(**raw["calibration"])
+        return ModelCard(**raw)
+    except (TypeError, KeyError) as exc:
+        raise PlantationError(f"{meta}: not a complete model card ({exc})") from None
+
+
+def write_validation(folder: str | Path, record: dict[str, Any]) -> Path:
+    """Write ``validation.json`` (held-out reliability and coverage) into a model folder atomically."""
+    path = Path(folder) / VALIDATION
+    tmp = path.with_name(path.name + ".partial")
+    tmp.write_text(json.dumps(record, indent=1))
+    os.replace(tmp, path)
+    return path
+
+
+def read_validation(folder: str | Path) -> dict[str, Any] | None:
+    """``validation.json`` of a model folder, or None where training wrote none.
+
+    Raises:
+        PlantationError: the file exists but is not valid JSON.
+    """
+    path = Path(folder) / VALIDATION
+    if not path.is_file():
+        return None
+    try:
+        return json.loads(path.read_text())
+    except json.JSONDecodeError as exc:
+        raise PlantationError(f"{path}: not valid JSON ({exc.msg}, line {exc.lineno})") from None
