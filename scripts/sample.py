@@ -1,22 +1,8 @@
-"""Draw a stratified validation sample from a mapped region: `python scripts/sample.py map=<mapped region>`."""
+"""`python scripts/sample.py [key=value ...]`: the same as `plantation sample [key=value ...]`."""
 
-import hydra
-from omegaconf import DictConfig, OmegaConf
-from plantation.cli.compose import register_configs
+import sys
 
-from plantation.cli.errors import guarded
-from plantation.config import to_object
-
-register_configs()
-
-
-@hydra.main(version_base="1.3", config_path="../configs", config_name="sample")
-@guarded
-def main(cfg: DictConfig) -> None:
-    from plantation.assessment.design import DesignConfig, run
-
-    run(to_object(cfg, DesignConfig), resolved_config=OmegaConf.to_yaml(cfg, resolve=True))
-
+from plantation.cli import main
 
 if __name__ == "__main__":
-    main()
+    sys.exit(main(["sample", *sys.argv[1:]]))

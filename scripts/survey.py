@@ -1,23 +1,8 @@
-"""Survey a region's imagery and labels: `python scripts/survey.py region=toy`."""
+"""`python scripts/survey.py [key=value ...]`: the same as `plantation survey [key=value ...]`."""
 
-import hydra
-from omegaconf import DictConfig
-from plantation.cli.compose import register_configs
+import sys
 
-from plantation.cli.errors import guarded
-from plantation.config import to_object
-
-register_configs()
-
-
-@hydra.main(version_base="1.3", config_path="../configs", config_name="survey")
-@guarded
-def main(cfg: DictConfig) -> None:
-    from plantation.reference.survey import SurveyConfig, run
-
-    out = run(to_object(cfg, SurveyConfig))
-    print(f"survey written to {out}/ (survey.json, clear_count_*.tif, labels.gpkg, index_series.png, clear_views.png)")
-
+from plantation.cli import main
 
 if __name__ == "__main__":
-    main()
+    sys.exit(main(["survey", *sys.argv[1:]]))

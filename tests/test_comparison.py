@@ -27,22 +27,18 @@ def test_training_part_of_the_benchmark_config():
 def test_observability_on_the_toy_region_matches_a_pixel_by_pixel_count():
     import numpy as np
     import rasterio
-    from hydra import compose, initialize_config_dir
-    from plantation.cli.compose import register_configs
-
     from plantation.benchmarks.accuracy import conversion_observability
+    from plantation.cli.compose import compose_job
     from plantation.config import to_object
     from plantation.imagery.config import RegionConfig
     from plantation.imagery.region import open_region
     from plantation.simulation.landscape import SimulationConfig, build_landscape, dates_of, decimal_year
     from tests.conftest import ROOT
 
-    register_configs()
-    with initialize_config_dir(config_dir=str(ROOT / "configs"), version_base="1.3"):
-        cfg = compose(config_name="train")
-        sim = to_object(compose(config_name="simulate").sim, SimulationConfig)
+    cfg = compose_job("train", [], verb="train")
+    sim = to_object(compose_job("simulate", [], verb="simulate").sim, SimulationConfig)
     region = to_object(cfg.region, RegionConfig)
-    region.tiles = [type(t)(name=t.name, path=str(ROOT / t.path), truth=str(ROOT / t.truth)) for t in region.tiles[:1]]
+    region.tiles = region.tiles[:1]
     stack = open_region(region)[0]
     land = build_landscape(sim)
     t = np.array([decimal_year(d) for d in dates_of(sim)])

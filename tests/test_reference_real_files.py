@@ -416,19 +416,13 @@ def test_simulated_forest_falls_inside_the_real_forest(s2_stack):
     The toy forest is tropical and the real one temperate, so only the
     envelope is compared, not the medians themselves.
     """
-    from hydra import compose, initialize_config_dir
-    from plantation.cli.compose import register_configs
-
+    from plantation.cli.compose import compose_job
     from plantation.config import to_object
     from plantation.imagery.region import open_region
     from plantation.reference.survey import SurveyConfig
 
     root = Path(__file__).resolve().parents[1]
-    register_configs()
-    with initialize_config_dir(config_dir=str(root / "configs"), version_base="1.3"):
-        cfg = to_object(compose(config_name="survey"), SurveyConfig)
-    for t in cfg.region.tiles:
-        t.path = str(root / t.path)
+    cfg = to_object(compose_job("survey", [], verb="survey"), SurveyConfig)
     st = open_region(cfg.region)[0]
     with rasterio.open(root / "toy_tiles" / "t01" / "truth.tif") as src:
         forest = (src.read(1) == 1) & (src.read(3) == 0)  # stable forest, no logging or fire

@@ -194,16 +194,12 @@ def test_deterministic_and_window_independent(tmp_path, table):
 
 
 def test_committed_toy_region_regenerates_exactly(tmp_path, table):
-    """toy_tiles/ is what `scripts/simulate.py` writes from configs/sim/toy.yaml."""
-    from hydra import compose, initialize_config_dir
-    from plantation.cli.compose import register_configs
-
+    """toy_tiles/ is what `plantation simulate` writes from configs/sim/toy.yaml."""
+    from plantation.cli.compose import compose_job
     from plantation.config import to_object
 
     root = Path(__file__).resolve().parents[1]
-    register_configs()
-    with initialize_config_dir(config_dir=str(root / "configs"), version_base="1.3"):
-        cfg = compose(config_name="simulate")
+    cfg = compose_job("simulate", [], verb="simulate")
     sim_cfg = to_object(cfg.sim, SimulationConfig)
     out = write_region(sim_cfg, tmp_path / "toy", progress=False, table=table)
     assert json.loads((out / "MANIFEST.json").read_text()) == json.loads((root / "toy_tiles" / "MANIFEST.json").read_text())

@@ -1,4 +1,4 @@
-"""Training: loss weights, config checks, and whole runs of scripts/train.py on the toy region."""
+"""Training: loss weights, config checks, and whole runs of `plantation train` on the toy region."""
 
 from __future__ import annotations
 
@@ -24,7 +24,7 @@ QUICK = ["network.members=1", "training.max_epochs=2", "trainer.enable_progress_
 
 
 def train(tmp_path: Path, *overrides: str, name: str = "run") -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, str(ROOT / "scripts" / "train.py"), f"out_dir={tmp_path}", f"run_name={name}", *overrides], cwd=ROOT, capture_output=True, text=True, timeout=900)
+    return subprocess.run([str(Path(sys.executable).parent / "plantation"), "train", f"out_dir={tmp_path}", f"run_name={name}", *overrides], cwd=ROOT, capture_output=True, text=True, timeout=900)
 
 
 def test_outcome_weights_inverse_sqrt():

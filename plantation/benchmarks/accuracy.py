@@ -135,7 +135,7 @@ def run(cfg: ComparisonConfig) -> dict[str, Any]:
     """Train, map and score the three methods; write ``cfg.out`` (JSON) atomically."""
     if cfg.trainer.devices > 1 or cfg.trainer.num_nodes > 1:
         # DDP re-runs the script in more processes; they would all simulate, map and write.
-        raise ConfigError("trainer: the accuracy benchmark trains in one process; use trainer=cpu (DDP is for scripts/train.py)")
+        raise ConfigError("trainer: the accuracy benchmark trains in one process; use trainer=cpu (DDP is for `plantation train`)")
     torch.set_num_threads(cfg.training.threads or (os.cpu_count() or 1))
     tc = train_config(cfg)
     _, labels, samples = load_region_samples(tc)

@@ -1,4 +1,4 @@
-"""Mapping speed and memory, measured side by side in one run (``scripts/benchmark_speed.py``).
+"""Mapping speed and memory, measured side by side in one run (``plantation benchmark-speed``).
 
 * the machine's roofline: a large float32 GEMM on the same threads;
 * the model's achieved GFLOP/s on a window, from FLOPs counted by
@@ -16,7 +16,6 @@ from __future__ import annotations
 
 import json
 import os
-import resource
 import subprocess
 import sys
 import tempfile
@@ -30,6 +29,7 @@ import torch
 
 from plantation.benchmarks.accuracy import centre_series, tile_series
 from plantation.benchmarks.baselines import AnnualTrees, annual_features
+from plantation.benchmarks.reading import peak_rss_mb
 from plantation.config import to_object
 from plantation.errors import ConfigError
 from plantation.imagery.config import RegionConfig, TileConfig
@@ -60,17 +60,6 @@ class SpeedConfig:
     gdal_cache_mb: int = 128
     rss_sim: SimulationConfig = field(default_factory=SimulationConfig)
     out: str = "bench/results/speed.json"
-
-
-def peak_rss_mb() -> float:
-    """This process's peak resident memory (VmHWM) in MB."""
-    try:
-        for line in Path("/proc/self/status").read_text().splitlines():
-            if line.startswith("VmHWM:"):
-                return int(line.split()[1]) / 1024
-    except OSError:
-        pass
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
 def gemm_gflops(n: int = 2048, repeats: int = 5) -> float:
@@ -285,7 +274,7 @@ def run(cfg: SpeedConfig) -> dict[str, Any]:
         region = replace(cfg.region, name=f"rss{size}", tiles=[TileConfig(name="t01", path=str(folder))])
         region_json = json.dumps(asdict(region))
         with tempfile.TemporaryDirectory(prefix="plantation-rss-") as tmp:
-            code = "import json, sys; from plantation.speed import rss_child; print(json.dumps(rss_child(*sys.argv[1:3], int(sys.argv[3]), int(sys.argv[4]), sys.argv[5])))"
+            code = "import json, sys; from plantation.benchmarks.speed import rss_child; print(json.dumps(rss_child(*sys.argv[1:3], int(sys.argv[3]), int(sys.argv[4]), sys.argv[5])))"
             env = {**os.environ, "GDAL_CACHEMAX": str(cfg.gdal_cache_mb)}
             proc = subprocess.run(
                 [sys.executable, "-c", code, region_json, str(rss_model), str(cfg.window), str(cfg.pixel_batch), str(Path(tmp) / "tile.tif")], capture_output=True, text=True, check=False, env=env

@@ -306,7 +306,7 @@ def _open_geotiff_folder(tile: TileConfig, region: RegionConfig) -> TileStack:
 
     folder = Path(tile.path)
     if not folder.is_dir():
-        raise InputNotFoundError(f"{folder}: tile {tile.name!r} folder does not exist")
+        raise InputNotFoundError(f"{Path(folder).absolute()}: tile {tile.name!r} folder does not exist")
     files = sorted(p for p in folder.iterdir() if p.suffix.lower() in _RASTER_SUFFIXES)
     if not files:
         raise RegionError(f"{folder}: no GeoTIFF files (*.tif) in the tile folder")
@@ -366,7 +366,7 @@ def _open_cube(tile: TileConfig, region: RegionConfig) -> TileStack:
 
     path = Path(tile.path)
     if not path.exists():
-        raise InputNotFoundError(f"{path}: tile {tile.name!r} cube does not exist")
+        raise InputNotFoundError(f"{Path(path).absolute()}: tile {tile.name!r} cube does not exist")
     chunks = {"y": region.chunk, "x": region.chunk}
     try:
         if path.suffix == ".zarr" or path.is_dir():

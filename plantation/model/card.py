@@ -75,7 +75,7 @@ def resolve_model(path: str | Path) -> Path:
     for cand in (p, p / "model"):
         if (cand / "model.json").is_file():
             return cand
-    raise InputNotFoundError(f"{p}: no model here (expected a training run folder with model/model.json, or a folder with model.json); train one with `plantation train`")
+    raise InputNotFoundError(f"{p.absolute()}: no model here (expected a training run folder with model/model.json, or a folder with model.json); train one with `plantation train`")
 
 
 

@@ -1,6 +1,6 @@
 """Training: samples → a calibrated ensemble of networks → an exported artefact.
 
-``run(cfg)`` is the whole job behind ``scripts/train.py``:
+``run(cfg)`` is the whole job behind ``plantation train``:
 
 1. open the region and its labels, build neighbourhood samples and the
    spatial train / validation / test split (:mod:`plantation.model.patches`);

@@ -63,7 +63,7 @@ class LabelSet:
 def _read_table(path: Path, csv_crs: str | None) -> tuple[pd.DataFrame, CRS, str]:
     """Raw table with x, y, label, onset_year and the unit of its row numbers."""
     if not path.exists():
-        raise InputNotFoundError(f"{path}: labels file does not exist")
+        raise InputNotFoundError(f"{Path(path).absolute()}: labels file does not exist")
     suffix = path.suffix.lower()
     if suffix == ".csv":
         if csv_crs is None:

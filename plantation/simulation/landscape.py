@@ -818,7 +818,7 @@ def _write_labels(cfg: SimulationConfig, sim: Simulator, folder: Path) -> None:
 
 
 def _write_plots(cfg: SimulationConfig, folder: Path) -> None:
-    """Fictional farm plots over the region: ``plots.geojson`` (EPSG:4326, RFC 7946), for ``scripts/plots.py``.
+    """Fictional farm plots over the region: ``plots.geojson`` (EPSG:4326, RFC 7946), for ``plantation farmplots``.
 
     Outlines are parcels of the truth ``parcel`` band, polygonised (whole
     across tile seams), simplified and shifted by a few metres so their edges

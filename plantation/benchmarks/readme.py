@@ -1,0 +1,482 @@
+"""The README's figure tables, generated from the JSON the jobs write (``plantation readme-figures``).
+
+Each table sits in README.md between two markers::
+
+    <!-- figures:<name> -->
+    ...
+    <!-- /figures:<name> -->
+
+:func:`run` replaces only the text between a block's markers, and only when
+every JSON file the block is built from exists; a block whose JSON is missing
+is left as it is. With ``check=True`` it writes nothing and raises if a block
+differs from what its JSON gives, so a stale README fails a test or CI.
+
+The blocks and their sources:
+
+* ``demo-assessment``: ``<assess_dir>/assessment.json`` (:mod:`plantation.assessment.assess`);
+* ``demo-plots``: ``<assess_dir>/plots.json`` (:mod:`plantation.farmplots.cutoff`);
+* ``demo-timing``: ``<train_dir>/metrics.json`` (:mod:`plantation.model.training`)
+  and ``<map_dir>/summary.json`` (:class:`plantation.mapping.job.MapSummary`);
+* ``read-memory``: ``<results_dir>/read_memory.json`` (:mod:`plantation.benchmarks.reading`);
+* ``mapping-speed``: ``<results_dir>/speed.json`` (:mod:`plantation.benchmarks.speed`);
+* ``accuracy-benchmark``: ``<results_dir>/accuracy.json`` (:mod:`plantation.benchmarks.accuracy`).
+
+Every block ends with one line saying where its figures come from and whether
+they repeat to the digit on one machine (seeded, deterministic training;
+deterministic mapping and sampling; same library versions) or vary between
+machines and runs (times, rates, memory).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from decimal import ROUND_HALF_UP, Decimal
+from pathlib import Path
+from typing import Any
+
+from plantation.errors import InputNotFoundError, PlantationError
+from plantation.imagery.config import RegionConfig
+
+#: The command that regenerates the blocks, quoted in every block's source line.
+COMMAND = "plantation readme-figures"
+
+#: What the source line says of figures that repeat on one machine.
+REPRODUCIBLE = (
+    "Reproducible to the digit on one machine with the same library versions (training is seeded and deterministic, mapping and the sample's draw are deterministic); "
+    "another machine or other library versions can give other figures."
+)
+
+# The project's targets, as the README states them (they are goals, not measurements, so no job writes them).
+#: Accuracy benchmark: the target of each score, in words.
+ACCURACY_TARGETS: dict[str, str] = {
+    "year_exact": "≥ 0.85",
+    "year_within1": "≥ 0.95",
+    "conversion_f1": "≥ 0.90",
+    "ece": "≤ 0.05",
+    "interval80_coverage": "0.75–0.90",
+    "train_seconds": "< 600",
+}
+#: Mapping speed: the model's share of the GEMM roofline.
+TARGET_ROOFLINE = 0.4
+#: Mapping speed: end to end against model only.
+TARGET_PIPELINE = 0.7
+#: Mapping speed: full convolution against patch by patch.
+TARGET_FULLCONV = 10.0
+#: Mapping speed: the model at least this share of the trees baseline's speed ("within 3×").
+TARGET_VS_TREES = 1 / 3
+#: Mapping memory: peak RSS of the largest tile over the smallest one, and its ceiling in MB.
+TARGET_RSS_RATIO = 1.2
+TARGET_RSS_MB = 2000.0
+#: Mapping the toy region, seconds.
+TARGET_TOY_MAP_SECONDS = 60.0
+
+
+@dataclass
+class ReadmeConfig:
+    """Schema of ``configs/readme_figures.yaml``."""
+
+    region: RegionConfig = field(default_factory=RegionConfig)
+    readme: str = "README.md"
+    train_dir: str = "outputs/train/selvara_toy_seed0"
+    map_dir: str = "outputs/maps/selvara_toy"
+    assess_dir: str = "outputs/assess/selvara_toy"
+    results_dir: str = "bench/results"
+    check: bool = False
+
+
+# --------------------------------------------------------------------------- formatting
+
+
+def markdown_table(header: Sequence[str], rows: Sequence[Sequence[str]]) -> str:
+    """A Markdown pipe table (no trailing newline)."""
+
+    def line(cells: Sequence[str]) -> str:
+        # An empty cell is one space wide, as hand-written tables have it.
+        return "|" + "|".join(f" {c} " if c else " " for c in cells) + "|"
+
+    return "\n".join([line(header), line(["---"] * len(header)), *(line(r) for r in rows)])
+
+
+def _fmt(x: float, spec: str) -> str:
+    """``x`` formatted with ``spec`` (``.3f``, ``,.1f``, ...), rounded half up from its shortest decimal form.
+
+    The JSON holds rounded decimals (115.85); binary floats would print some of
+    them one digit low (115.8), so rounding goes through the decimal the file shows.
+    """
+    places = int(spec.rsplit(".", 1)[1].rstrip("f"))
+    d = Decimal(repr(float(x))).quantize(Decimal(1).scaleb(-places), rounding=ROUND_HALF_UP)
+    return format(d, spec)
+
+
+def _interval(e: dict[str, float], fmt: str) -> str:
+    """``estimate (lo–hi)``, each with ``fmt``."""
+    return f"{_fmt(e['estimate'], fmt)} ({_fmt(e['lo'], fmt)}–{_fmt(e['hi'], fmt)})"
+
+
+def _met(ok: bool) -> str:
+    return "met" if ok else "missed"
+
+
+def _seconds(s: float) -> str:
+    # Whole seconds once the tenths are noise against run-to-run variation.
+    return _fmt(s, ",.0f") if s >= 10 else _fmt(s, ".1f")
+
+
+def _side(px: Sequence[int]) -> str:
+    return f"{px[0]}²" if px[0] == px[1] else f"{px[0]} × {px[1]}"
+
+
+def _body(table: str, note: str) -> str:
+    """What goes between a block's markers: blank lines keep the table and the note apart from the HTML comments."""
+    return f"\n\n{table}\n\n{note}\n\n"
+
+
+# --------------------------------------------------------------------------- the blocks
+
+
+def demo_assessment_block(doc: dict[str, Any], *, source: str) -> str:
+    """Overall accuracy, converted area, area after the cutoff and timing accuracy of the demo chain's assessment.
+
+    Args:
+        doc: ``assessment.json`` as :func:`plantation.assessment.assess.run` writes it.
+        source: its path as the README shows it.
+    """
+    pct = round(doc["confidence"] * 100)
+    conv = doc["area_ha"]["conversion"]
+    after = doc["after_cutoff"]
+    timing = doc["timing"]
+    exact, within = timing.get("exact"), timing.get("within1")
+    rows = [
+        ["overall accuracy", _interval(doc["overall"], ".3f"), ""],
+        ["converted area, ha", _interval(conv, ",.1f"), f"{_fmt(conv['mapped_ha'], ',.1f')}"],
+        [f"converted after {after['cutoff_year']}, ha", _interval(after, ",.1f"), f"{_fmt(after['mapped_ha'], ',.1f')}"],
+        ["onset year exact / within one year", f"{_fmt(exact['estimate'], '.3f')} / {_fmt(within['estimate'], '.3f')}" if exact and within else "n/a", ""],
+    ]
+    table = markdown_table(["figure", f"estimate ({pct}% interval)", "the map's pixel count"], rows)
+    reference = "reference filled from the simulator's truth" if doc.get("simulated_reference") else "reference from interpreters"
+    note = f"Generated by `{COMMAND}` from `{source}` ({doc['sample']['n']:,} points, {reference}). {REPRODUCIBLE}"
+    return _body(table, note)
+
+
+def demo_plots_block(doc: dict[str, Any], *, source: str) -> str:
+    """Verdict counts of the demo chain's farm-plot check.
+
+    Args:
+        doc: ``plots.json`` as :func:`plantation.farmplots.cutoff.run` writes it.
+        source: its path as the README shows it.
+    """
+    counts = doc["counts"]
+    rows = [[f"`{k}`", str(counts.get(k, 0))] for k in ("strong_evidence", "review", "low_evidence")]
+    rows.append(["not measured (a problem with the plot)", str(counts.get("problem", 0))])
+    table = markdown_table(["verdict", "plots"], rows)
+    n = len(doc["plots"])
+    note = f"Generated by `{COMMAND}` from `{source}` ({n} plots, converted after {doc['cutoff']['date']}). {REPRODUCIBLE}"
+    return _body(table, note)
+
+
+def demo_timing_block(metrics: dict[str, Any], summary: dict[str, Any], *, metrics_source: str, summary_source: str) -> str:
+    """Training and mapping times of the demo chain.
+
+    Args:
+        metrics: the training run's ``metrics.json`` (:func:`plantation.model.training.run`).
+        summary: the map's ``summary.json`` (:class:`plantation.mapping.job.MapSummary`).
+        metrics_source, summary_source: their paths as the README shows them.
+    """
+    epochs = metrics["epochs"]
+    train_row = [f"training the demo model ({len(epochs)} members, {'/'.join(str(e) for e in epochs)} epochs)", f"{_seconds(metrics['train_seconds'])} s", ""]
+    seconds, now, total = summary["seconds"], summary.get("mapped_now_pixels", 0), summary["pixels"]
+    label = f"mapping the toy region (`plantation map`, {total:,} px)"
+    if now == total and seconds > 0:
+        target = f"< {TARGET_TOY_MAP_SECONDS:.0f} s: {_met(seconds < TARGET_TOY_MAP_SECONDS)}"
+        map_row = [label, f"{_seconds(seconds)} s in the job ({_fmt(now / seconds, ',.0f')} px/s; interpreter start-up not counted)", target]
+    elif now > 0 and seconds > 0:
+        map_row = [label, f"{_seconds(seconds)} s for {now:,} px (the other tiles were already mapped)", ""]
+    else:
+        map_row = [label, "not timed: every tile was already mapped (`resume=false` maps them again)", ""]
+    table = markdown_table(["figure", "value", "target"], [train_row, map_row])
+    note = f"Generated by `{COMMAND}` from `{metrics_source}` and `{summary_source}`, one run of the demo chain (the files do not record the machine): times vary between machines and runs."
+    return _body(table, note)
+
+
+def read_memory_block(doc: dict[str, Any], *, source: str) -> str:
+    """Peak memory and speed of reading a large stack window by window.
+
+    Args:
+        doc: ``read_memory.json`` as :func:`plantation.benchmarks.reading.run` writes it.
+        source: its path as the README shows it.
+    """
+    w = doc["window"]
+    peak, target = doc["peak_rss_mb"], doc["target_peak_rss_mb"]
+    sim_s, sim_peak = doc.get("simulate_seconds"), doc.get("simulate_peak_rss_mb")
+    if sim_s is not None:
+        sim = f"{_seconds(sim_s)} s" + (f", peak {_fmt(sim_peak / 1024, '.1f')} GB" if sim_peak is not None else "")
+    else:
+        sim = "not measured: this run reused a region simulated earlier"
+    rows = [
+        [f"peak RSS reading {_side(doc['tile_px'])} px × {doc['dates']} dates × {doc['bands']} bands (+QA) in {w}² windows", f"{_fmt(peak, ',.0f')} MB (target < {target:,}: {_met(peak < target)})"],
+        ["the same stack held whole as float32", f"{_fmt(doc['full_tile_float32_mb'], ',.0f')} MB (peak is {_fmt(doc['peak_over_full_tile_ratio'], '.3f')} of it)"],
+        [
+            f"one {w}² window as float32",
+            f"{_fmt(doc['window_float32_mb'], ',.0f')} MB (peak is {_fmt(doc['peak_over_window_ratio'], '.1f')}× it: dask assembly, NaN masking, GDAL's {doc['gdal_cache_mb']} MB block cache)",
+        ],
+        ["reading speed", f"{_fmt(doc['px_dates_per_s'] / 1e6, '.1f')} M pixel-dates/s"],
+        ["simulating the region (first run only)", sim],
+    ]
+    table = markdown_table(["figure", "value"], rows)
+    note = f"Generated by `{COMMAND}` from `{source}`, one run on {doc['cpu_count']} cores: peak RSS and reading speed vary between machines and runs."
+    return _body(table, note)
+
+
+def mapping_speed_block(doc: dict[str, Any], *, source: str) -> str:
+    """Mapping speed and memory, each figure against its target where it has one.
+
+    Args:
+        doc: ``speed.json`` as :func:`plantation.benchmarks.speed.run` writes it.
+        source: its path as the README shows it.
+    """
+    sizes = sorted(int(k.rsplit("_", 1)[1]) for k in doc if k.startswith("peak_rss_mb_"))
+    rss = doc["rss_run"]
+    rows = [
+        ["float32 GEMM on the same threads (roofline)", f"{_fmt(doc['gemm_gflops'], '.1f')} GFLOP/s", ""],
+        [
+            f"model on a {doc['window']}² window ({_fmt(doc['model_flops_per_px_date'] / 1e3, '.1f')} kFLOP per pixel-date, counted)",
+            f"{_fmt(doc['model_gflops'], '.1f')} GFLOP/s: **{_fmt(doc['roofline_ratio'], '.2f')}** of the roofline",
+            f"≥ {TARGET_ROOFLINE:g}: {_met(doc['roofline_ratio'] >= TARGET_ROOFLINE)}",
+        ],
+        ["model only, pre-read windows", f"{_fmt(doc['model_only_px_per_s'], ',.0f')} px/s", ""],
+        [
+            "end to end, GeoTIFF in → COG out",
+            f"{_fmt(doc['end_to_end_px_per_s'], ',.0f')} px/s: **{_fmt(doc['pipeline_ratio'], '.2f')}** of model only",
+            f"≥ {TARGET_PIPELINE:g}: {_met(doc['pipeline_ratio'] >= TARGET_PIPELINE)}",
+        ],
+        [
+            "naive patch by patch",
+            f"{_fmt(doc['patchwise_px_per_s'], ',.0f')} px/s: full convolution is **{_fmt(doc['fullconv_speedup'], '.1f')}×** faster",
+            f"≥ {TARGET_FULLCONV:g}×: {_met(doc['fullconv_speedup'] >= TARGET_FULLCONV)}",
+        ],
+        [
+            "trees baseline, same tile (read, annual features, predict)",
+            f"{_fmt(doc['trees_px_per_s'], ',.0f')} px/s: the model runs at **{_fmt(doc['model_vs_trees'], '.2f')}×** its speed",
+            f"within {1 / TARGET_VS_TREES:g}×: {_met(doc['model_vs_trees'] >= TARGET_VS_TREES)}",
+        ],
+    ]
+    if len(sizes) > 1 and "rss_ratio" in doc:
+        peaks = [doc[f"peak_rss_mb_{s}"] for s in sizes]
+        ratio_ok, mb_ok = doc["rss_ratio"] <= TARGET_RSS_RATIO, max(peaks) < TARGET_RSS_MB
+        verdict = "met" if ratio_ok and mb_ok else "both missed" if not (ratio_ok or mb_ok) else ("ratio missed" if mb_ok else "memory missed")
+        members = f"{rss['members']} member" + ("s" if rss["members"] != 1 else "")
+        rows.append(
+            [
+                f"peak RSS mapping a {' / '.join(f'{s}²' for s in sizes)} simulated tile ({rss['dates']} dates, {members}, GDAL cache {rss['gdal_cache_mb']} MB)",
+                f"{' / '.join(_fmt(p, ',.0f') for p in peaks)} MB: **{_fmt(doc['rss_ratio'], '.2f')}×**",
+                f"≤ {TARGET_RSS_RATIO:g}× and < {TARGET_RSS_MB:,.0f} MB: {verdict}",
+            ]
+        )
+    table = markdown_table(["figure", "value", "target"], rows)
+    dated = f", dated {doc['date']}" if doc.get("date") else ""
+    note = (
+        f"Generated by `{COMMAND}` from `{source}`{dated}, one run on {doc['threads']} torch threads: GFLOP/s, px/s and peak RSS vary between machines and runs; "
+        "the FLOPs per pixel-date are fixed by the network."
+    )
+    return _body(table, note)
+
+
+#: Accuracy benchmark rows: key, label, decimals, and whether higher is better (None: no best, nothing bold).
+_ACCURACY_ROWS: tuple[tuple[str, str, int, bool | None], ...] = (
+    ("year_exact", "`year_exact` (true conversions mapped to the right year)", 3, True),
+    ("year_within1", "`year_within1`", 3, True),
+    ("conversion_f1", "`conversion_f1` (conversion vs. not)", 3, True),
+    ("macro_f1", "`macro_f1` (four labels)", 3, True),
+    ("year_mae", "`year_mae` (years, conversions mapped as such)", 2, False),
+    ("ece", "`ece` of p_conversion (10 bins)", 3, False),
+    ("interval80_coverage", "`interval80_coverage`", 3, None),
+)
+#: The methods of the accuracy benchmark, in column order.
+METHODS = ("model", "trees", "breakpoint")
+
+
+def accuracy_block(doc: dict[str, Any], *, source: str) -> str:
+    """The three methods' scores on the held-out region, the best of each score in bold.
+
+    Args:
+        doc: ``accuracy.json`` as :func:`plantation.benchmarks.accuracy.run` writes it.
+        source: its path as the README shows it.
+    """
+    methods = [m for m in METHODS if m in doc["methods"]]
+    res = {m: doc["methods"][m] for m in methods}
+    rows = []
+    for key, label, nd, higher in _ACCURACY_ROWS:
+        vals = {m: res[m].get(key) for m in methods}
+        known = [v for v in vals.values() if v is not None]
+        best = None if higher is None or not known else (max(known) if higher else min(known))
+        cells = []
+        for m in methods:
+            v = vals[m]
+            if v is None:
+                cells.append("—")
+                continue
+            text = _fmt(v, f".{nd}f")
+            # A method whose outputs are only 0 or 1 says so beside its ECE.
+            if key == "ece" and res[m].get("ece_note"):
+                text += " (0/1 rule)"
+            cells.append(f"**{text}**" if best is not None and round(v, nd) == round(best, nd) else text)
+        rows.append([label, *cells, ACCURACY_TARGETS.get(key, "")])
+    rows.append(["training time (s)", *[_seconds(res[m]["train_seconds"]) for m in methods], ACCURACY_TARGETS["train_seconds"]])
+    seen = []
+    for m in methods:
+        s = res[m].get("on_conversions_seen_cleared") or {}
+        seen.append(f"{_fmt(s['year_exact'], '.3f')} / {_fmt(s['year_within1'], '.3f')}" if s.get("year_exact") is not None and s.get("year_within1") is not None else "—")
+    rows.append(["same, on conversions seen clear after clearing: `year_exact` / `year_within1`", *seen, ""])
+    table = markdown_table(["metric", *methods, "target"], rows)
+    note = (
+        f"Generated by `{COMMAND}` from `{source}`, one run on {doc['threads']} threads. "
+        "The scores are reproducible to the digit on one machine with the same library versions (seeded, deterministic training; seeded trees; a seeded held-out region); "
+        "training times vary between machines and runs."
+    )
+    return _body(table, note)
+
+
+# --------------------------------------------------------------------------- markers
+
+
+def markers(name: str) -> tuple[str, str]:
+    """The opening and closing marker of block ``name``."""
+    return f"<!-- figures:{name} -->", f"<!-- /figures:{name} -->"
+
+
+def block_span(text: str, name: str, *, where: str = "README") -> tuple[int, int] | None:
+    """Start and end (character offsets) of the text between block ``name``'s markers; None when neither marker is there.
+
+    Raises:
+        PlantationError: a marker is missing its partner, appears twice, or
+            the closing one comes first.
+    """
+    opening, closing = markers(name)
+    n_open, n_close = text.count(opening), text.count(closing)
+    if n_open == 0 and n_close == 0:
+        return None
+    if n_open != 1 or n_close != 1:
+        raise PlantationError(f"{where}: block {name!r} has {n_open} opening and {n_close} closing marker(s); it needs one {opening} followed by one {closing}")
+    start = text.index(opening) + len(opening)
+    end = text.index(closing)
+    if end < start:
+        raise PlantationError(f"{where}: block {name!r} closes ({closing}) before it opens ({opening}); put the closing marker after the table")
+    return start, end
+
+
+def replace_block(text: str, name: str, body: str, *, where: str = "README") -> str:
+    """``text`` with the text between block ``name``'s markers replaced by ``body``; everything else is kept as it is.
+
+    Raises:
+        PlantationError: the block's markers are not in ``text``, or are malformed.
+    """
+    span = block_span(text, name, where=where)
+    if span is None:
+        raise PlantationError(f"{where}: no block {name!r}; mark its table with {markers(name)[0]} and {markers(name)[1]}")
+    start, end = span
+    return text[:start] + body + text[end:]
+
+
+# --------------------------------------------------------------------------- the job
+
+
+@dataclass(frozen=True)
+class Block:
+    """One generated block: its name, its JSON files, and how they become its body."""
+
+    name: str
+    #: The JSON files, with the command that writes each (for the "missing" message).
+    sources: tuple[tuple[Path, str], ...]
+    build: Callable[[list[dict[str, Any]]], str]
+
+
+def _load(path: Path, writer: str) -> dict[str, Any]:
+    try:
+        doc = json.loads(path.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        why = f"{exc.msg}, line {exc.lineno}" if isinstance(exc, json.JSONDecodeError) else "not UTF-8 text"
+        raise PlantationError(f"{path}: not valid JSON ({why}); write it again with `{writer}`") from None
+    if not isinstance(doc, dict):
+        raise PlantationError(f"{path}: holds a JSON {type(doc).__name__}, not an object; write it again with `{writer}`")
+    return doc
+
+
+def blocks(cfg: ReadmeConfig) -> list[Block]:
+    """The README's generated blocks, in the order they appear in it."""
+    train, maps, assess, results = (Path(p) for p in (cfg.train_dir, cfg.map_dir, cfg.assess_dir, cfg.results_dir))
+    assessment, plots = assess / "assessment.json", assess / "plots.json"
+    metrics, summary = train / "metrics.json", maps / "summary.json"
+    read, speed, accuracy = results / "read_memory.json", results / "speed.json", results / "accuracy.json"
+    return [
+        Block("demo-assessment", ((assessment, "plantation assess"),), lambda d: demo_assessment_block(d[0], source=assessment.as_posix())),
+        Block("demo-plots", ((plots, "plantation farmplots"),), lambda d: demo_plots_block(d[0], source=plots.as_posix())),
+        Block("read-memory", ((read, "plantation benchmark-read"),), lambda d: read_memory_block(d[0], source=read.as_posix())),
+        Block("mapping-speed", ((speed, "plantation benchmark-speed"),), lambda d: mapping_speed_block(d[0], source=speed.as_posix())),
+        Block(
+            "demo-timing",
+            ((metrics, "plantation train"), (summary, "plantation map")),
+            lambda d: demo_timing_block(d[0], d[1], metrics_source=metrics.as_posix(), summary_source=summary.as_posix()),
+        ),
+        Block("accuracy-benchmark", ((accuracy, "plantation benchmark-accuracy"),), lambda d: accuracy_block(d[0], source=accuracy.as_posix())),
+    ]
+
+
+def _write_atomic(path: Path, data: bytes) -> None:
+    tmp = path.with_name(path.name + ".partial")
+    tmp.write_bytes(data)
+    os.replace(tmp, path)
+
+
+def run(cfg: ReadmeConfig) -> list[str]:
+    """Regenerate (or, with ``cfg.check``, verify) every block of the README whose JSON exists.
+
+    Returns:
+        One line per block: updated, unchanged, up to date, or left as it is
+        and why.
+
+    Raises:
+        InputNotFoundError: the README does not exist.
+        PlantationError: a JSON file is unreadable or lacks a figure, a
+            block's markers are missing or malformed, or (``check``) a block
+            differs from what its JSON gives; one line naming the block.
+    """
+    readme = Path(cfg.readme)
+    if not readme.is_file():
+        raise InputNotFoundError(f"{readme.absolute()}: README not found; set readme= to the file holding the figure blocks")
+    # Bytes in, bytes out: line endings and every character outside the markers stay as they were.
+    text = readme.read_bytes().decode("utf-8")
+    where = readme.as_posix()
+    lines: list[str] = []
+    stale: list[str] = []
+    new = text
+    for b in blocks(cfg):
+        span = block_span(new, b.name, where=where)
+        if span is None:
+            raise PlantationError(f"{where}: no block {b.name!r}; mark its table with {markers(b.name)[0]} and {markers(b.name)[1]}")
+        missing = [(p, w) for p, w in b.sources if not p.is_file()]
+        if missing:
+            lines.append(f"figures:{b.name}: left as it is, {', '.join(p.as_posix() for p, _ in missing)} not found (written by `{'`, `'.join(w for _, w in missing)}`)")
+            continue
+        docs = [_load(p, w) for p, w in b.sources]
+        try:
+            body = b.build(docs)
+        except (KeyError, TypeError, IndexError, ValueError, AttributeError) as exc:
+            files = ", ".join(p.as_posix() for p, _ in b.sources)
+            raise PlantationError(f"figures:{b.name}: {files} lacks a figure the block needs ({type(exc).__name__}: {exc}); write it again with `{b.sources[0][1]}`") from None
+        start, end = span
+        if new[start:end] == body:
+            lines.append(f"figures:{b.name}: {'up to date' if cfg.check else 'unchanged'}")
+            continue
+        if cfg.check:
+            stale.append(b.name)
+            continue
+        new = new[:start] + body + new[end:]
+        lines.append(f"figures:{b.name}: updated from {', '.join(p.as_posix() for p, _ in b.sources)}")
+    if stale:
+        raise PlantationError(f"{where}: figures block(s) {', '.join(stale)} differ from their JSON; run `{COMMAND}` to regenerate them")
+    if not cfg.check and new != text:
+        _write_atomic(readme, new.encode("utf-8"))
+    return lines

@@ -1,0 +1,163 @@
+"""The verbs of the ``plantation`` command: what each job is called, its config, and how its result is printed.
+
+A verb's handler takes the composed configuration, turns it into the job's
+typed config and runs the job. Each handler imports its job when it runs,
+so that ``plantation --help`` and the jobs that never touch the network
+(sample, assess, farm plots) start without loading torch.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+
+from omegaconf import DictConfig, OmegaConf
+
+from plantation.config import to_object
+from plantation.errors import PlantationError
+
+
+@dataclass(frozen=True)
+class Verb:
+    """One job of the command."""
+
+    name: str
+    #: Its file in configs/ (without .yaml).
+    config: str
+    #: One line for ``plantation --help``.
+    summary: str
+    handler: Callable[[DictConfig], None]
+
+
+def _resolved(cfg: DictConfig) -> str:
+    return OmegaConf.to_yaml(cfg, resolve=True)
+
+
+def survey(cfg: DictConfig) -> None:
+    from plantation.reference.survey import SurveyConfig, run
+
+    out = run(to_object(cfg, SurveyConfig))
+    print(f"survey written to {out}/ (survey.json, clear_count_*.tif, labels.gpkg, index_series.png, clear_views.png)")
+
+
+def train(cfg: DictConfig) -> None:
+    from plantation.model.training import TrainConfig, run
+
+    out = run(to_object(cfg, TrainConfig), resolved_config=_resolved(cfg))
+    if os.environ.get("LOCAL_RANK", "0") == "0":  # processes started by DDP stay quiet
+        print(f"model written to {out}/model (metrics in {out}/metrics.json)")
+
+
+def map_region(cfg: DictConfig) -> None:
+    from plantation.mapping.folder import NOTICE
+    from plantation.mapping.job import MapConfig, run
+
+    summary = run(to_object(cfg, MapConfig))
+    print("\n".join(summary.lines()))
+    print(f"maps in {summary.out_dir} (open the .tif files in QGIS; summary.json has these totals)")
+    print(NOTICE)
+
+
+def sample(cfg: DictConfig) -> None:
+    from plantation.assessment.design import DesignConfig, run
+
+    run(to_object(cfg, DesignConfig), resolved_config=_resolved(cfg))
+
+
+def _report(out_dir: Path, map_dir: Path | None = None) -> None:
+    from plantation.report.page import build_report
+
+    try:
+        print(f"report   {build_report(out_dir, map_dir=map_dir)}")
+    except PlantationError as exc:
+        # The job's own outputs are complete; a report that cannot be built does not undo them.
+        print(f"report not built: {exc}", file=sys.stderr)
+
+
+def assess(cfg: DictConfig) -> None:
+    from plantation.assessment.assess import AssessConfig, run
+    from plantation.mapping.folder import NOTICE
+
+    acfg = to_object(cfg, AssessConfig)
+    doc = run(acfg, resolved_config=_resolved(cfg))
+    if acfg.report:
+        _report(Path(acfg.out_dir), Path(doc["map_dir"]))
+    print(NOTICE)
+
+
+def farmplots(cfg: DictConfig) -> None:
+    from plantation.farmplots.cutoff import PlotsConfig, run
+    from plantation.mapping.folder import NOTICE
+
+    result = run(to_object(cfg, PlotsConfig))
+    print("\n".join(result.lines()))
+    for kind, path in result.files.items():
+        print(f"{kind:<8} {path}")
+    print(NOTICE)
+    _report(result.out_dir)
+
+
+def simulate(cfg: DictConfig) -> None:
+    from plantation.simulation.landscape import SimulationConfig, write_region
+
+    out = write_region(to_object(cfg.sim, SimulationConfig), cfg.out, progress=cfg.progress)
+    print(f"simulated region written to {out}/")
+
+
+def _write_json(result: dict, dest: str) -> None:
+    out = Path(dest)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.with_name(out.name + ".partial")
+    tmp.write_text(json.dumps(result, indent=1) + "\n")
+    os.replace(tmp, out)
+    print(f"written to {out}")
+
+
+def benchmark_accuracy(cfg: DictConfig) -> None:
+    from plantation.benchmarks.accuracy import ComparisonConfig, run
+
+    report = run(to_object(cfg, ComparisonConfig))
+    keys = ("year_exact", "year_within1", "conversion_f1", "macro_f1", "year_mae", "ece", "interval80_coverage", "train_seconds")
+    print(f"{'method':<11}" + "".join(f"{k:>20}" for k in keys))
+    for name, m in report["methods"].items():
+        print(f"{name:<11}" + "".join(f"{str(m.get(k)):>20}" for k in keys))
+    print(f"written to {cfg.out}")
+
+
+def benchmark_speed(cfg: DictConfig) -> None:
+    from plantation.benchmarks.speed import SpeedConfig, run
+
+    sc = to_object(cfg, SpeedConfig)
+    res = run(sc)
+    print(json.dumps(res, indent=1))
+    _write_json(res, sc.out)
+
+
+def benchmark_read(cfg: DictConfig) -> None:
+    from plantation.benchmarks.reading import ReadConfig, run
+
+    rc = to_object(cfg, ReadConfig)
+    res = run(rc)
+    print(json.dumps(res, indent=1))
+    _write_json(res, rc.result)
+
+
+VERBS: dict[str, Verb] = {
+    v.name: v
+    for v in (
+        Verb("survey", "survey", "summarise a region's imagery and labels: clear views, label counts, index series", survey),
+        Verb("train", "train", "train and calibrate a conversion-year model for a region and export it", train),
+        Verb("map", "map", "map every tile of a region with a trained model to Cloud-Optimized GeoTIFFs", map_region),
+        Verb("sample", "sample", "draw a stratified validation sample from a map for interpreters to label", sample),
+        Verb("assess", "assess", "estimate accuracy and areas with confidence intervals from the labelled sample", assess),
+        Verb("farmplots", "farmplots", "say for each farm plot how much of it the map has converted after a cutoff", farmplots),
+        Verb("simulate", "simulate", "write a simulated region (imagery, labels, plots, truth) from a seed", simulate),
+        Verb("benchmark-accuracy", "benchmark_accuracy", "compare the model with the baselines on a held-out simulated region", benchmark_accuracy),
+        Verb("benchmark-speed", "benchmark_speed", "time and measure the memory of mapping, side by side with the baselines", benchmark_speed),
+        Verb("benchmark-read", "benchmark_read", "peak memory of reading a large stack window by window", benchmark_read),
+    )
+}
