@@ -147,3 +147,18 @@ def test_user_config_folder_from_the_environment_or_the_option(tmp_path, tiny_va
     assert res.returncode == 0 and "region = mine" in res.stdout and "choose one of: mine, toy" in res.stdout
     with pytest.raises(InputNotFoundError, match="config folder does not exist"):
         compose_job("survey", [], verb="survey", config_dirs=[tmp_path / "none"])
+
+
+def test_new_region_writes_a_file_the_jobs_accept(tmp_path, tiny_values):
+    write_user_region(tmp_path / "delivery", tiny_values)
+    out = tmp_path / "regions" / "mine.yaml"
+    res = plantation("new-region", "mine", "--imagery", "delivery/imagery", "--labels", "delivery/points.csv", "--out", str(out), cwd=tmp_path)
+    assert res.returncode == 0, res.stderr
+    assert f"region file written to {out}" in res.stdout
+    text = out.read_text()
+    assert "bands: [blue, green, red, nir, swir1, swir2]" in text and "band: 7" in text and "../delivery/imagery/t1" in text
+    res = plantation("survey", f"region={out}", "out_dir=out", cwd=tmp_path / "regions")
+    assert res.returncode == 0, res.stderr
+    # A second run does not replace the file unless asked.
+    line = one_error_line(plantation("new-region", "mine", "--imagery", "delivery/imagery", "--out", str(out), cwd=tmp_path))
+    assert str(out) in line

@@ -35,7 +35,7 @@ from plantation.errors import ConfigError, InputNotFoundError, RegionError
 from plantation.imagery.config import RegionConfig, ScalingRule, TileConfig
 
 _DATE = re.compile(r"(\d{4})-(\d{2})-(\d{2})")
-_RASTER_SUFFIXES = (".tif", ".tiff")
+RASTER_SUFFIXES = (".tif", ".tiff")
 
 
 @dataclass(frozen=True)
@@ -307,7 +307,7 @@ def _open_geotiff_folder(tile: TileConfig, region: RegionConfig) -> TileStack:
     folder = Path(tile.path)
     if not folder.is_dir():
         raise InputNotFoundError(f"{Path(folder).absolute()}: tile {tile.name!r} folder does not exist")
-    files = sorted(p for p in folder.iterdir() if p.suffix.lower() in _RASTER_SUFFIXES)
+    files = sorted(p for p in folder.iterdir() if p.suffix.lower() in RASTER_SUFFIXES)
     if not files:
         raise RegionError(f"{folder}: no GeoTIFF files (*.tif) in the tile folder")
     by_date: dict[date, Path] = {}

@@ -60,7 +60,7 @@ class LabelSet:
         return {n: int(c.get(n, 0)) for n in LABEL_NAMES}
 
 
-def _read_table(path: Path, csv_crs: str | None) -> tuple[pd.DataFrame, CRS, str]:
+def read_table(path: Path, csv_crs: str | None) -> tuple[pd.DataFrame, CRS, str]:
     """Raw table with x, y, label, onset_year and the unit of its row numbers."""
     if not path.exists():
         raise InputNotFoundError(f"{Path(path).absolute()}: labels file does not exist")
@@ -144,7 +144,7 @@ def read_labels(path: str | Path, *, grids: dict[str, Grid], years: Sequence[int
             names the file and line (CSV) or feature (vector) number.
     """
     path = Path(path)
-    table, crs, unit = _read_table(path, csv_crs)
+    table, crs, unit = read_table(path, csv_crs)
     if table.empty:
         raise LabelError(f"{path}: the labels file has no rows")
 

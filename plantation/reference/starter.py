@@ -43,8 +43,8 @@ from rasterio.crs import CRS
 
 from plantation.errors import ConfigError, InputNotFoundError, LabelError, PlantationError, RegionError
 from plantation.imagery.config import LabelsConfig, MaskConfig, RegionConfig, ScalingRule, TileConfig
-from plantation.imagery.region import _RASTER_SUFFIXES, open_region, parse_date_from_name
-from plantation.reference.labels import _read_table, read_labels
+from plantation.imagery.region import RASTER_SUFFIXES, open_region, parse_date_from_name
+from plantation.reference.labels import read_table, read_labels
 
 #: The common six-band reflectance layout (Landsat 4–9 and Sentinel-2 subsets alike), in file order.
 DEFAULT_BANDS: tuple[str, ...] = ("blue", "green", "red", "nir", "swir1", "swir2")
@@ -325,7 +325,7 @@ def _is_cube(path: Path) -> bool:
 
 def _tifs(folder: Path) -> list[Path]:
     """The GeoTIFFs a tile folder holds, by the reader's own suffix rule."""
-    return sorted(p for p in folder.iterdir() if p.is_file() and p.suffix.lower() in _RASTER_SUFFIXES)
+    return sorted(p for p in folder.iterdir() if p.is_file() and p.suffix.lower() in RASTER_SUFFIXES)
 
 
 def _date_of(path: Path) -> date:
@@ -587,7 +587,7 @@ def _infer_scaling(tile: TileFacts, n_refl: int) -> tuple[list[ScalingRule], lis
 
 def _infer_label_crs(path: Path, grids: dict[str, Any]) -> tuple[str | None, list[str], str, list[str]]:
     """CRS to write in ``labels.crs``, its comment lines, the file's kind and its columns (the labels reader's column checks)."""
-    table, crs, unit = _read_table(path, "EPSG:4326")
+    table, crs, unit = read_table(path, "EPSG:4326")
     columns = [c for c in table.columns if c != "source"]
     if unit == "feature":
         text = _crs_text(CRS.from_user_input(crs.to_wkt()))
