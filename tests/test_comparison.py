@@ -27,13 +27,13 @@ def test_training_part_of_the_benchmark_config():
 def test_observability_on_the_toy_region_matches_a_pixel_by_pixel_count():
     import numpy as np
     import rasterio
+
     from plantation.benchmarks.accuracy import conversion_observability
     from plantation.cli.compose import compose_job
     from plantation.config import to_object
     from plantation.imagery.config import RegionConfig
     from plantation.imagery.region import open_region
     from plantation.simulation.landscape import SimulationConfig, build_landscape, dates_of, decimal_year
-    from tests.conftest import ROOT
 
     cfg = compose_job("train", [], verb="train")
     sim = to_object(compose_job("simulate", [], verb="simulate").sim, SimulationConfig)

@@ -5,6 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import pytest
+
 from plantation.cli.compose import compose_job
 from plantation.config import to_object
 from plantation.errors import ConfigError

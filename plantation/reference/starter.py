@@ -44,7 +44,7 @@ from rasterio.crs import CRS
 from plantation.errors import ConfigError, InputNotFoundError, LabelError, PlantationError, RegionError
 from plantation.imagery.config import LabelsConfig, MaskConfig, RegionConfig, ScalingRule, TileConfig
 from plantation.imagery.region import RASTER_SUFFIXES, open_region, parse_date_from_name
-from plantation.reference.labels import read_table, read_labels
+from plantation.reference.labels import read_labels, read_table
 
 #: The common six-band reflectance layout (Landsat 4–9 and Sentinel-2 subsets alike), in file order.
 DEFAULT_BANDS: tuple[str, ...] = ("blue", "green", "red", "nir", "swir1", "swir2")
