@@ -28,6 +28,10 @@ class LabelError(PlantationError, ValueError):
     """A reference-label file is malformed or disagrees with the imagery."""
 
 
+class FileFormatError(PlantationError, ValueError):
+    """A file this tool writes (model card, map manifest, sample design, assessment, plot results) is malformed or of another kind."""
+
+
 class ConfigError(PlantationError, ValueError):
     """A configuration value is missing, out of range or of the wrong kind."""
 

@@ -17,12 +17,12 @@ import pytest
 import rasterio
 from affine import Affine
 
-from plantation.assessment.assess import AssessConfig, check_sample, read_sample_table
+from plantation.assessment.assess import AssessConfig, check_sample, read_assessment, read_sample_table
 from plantation.assessment.assess import run as assess_run
-from plantation.assessment.design import DesignConfig, stratify, stratum_list, year_groups
+from plantation.assessment.design import BOOKKEEPING, SHEET_COLUMNS, DesignConfig, read_design, stratify, stratum_list, year_groups
 from plantation.assessment.design import run as design_run
 from plantation.assessment.estimators import Strata, allocate, stratified_mean
-from plantation.errors import PlantationError
+from plantation.errors import FileFormatError, InputNotFoundError, LabelError, PlantationError
 from plantation.imagery.config import RegionConfig, TileConfig
 from plantation.mapping.folder import LAYERS
 
@@ -157,16 +157,21 @@ def test_design_and_assessment_end_to_end(mapped: tuple[RegionConfig, Path], tmp
     assert any("forest_buffer" in s for s in lines) and "points" in lines[0]
     table = pd.read_csv(out / "samples.csv", dtype=str, keep_default_na=False)
     assert len(table) == d.n_total and table["point_id"].is_unique
+    # The sheet is blind; the bookkeeping is in design.json, point by point in the sheet's order.
+    assert list(table.columns) == list(SHEET_COLUMNS)
+    points = pd.DataFrame(read_design(out / "design.json")["points"])
+    assert points["point_id"].tolist() == table["point_id"].tolist()
+    assert points["row"].tolist() == table["row"].astype(int).tolist() and points["col"].tolist() == table["col"].astype(int).tolist()
     for s in d.strata:
-        assert (table["stratum"] == s.name).sum() == s.n
+        assert (points["stratum"] == s.name).sum() == s.n
         if s.n:
-            assert float(table.loc[table["stratum"] == s.name, "inclusion_probability"].iloc[0]) == pytest.approx(s.n / s.pixels)
+            assert points.loc[points["stratum"] == s.name, "inclusion_probability"].iloc[0] == pytest.approx(s.n / s.pixels)
     # Each point's map class is the map's at its row and column.
     with rasterio.open(folder / "t1.tif") as src:
         band = src.read(1)
-    r, c = table["row"].astype(int).to_numpy(), table["col"].astype(int).to_numpy()
+    r, c = points["row"].to_numpy(), points["col"].to_numpy()
     codes = {"stable_forest": 1, "conversion": 2, "old_plantation": 3, "other": 4}
-    assert (band[r, c] == table["map_class"].map(codes).to_numpy()).all()
+    assert (band[r, c] == points["map_class"].map(codes).to_numpy()).all()
     assert set(table["interpreter"]) == {"simulated truth (demo only)"}
     doc = assess_run(AssessConfig(region=region, samples=str(out / "samples.csv"), map=str(folder), out_dir=str(out), report=False), echo=lambda s: None)
     assert doc["simulated_reference"] is True
@@ -189,6 +194,7 @@ def test_design_and_assessment_end_to_end(mapped: tuple[RegionConfig, Path], tmp
 
     info = pyogrio.read_info(out / "samples.gpkg")
     assert info["features"] == len(table) and "4326" in info["crs"]
+    assert list(info["fields"]) == [c for c in SHEET_COLUMNS if c not in ("lon", "lat")]
 
 
 @pytest.fixture
@@ -205,7 +211,8 @@ def filled(mapped: tuple[RegionConfig, Path], tmp_path: Path) -> tuple[RegionCon
         (lambda t: t.assign(label=t["label"].where(t.index != 3, "")), r"line 5: label is blank \(1 points unlabelled\)"),
         (lambda t: t.assign(label=t["label"].where(t.index != 0, "palm")), r"line 2: label 'palm' is not one of"),
         (lambda t: t.assign(point_id=t["point_id"].where(t.index != 7, t["point_id"].iloc[2])), r"line 9: point_id 'P\d+' appears again \(first on line 4\)"),
-        (lambda t: t.assign(stratum=t["stratum"].where(t.index != 1, "swamp")), r"line 3: stratum 'swamp' is not in the design"),
+        (lambda t: t.assign(point_id=t["point_id"].where(t.index != 1, "P99999")), r"samples.csv: line 3: point_id 'P99999' is not in the design .*design.json"),
+        (lambda t: t.assign(row=t["row"].where(t.index != 4, "999")), r"line 6: point_id 'P00005' is at tile 't1' row '999' col '\d+' here but at tile 't1' row \d+ col \d+ in .*design.json"),
     ],
 )
 def test_bad_sample_rows_are_named(filled: tuple[RegionConfig, Path, Path], edit, message: str) -> None:
@@ -221,7 +228,7 @@ def test_conversion_rows_need_a_valid_year(filled: tuple[RegionConfig, Path, Pat
     region, folder, samples = filled
     t = pd.read_csv(samples, dtype=str, keep_default_na=False)
     i = int(np.flatnonzero(t["label"] == "conversion")[0])
-    design = json.loads((samples.parent / "design.json").read_text())
+    design = read_design(samples.parent)
     for value, msg in (("", "conversion needs an onset_year"), ("1999", "onset_year 1999 is outside the map's years 2013-2024")):
         t2 = t.copy()
         t2.loc[i, "onset_year"] = value
@@ -241,8 +248,9 @@ def test_conversion_rows_need_a_valid_year(filled: tuple[RegionConfig, Path, Pat
 def test_unlabelled_points_dropped_only_when_allowed(filled: tuple[RegionConfig, Path, Path]) -> None:
     region, folder, samples = filled
     t = pd.read_csv(samples, dtype=str, keep_default_na=False)
-    big = t["stratum"].value_counts().idxmax()
-    i = int(np.flatnonzero(t["stratum"] == big)[0])
+    stratum = pd.DataFrame(read_design(samples.parent)["points"])["stratum"]
+    big = stratum.value_counts().idxmax()
+    i = int(np.flatnonzero(stratum == big)[0])
     t.loc[i, "label"] = ""
     t.to_csv(samples, index=False)
     said: list[str] = []
@@ -286,3 +294,142 @@ def test_dry_run_writes_nothing(mapped: tuple[RegionConfig, Path], tmp_path: Pat
     said: list[str] = []
     design_run(DesignConfig(region=region, map=str(folder), out_dir=str(tmp_path / "dry"), dry_run=True), echo=said.append)
     assert said[-1] == "dry run: nothing written" and not (tmp_path / "dry").exists()
+
+
+# --------------------------------------------------------------------------- the blind sheet and its design
+
+
+def test_sheet_is_blind(mapped: tuple[RegionConfig, Path], tmp_path: Path) -> None:
+    """The interpreters' sheet says where each point is and nothing of the map's answer; design.json keeps that."""
+    region, folder = mapped
+    out = tmp_path / "blank"
+    d = design_run(DesignConfig(region=region, map=str(folder), out_dir=str(out), min_per_stratum=10), echo=lambda s: None)
+    table = pd.read_csv(out / "samples.csv", dtype=str, keep_default_na=False)
+    assert list(table.columns) == list(SHEET_COLUMNS)
+    assert not {"stratum", "map_class", "map_onset_year", "inclusion_probability"} & set(table.columns)
+    assert (table[["label", "onset_year", "confidence", "interpreter", "note"]] == "").all().all()
+    # Not even a stratum's name (conversion_2017_2020, forest_buffer) anywhere on the sheet.
+    text = (out / "samples.csv").read_text()
+    assert not [s.name for s in d.strata if s.name in text] and "conversion" not in text
+    import pyogrio
+
+    assert not set(BOOKKEEPING) & set(pyogrio.read_info(out / "samples.gpkg")["fields"])
+    points = read_design(out)["points"]
+    assert [q["point_id"] for q in points] == table["point_id"].tolist()
+    assert all(set(BOOKKEEPING) <= set(q) for q in points)
+
+
+#: The assessment of the ``filled`` sample (80 points from truth) as the sheet with map columns gave it, before the sheet went blind.
+BEFORE = {
+    "overall": {"estimate": 0.983519, "se": 0.011112, "lo": 0.96174, "hi": 1.005297},
+    "conversion_ha": {"estimate": 80.31, "se": 3.6, "lo": 73.254, "hi": 87.366, "mapped_ha": 74.97},
+    "after_cutoff_ha": (44.76, 3.6),
+    "producers_conversion": {"estimate": 0.933508, "se": 0.041848, "lo": 0.851486, "hi": 1.015529},
+    "timing_exact": {"estimate": 0.920968, "se": 0.053283, "lo": 0.816535, "hi": 1.025401},
+    "counts": [[31, 2, 0, 0], [0, 25, 0, 0], [0, 0, 11, 0], [0, 0, 0, 11]],
+    "n_used": [0, 12, 13, 21, 12, 11, 11, 0],
+}
+
+
+def _assess(region: RegionConfig, folder: Path, samples: Path, said: list[str] | None = None, **kw) -> dict:
+    return assess_run(AssessConfig(region=region, samples=str(samples), map=str(folder), out_dir=str(samples.parent), report=False, **kw), echo=(said.append if said is not None else lambda s: None))
+
+
+def test_assess_joins_the_design_and_gives_the_numbers_of_before(filled: tuple[RegionConfig, Path, Path]) -> None:
+    region, folder, samples = filled
+    doc = _assess(region, folder, samples)
+    assert doc["overall"] == pytest.approx(BEFORE["overall"], abs=1e-9)
+    assert doc["area_ha"]["conversion"] == pytest.approx(BEFORE["conversion_ha"], abs=1e-9)
+    assert (doc["after_cutoff"]["estimate"], doc["after_cutoff"]["se"]) == pytest.approx(BEFORE["after_cutoff_ha"], abs=1e-9)
+    assert doc["producers"]["conversion"] == pytest.approx(BEFORE["producers_conversion"], abs=1e-9)
+    assert doc["timing"]["exact"] == pytest.approx(BEFORE["timing_exact"], abs=1e-9)
+    assert doc["error_matrix"]["counts"] == BEFORE["counts"]
+    assert [s["n_used"] for s in doc["strata"]] == BEFORE["n_used"]
+    assert doc["simulated_reference"] is True and doc["sample"]["missing_from_sheet"] == []
+    # A sheet that still carries map columns (an older version's), even wrong ones: ignored, with a note; the design is the record.
+    t = pd.read_csv(samples, dtype=str, keep_default_na=False)
+    t.assign(stratum="swamp", map_class="other", map_onset_year="1999", inclusion_probability="1").to_csv(samples, index=False)
+    said: list[str] = []
+    again = _assess(region, folder, samples, said)
+    assert {k: again[k] for k in ("overall", "users", "producers", "area_ha", "conversion_by_year", "after_cutoff", "timing", "error_matrix")} == {
+        k: doc[k] for k in ("overall", "users", "producers", "area_ha", "conversion_by_year", "after_cutoff", "timing", "error_matrix")
+    }
+    assert any(s.startswith("note: ") and "['stratum', 'map_class', 'map_onset_year', 'inclusion_probability']" in s and "ignored" in s for s in said)
+
+
+def test_points_missing_from_the_sheet(filled: tuple[RegionConfig, Path, Path]) -> None:
+    region, folder, samples = filled
+    t = pd.read_csv(samples, dtype=str, keep_default_na=False)
+    gone = t.loc[5, "point_id"]
+    t.drop(index=5).to_csv(samples, index=False)
+    with pytest.raises(LabelError, match=rf"samples.csv: point_id '{gone}' of the design .*design.json is not on the sheet \(1 point\(s\) missing\); .*allow_unlabelled=true") as err:
+        _assess(region, folder, samples)
+    assert "\n" not in str(err.value)
+    said: list[str] = []
+    doc = _assess(region, folder, samples, said, allow_unlabelled=True)
+    assert doc["sample"]["missing_from_sheet"] == [gone] and doc["sample"]["dropped_unlabelled"] == [gone] and doc["sample"]["n"] == len(t) - 1
+    assert any("1 unlabelled point(s) dropped" in s and "1 of them missing from the sheet" in s for s in said)
+
+
+def _edit_design(doc: dict, how: str) -> object:
+    if how == "list":
+        return [doc]
+    if how == "old":
+        return doc | {"kind": "plantation-sample-design/1"}
+    if how == "no_points":
+        return {k: v for k, v in doc.items() if k != "points"}
+    if how == "swamp":
+        return doc | {"points": [doc["points"][0] | {"stratum": "swamp"}, *doc["points"][1:]]}
+    if how == "twice":
+        return doc | {"points": [doc["points"][0], *doc["points"]]}
+    if how == "stratum":
+        return doc | {"strata": [{"name": "x"}]}
+    raise AssertionError(how)
+
+
+@pytest.mark.parametrize(
+    ("how", "message"),
+    [
+        ("json", r"design.json: not valid JSON \(Expecting"),
+        ("list", r"design.json: holds a JSON list, not a sample design"),
+        ("old", r"design.json: a design of an older version \('plantation-sample-design/1'\) .*draw the sample again with `plantation sample`"),
+        ("no_points", r"design.json: no list of points; the file was edited or damaged"),
+        ("swamp", r"design.json: point 'P00001': stratum 'swamp' is not one of the design's strata"),
+        ("twice", r"design.json: point_id 'P00001' appears twice"),
+        ("stratum", r"design.json: stratum 1 is not a \{name, kind"),
+    ],
+)
+def test_malformed_design_is_one_line_naming_the_file(filled: tuple[RegionConfig, Path, Path], how: str, message: str) -> None:
+    region, folder, samples = filled
+    path = samples.parent / "design.json"
+    if how == "json":
+        path.write_text("{not json")
+    else:
+        path.write_text(json.dumps(_edit_design(json.loads(path.read_text()), how)))
+    with pytest.raises(FileFormatError, match=message) as err:
+        read_design(path)
+    assert "\n" not in str(err.value) and str(err.value).startswith(str(path))
+    with pytest.raises(FileFormatError, match=message):
+        _assess(region, folder, samples)
+    assert not (samples.parent / "assessment.json").exists()
+
+
+def test_read_assessment_and_its_one_line_errors(filled: tuple[RegionConfig, Path, Path]) -> None:
+    region, folder, samples = filled
+    out = samples.parent
+    with pytest.raises(InputNotFoundError, match="assessment.json not found; run `plantation assess`"):
+        read_assessment(out)
+    doc = _assess(region, folder, samples)
+    assert read_assessment(out) == json.loads(json.dumps(doc)) == read_assessment(out / "assessment.json")
+    path = out / "assessment.json"
+    for text, message in (
+        ("{not json", r"assessment.json: not valid JSON \(Expecting"),
+        ("[1, 2]", r"assessment.json: holds a JSON list, not an assessment"),
+        (json.dumps(doc | {"kind": "plantation-plots/1"}), r"assessment.json: kind 'plantation-plots/1', expected 'plantation-assessment/1'"),
+        (json.dumps(doc | {"users": [1]}), r"assessment.json: 'users' is a JSON list, expected an object; the file was edited or damaged"),
+        (json.dumps(doc | {"conversion_by_year": [2020]}), r"assessment.json: conversion_by_year entry 1 is a JSON int, expected an object"),
+    ):
+        path.write_text(text)
+        with pytest.raises(FileFormatError, match=message) as err:
+            read_assessment(out)
+        assert "\n" not in str(err.value) and str(err.value).startswith(str(path))

@@ -27,8 +27,8 @@ import shapely
 from affine import Affine
 from pyproj import Geod, Proj, Transformer
 
-from plantation.errors import ConfigError, InputNotFoundError, PlantationError
-from plantation.farmplots.cutoff import COLUMNS, Cutoff, PlotsConfig, VerdictConfig, comonotone_range_ha, parse_cutoff, run, verdict
+from plantation.errors import ConfigError, FileFormatError, InputNotFoundError, PlantationError
+from plantation.farmplots.cutoff import COLUMNS, Cutoff, PlotsConfig, VerdictConfig, comonotone_range_ha, parse_cutoff, read_plots_json, run, verdict
 from plantation.mapping.folder import FORMAT, LAYERS, NODATA
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -390,27 +390,50 @@ def test_outputs_schema_and_geojson_in_wgs84(tmp_path):
     assert res.files["json"] == out / "plots.json"
 
 
+def test_read_plots_json_and_its_one_line_errors(tmp_path):
+    maps = write_tile(tmp_path / "map", p_after=np.full((10, 10), 9700, np.int16))
+    out = tmp_path / "out"
+    with pytest.raises(InputNotFoundError, match="plots.json not found; run `plantation farmplots`"):
+        read_plots_json(out)
+    run(cfg_for(tmp_path, write_plots(tmp_path / "plots.gpkg", [pixel_box(1, 1, 4, 4)], ["A"]), maps))
+    path = out / "plots.json"
+    doc = json.loads(path.read_text())
+    assert read_plots_json(out) == doc == read_plots_json(path)
+    for text, message in (
+        ("{not json", r"plots.json: not valid JSON \(Expecting"),
+        ('"plots"', r"plots.json: holds a JSON str, not a plot check"),
+        (json.dumps(doc | {"kind": "plantation-assessment/1"}), r"plots.json: kind 'plantation-assessment/1', expected 'plantation-plots/1'"),
+        (json.dumps(doc | {"plots": {"A": 1}}), r"plots.json: 'plots' is a JSON dict, expected a list; the file was edited or damaged"),
+        (json.dumps(doc | {"problems": ["bad"]}), r"plots.json: problems entry 1 is a JSON str, expected an object"),
+    ):
+        path.write_text(text)
+        with pytest.raises(FileFormatError, match=message) as err:
+            read_plots_json(out)
+        assert "\n" not in str(err.value) and str(err.value).startswith(str(path))
+
+
 # ------------------------------------------------------------------ the script and the demo plots
 
 
 def test_config_composes_and_typos_are_errors():
     from hydra import compose, initialize_config_dir
-    from plantation.cli.compose import register_configs
 
+    from plantation.cli.compose import register_configs
     from plantation.config import to_object
 
     register_configs()
     with initialize_config_dir(config_dir=str(ROOT / "configs"), version_base="1.3"):
-        cfg = to_object(compose(config_name="plots", overrides=["cutoff=2020-06-30", "verdict.strong_min_ha=1"]), PlotsConfig)
+        cfg = to_object(compose(config_name="farmplots", overrides=["cutoff=2020-06-30", "verdict.strong_min_ha=1"]), PlotsConfig)
         assert cfg.cutoff == "2020-06-30" and cfg.verdict.strong_min_ha == 1.0
         assert cfg.map == f"outputs/maps/{cfg.region.name}" and cfg.out_dir == f"outputs/assess/{cfg.region.name}"
-        assert to_object(compose(config_name="plots", overrides=["cutoff=2020"]), PlotsConfig).cutoff == "2020"
+        assert to_object(compose(config_name="farmplots", overrides=["cutoff=2020"]), PlotsConfig).cutoff == "2020"
         with pytest.raises(ConfigError, match="strong_min"):
-            to_object(compose(config_name="plots", overrides=["+verdict.strong_min=1"]), PlotsConfig)
+            to_object(compose(config_name="farmplots", overrides=["+verdict.strong_min=1"]), PlotsConfig)
 
 
 def _script(*overrides: str) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, str(ROOT / "scripts" / "plots.py"), *overrides], cwd=ROOT, capture_output=True, text=True, timeout=600)
+    """`plantation farmplots key=value ...`, through the console entry point installed beside this interpreter."""
+    return subprocess.run([str(Path(sys.executable).parent / "plantation"), "farmplots", *overrides], cwd=ROOT, capture_output=True, text=True, timeout=600)
 
 
 def test_script_on_a_tiny_map(tmp_path):
@@ -431,8 +454,8 @@ def test_script_on_a_tiny_map(tmp_path):
 def test_demo_plots_regenerate_from_the_truth(tmp_path):
     """toy_tiles/plots.geojson is what _write_plots makes of the toy truth rasters (byte for byte)."""
     from hydra import compose, initialize_config_dir
-    from plantation.cli.compose import register_configs
 
+    from plantation.cli.compose import register_configs
     from plantation.config import to_object
     from plantation.simulation.landscape import SimulationConfig, _write_plots
 
@@ -461,7 +484,7 @@ TOY_MAP = ROOT / "outputs" / "maps" / "selvara_toy"
 
 
 @pytest.mark.slow
-@pytest.mark.skipif(not (TOY_MAP / "manifest.json").is_file(), reason="needs the toy map: python scripts/map.py")
+@pytest.mark.skipif(not (TOY_MAP / "manifest.json").is_file(), reason="needs the toy map: plantation map")
 def test_script_on_the_toy_map(tmp_path):
     res = _script(f"map={TOY_MAP}", f"out_dir={tmp_path}", "progress=false")
     assert res.returncode == 0, res.stderr

@@ -18,8 +18,8 @@ import rasterio
 from affine import Affine
 from rasterio.enums import Resampling
 
-from plantation.errors import PlantationError
-from plantation.mapping.folder import LAYERS, NODATA, NOTICE, SCALE
+from plantation.errors import FileFormatError, PlantationError
+from plantation.mapping.folder import LAYERS, NODATA, NOTICE, SCALE, read_manifest
 from plantation.report.figures import read_mosaic
 from plantation.report.page import build_report
 
@@ -405,6 +405,44 @@ def test_wrong_kind_or_bad_json_raises(bare_dir: Path) -> None:
     (bare_dir / "plots.json").write_text("{not json")
     with pytest.raises(PlantationError, match="plots.json: not valid JSON"):
         build_report(bare_dir)
+
+
+@pytest.mark.parametrize(
+    ("name", "text", "error", "message"),
+    [
+        ("assessment.json", "{not json", FileFormatError, r"assessment.json: not valid JSON \(Expecting"),
+        ("assessment.json", json.dumps({"kind": "plantation-plots/1"}), FileFormatError, r"assessment.json: kind 'plantation-plots/1', expected 'plantation-assessment/1'"),
+        ("assessment.json", json.dumps({"kind": "plantation-assessment/1", "area_ha": [1, 2]}), FileFormatError, r"assessment.json: 'area_ha' is a JSON list, expected an object"),
+        ("plots.json", json.dumps({"kind": "plantation-plots/1", "plots": [None]}), FileFormatError, r"plots.json: plots entry 1 is a JSON NoneType, expected an object"),
+    ],
+)
+def test_malformed_input_is_one_line_naming_the_file(bare_dir: Path, name: str, text: str, error: type, message: str) -> None:
+    """The report reads its inputs through their modules' readers, and stops with their one-line error."""
+    (bare_dir / name).write_text(text)
+    with pytest.raises(error, match=message) as err:
+        build_report(bare_dir)
+    assert "\n" not in str(err.value) and str(err.value).startswith(str(bare_dir / name))
+    assert not (bare_dir / "report.html").exists()
+
+
+def test_manifest_read_through_the_map_folder_module(run_dir: Path, tmp_path: Path) -> None:
+    maps = tmp_path / "maps"
+    raw = read_manifest(maps)
+    assert raw is not None and sorted(raw["tiles"]) == ["t01", "t02"] and read_manifest(maps / "manifest.json") == raw
+    assert read_manifest(tmp_path / "nowhere") is None
+    text = _text(build_report(run_dir).read_text())
+    assert "map tiles finished 2026-03-01 to 2026-03-02" in text and text.count("assessment generated") == 2  # header and provenance
+    # A malformed manifest is refused by its reader in one line; the report is built without it and says why.
+    (maps / "manifest.json").write_text(json.dumps({"format": "plantation-map/1", "tiles": {"t01": {"sha256": "00"}}}))
+    with pytest.raises(FileFormatError, match=r"manifest.json: tile 't01' has no 'file' entry; delete it and map the region again") as err:
+        read_manifest(maps)
+    assert "\n" not in str(err.value)
+    text = _text(build_report(run_dir).read_text())
+    assert "map tiles finished" not in text and "unreadable, left out:" in text and "tile &#x27;t01&#x27; has no &#x27;file&#x27; entry" in text
+    assert text.count("assessment generated") == 2
+    (maps / "manifest.json").write_text("{not json")
+    with pytest.raises(FileFormatError, match=r"manifest.json: not valid JSON"):
+        read_manifest(maps)
 
 
 def test_rewrite_replaces_the_old_report(bare_dir: Path) -> None:

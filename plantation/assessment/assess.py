@@ -1,12 +1,17 @@
 """Accuracy and area of a mapped region from its interpreted validation sample.
 
 Reads the sample drawn by :mod:`plantation.assessment.design` after interpreters filled
-its reference columns, checks it row by row, and estimates with
+its reference columns, joins back each point's bookkeeping (stratum, map class,
+mapped onset year) from ``design.json`` by ``point_id`` — the interpreters'
+sheet never shows the map's answer — checks it row by row, and estimates with
 :mod:`plantation.assessment.estimators`: the error matrix in area proportions, overall,
 user's and producer's accuracy, the area of each class, converted area per
 onset year and after the cutoff, and the timing accuracy of conversions —
 each with its standard error and interval. Areas come from the sample, not
 from counting the map's pixels (the pixel counts are shown beside them).
+
+This module writes ``assessment.json`` and is the one that reads it
+(:func:`read_assessment`).
 """
 
 from __future__ import annotations
@@ -21,23 +26,24 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from plantation.assessment.design import FORMAT as DESIGN_FORMAT
-from plantation.assessment.design import SIMULATED
+from plantation.assessment.design import BOOKKEEPING, DESIGN_NAME, MAP_CLASSES, SIMULATED, read_design
 from plantation.assessment.estimators import Estimate, EstimationError, Strata, accuracy, stratified_mean, stratified_ratio, z_value
-from plantation.errors import ConfigError, InputNotFoundError, LabelError, PlantationError
+from plantation.errors import ConfigError, FileFormatError, InputNotFoundError, LabelError, PlantationError
 from plantation.imagery.config import RegionConfig
 from plantation.mapping.folder import open_map, sha256_of
 from plantation.model.card import CARD, WEIGHTS, read_card, read_validation, resolve_model
 from plantation.reference.labels import LABEL_NAMES
 
 FORMAT = "plantation-assessment/1"
-REQUIRED = ("point_id", "stratum", "map_class", "map_onset_year", "label", "onset_year")
-MAP_CLASSES = (*LABEL_NAMES, "no_data")
+#: The assessment's file name in ``out_dir``.
+ASSESSMENT_NAME = "assessment.json"
+#: Columns the filled sheet must have: the point's id and pixel (checked against the design) and the reference.
+REQUIRED = ("point_id", "tile", "row", "col", "label", "onset_year")
 
 
 @dataclass
 class AssessConfig:
-    """What ``scripts/assess.py`` needs (see ``configs/assess.yaml``)."""
+    """What ``plantation assess`` needs (see ``configs/assess.yaml``)."""
 
     region: RegionConfig = field(default_factory=RegionConfig)
     #: The interpreted sample: samples.csv or samples.gpkg with the reference columns filled.
@@ -66,7 +72,7 @@ def read_sample_table(path: str | Path) -> tuple[pd.DataFrame, str]:
     """
     p = Path(path)
     if not p.is_file():
-        raise InputNotFoundError(f"{p}: sample file not found")
+        raise InputNotFoundError(f"{p.absolute()}: sample file not found")
     suffix = p.suffix.lower()
     if suffix == ".csv":
         try:
@@ -86,10 +92,10 @@ def read_sample_table(path: str | Path) -> tuple[pd.DataFrame, str]:
         table["_where"] = np.arange(len(table)) + 1
         unit = "feature"
     else:
-        raise LabelError(f"{p}: unsupported sample format {suffix!r}; use the .csv or .gpkg written by scripts/sample.py")
+        raise LabelError(f"{p}: unsupported sample format {suffix!r}; use the .csv or .gpkg written by `plantation sample`")
     missing = [c for c in REQUIRED if c not in table.columns]
     if missing:
-        raise LabelError(f"{p}: missing column(s) {missing}; expected the columns written by scripts/sample.py")
+        raise LabelError(f"{p}: missing column(s) {missing}; expected the columns written by `plantation sample`")
     for c in REQUIRED:
         table[c] = table[c].astype(str).str.strip()
     return table, unit
@@ -105,26 +111,55 @@ def _int_or_none(text: str) -> int | None:
 
 @dataclass
 class CheckedSample:
-    """Validated sample points with stratum codes and the design's weights."""
+    """Validated sample points, with their bookkeeping joined from the design, stratum codes and the design's weights.
+
+    ``dropped`` lists the points left out as unlabelled (blank on the sheet,
+    then missing from it), ``ignored`` the sheet's columns that repeat the
+    design's bookkeeping (an older, non-blind sheet) and were not used.
+    """
 
     table: pd.DataFrame
     strata: Strata
     stratum_names: list[str]
     design: dict[str, Any]
     dropped: list[str]
+    missing: list[str] = field(default_factory=list)
+    ignored: list[str] = field(default_factory=list)
 
 
-def check_sample(table: pd.DataFrame, unit: str, path: Path, design: dict[str, Any], years: list[int], *, allow_unlabelled: bool = False, fpc: bool = False) -> CheckedSample:
-    """Check every row against the design and the label rules; the first problem stops with its row.
+def check_sample(
+    table: pd.DataFrame,
+    unit: str,
+    path: Path,
+    design: dict[str, Any],
+    years: list[int],
+    *,
+    allow_unlabelled: bool = False,
+    fpc: bool = False,
+    design_path: str | Path = DESIGN_NAME,
+) -> CheckedSample:
+    """Join each row to its point in the design and check it with the label rules; the first problem stops with its row.
+
+    The sheet is blind: the stratum, map class, mapped onset year and
+    inclusion probability of each point come from ``design["points"]``
+    (:func:`plantation.assessment.design.read_design`), matched by
+    ``point_id``. Columns of those names still on the sheet (an older
+    sheet) are ignored and listed in ``ignored``: the design is the record.
 
     Raises:
-        LabelError: a duplicate point id, an unknown stratum or class, a
-            blank label (unless ``allow_unlabelled``), a conversion without a
-            valid onset year, an onset year on a non-conversion, or a stratum
-            left with fewer than two labelled points.
+        LabelError: a duplicate point id; a point id not in the design, or
+            at another pixel (tile, row, col) than the design's; a point of
+            the design missing from the sheet or a blank label (unless
+            ``allow_unlabelled``, which drops both); an unknown label; a
+            conversion without a valid onset year; an onset year on a
+            non-conversion; or a stratum left with fewer than two labelled
+            points.
     """
     names = [s["name"] for s in design["strata"]]
     code_of = {n: i for i, n in enumerate(names)}
+    points = {q["point_id"]: q for q in design["points"]}
+    ignored = [c for c in BOOKKEEPING if c in table.columns]
+    table = table.drop(columns=ignored)
 
     def fail(i: int, msg: str) -> None:
         raise LabelError(f"{path}: {unit} {int(table['_where'].iloc[i])}: {msg}")
@@ -134,11 +169,20 @@ def check_sample(table: pd.DataFrame, unit: str, path: Path, design: dict[str, A
         i = int(np.flatnonzero(dup)[0])
         first = int(table.loc[table["point_id"] == table["point_id"].iloc[i], "_where"].iloc[0])
         fail(i, f"point_id {table['point_id'].iloc[i]!r} appears again (first on {unit} {first}); each point once")
-    for i, (s, m) in enumerate(zip(table["stratum"], table["map_class"], strict=True)):
-        if s not in code_of:
-            fail(i, f"stratum {s!r} is not in the design ({names})")
-        if m not in MAP_CLASSES:
-            fail(i, f"map_class {m!r} is not one of {list(MAP_CLASSES)}")
+    for i, (pid, tile, row, col) in enumerate(zip(table["point_id"], table["tile"], table["row"], table["col"], strict=True)):
+        q = points.get(pid)
+        if q is None:
+            fail(i, f"point_id {pid!r} is not in the design {design_path}; label the sheet that was drawn with this design (or set design= to its own design.json)")
+        if (tile, _int_or_none(row), _int_or_none(col)) != (q["tile"], q["row"], q["col"]):
+            here, there = f"tile {tile!r} row {row!r} col {col!r}", f"tile {q['tile']!r} row {q['row']} col {q['col']}"
+            fail(i, f"point_id {pid!r} is at {here} here but at {there} in {design_path}; the sheet and the design come from different draws")
+    on_sheet = set(table["point_id"])
+    missing = [pid for pid in points if pid not in on_sheet]
+    if missing and not allow_unlabelled:
+        raise LabelError(
+            f"{path}: point_id {missing[0]!r} of the design {design_path} is not on the sheet ({len(missing)} point(s) missing); "
+            "put every drawn point back, or set allow_unlabelled=true to drop them as unlabelled (this can bias the estimates)"
+        )
     blank = table["label"] == ""
     dropped: list[str] = []
     if blank.any():
@@ -147,6 +191,7 @@ def check_sample(table: pd.DataFrame, unit: str, path: Path, design: dict[str, A
             fail(i, f"label is blank ({int(blank.sum())} points unlabelled); label every point, or set allow_unlabelled=true to drop them (this can bias the estimates)")
         dropped = table.loc[blank, "point_id"].tolist()
         table = table.loc[~blank].reset_index(drop=True)
+    dropped += missing
     ref_year = np.zeros(len(table), np.int64)
     for i, (lab, yr) in enumerate(zip(table["label"], table["onset_year"], strict=True)):
         if lab not in LABEL_NAMES:
@@ -161,8 +206,10 @@ def check_sample(table: pd.DataFrame, unit: str, path: Path, design: dict[str, A
         elif yr not in ("", "0"):
             fail(i, f"onset_year {yr!r} given for label {lab!r}; only conversions have one")
     table = table.copy()
+    for c in BOOKKEEPING:
+        table[c] = [points[pid][c] for pid in table["point_id"]]
     table["ref_year"] = ref_year
-    table["map_year"] = [(_int_or_none(v) or 0) for v in table["map_onset_year"]]
+    table["map_year"] = table["map_onset_year"].astype(np.int64)
     code = table["stratum"].map(code_of).to_numpy()
     area = np.array([s["area_ha"] for s in design["strata"]], dtype=np.float64)
     n = np.bincount(code, minlength=len(names))
@@ -170,7 +217,7 @@ def check_sample(table: pd.DataFrame, unit: str, path: Path, design: dict[str, A
         if area[k] > 0 and n[k] < 2:
             raise LabelError(f"{path}: stratum {s['name']!r} has {n[k]} labelled point(s); the estimates need at least 2 in every stratum with area")
     strata = Strata(code=code, weight=area / area.sum(), size=np.array([s["pixels"] for s in design["strata"]]), fpc=fpc)
-    return CheckedSample(table, strata, names, design, dropped)
+    return CheckedSample(table, strata, names, design, dropped, missing, ignored)
 
 
 def _est(e: Estimate | None, digits: int = 6) -> dict[str, float] | None:
@@ -240,18 +287,6 @@ def estimate(sample: CheckedSample, *, years: list[int], cutoff_year: int, mappe
     }
 
 
-def _load_design(path: Path) -> dict[str, Any]:
-    if not path.is_file():
-        raise InputNotFoundError(f"{path}: design.json not found (it is written by scripts/sample.py beside the samples; or set design=)")
-    try:
-        d = json.loads(path.read_text())
-    except json.JSONDecodeError as exc:
-        raise PlantationError(f"{path}: not valid JSON ({exc.msg}, line {exc.lineno})") from None
-    if d.get("kind") != DESIGN_FORMAT:
-        raise PlantationError(f"{path}: kind {d.get('kind')!r}, expected {DESIGN_FORMAT!r}")
-    return d
-
-
 def _model_provenance(folder: Path | None) -> tuple[dict[str, Any] | None, dict[str, Any] | None]:
     """The model's card summary and its validation record, if the folder holds them."""
     if folder is None:
@@ -277,17 +312,20 @@ def run(cfg: AssessConfig, resolved_config: str | None = None, echo: Any = print
         raise ConfigError(f"confidence: {cfg.confidence!r} must be in (0, 1)")
     samples = Path(cfg.samples)
     table, unit = read_sample_table(samples)
-    design_path = Path(cfg.design) if cfg.design else samples.with_name("design.json")
-    design = _load_design(design_path)
+    design_path = Path(cfg.design) if cfg.design else samples.with_name(DESIGN_NAME)
+    design = read_design(design_path)
     mapped = open_map(cfg.map)
     now = {t.name: t.sha256 for t in mapped.tiles}
     if now != design.get("tiles"):
         raise PlantationError(f"{cfg.map}: the map's tiles differ from those the sample was drawn from ({design_path}); draw a new sample for this map")
     years = list(range(min(mapped.years), max(mapped.years) + 1)) if mapped.years else []
-    checked = check_sample(table, unit, samples, design, years, allow_unlabelled=cfg.allow_unlabelled, fpc=cfg.finite_population_correction)
+    checked = check_sample(table, unit, samples, design, years, allow_unlabelled=cfg.allow_unlabelled, fpc=cfg.finite_population_correction, design_path=design_path)
+    if checked.ignored:
+        echo(f"note: {samples} carries the map's columns {checked.ignored} (an older, non-blind sheet): ignored, the bookkeeping comes from {design_path}; its interpreters saw the map's answer")
     if checked.dropped:
         ids = ", ".join(checked.dropped[:5]) + (", ..." if len(checked.dropped) > 5 else "")
-        echo(f"warning: {len(checked.dropped)} unlabelled point(s) dropped ({ids}); the estimates assume they are missing at random")
+        absent = f", {len(checked.missing)} of them missing from the sheet" if checked.missing else ""
+        echo(f"warning: {len(checked.dropped)} unlabelled point(s) dropped ({ids}){absent}; the estimates assume they are missing at random")
     try:
         result = estimate(checked, years=years, cutoff_year=mapped.cutoff_year, mapped_by_year=mapped.converted_ha, confidence=cfg.confidence)
     except EstimationError as exc:
@@ -302,16 +340,65 @@ def run(cfg: AssessConfig, resolved_config: str | None = None, echo: Any = print
         "generated": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
         "simulated_reference": simulated,
         **result,
-        "sample": {"path": str(samples), "sha256": sha256_of(samples), "n": len(checked.table), "dropped_unlabelled": checked.dropped, "design": str(design_path)},
+        "sample": {
+            "path": str(samples),
+            "sha256": sha256_of(samples),
+            "n": len(checked.table),
+            "dropped_unlabelled": checked.dropped,
+            "missing_from_sheet": checked.missing,
+            "design": str(design_path),
+        },
         "provenance": {"model": model_prov, "map_manifest_sha256": mapped.manifest_sha256, "design_config": design.get("config"), "config": resolved_config},
         "validation": validation,
     }
     out = Path(cfg.out_dir)
     out.mkdir(parents=True, exist_ok=True)
-    _write_atomic(out / "assessment.json", json.dumps(doc, indent=1))
+    _write_atomic(out / ASSESSMENT_NAME, json.dumps(doc, indent=1))
     _write_tables(doc, out)
     for line in summary_lines(doc):
         echo(line)
+    return doc
+
+
+#: Sections of assessment.json that, when present, must be JSON objects or lists (what the report walks through).
+_OBJECTS = ("error_matrix", "users", "producers", "area_ha", "after_cutoff", "timing", "sample", "provenance")
+_LISTS = ("classes", "map_classes", "conversion_by_year", "strata")
+
+
+def read_assessment(path: str | Path) -> dict[str, Any]:
+    """``assessment.json`` as :func:`run` wrote it.
+
+    Args:
+        path: the file, or the folder holding it (``out_dir`` of the assessment).
+
+    Raises:
+        InputNotFoundError: there is no such file.
+        FileFormatError: it is not valid JSON, not an assessment (its ``kind``),
+            or a section has the wrong shape; one line naming the file.
+    """
+    p = Path(path)
+    if p.is_dir():
+        p = p / ASSESSMENT_NAME
+    if not p.is_file():
+        raise InputNotFoundError(f"{p.absolute()}: assessment.json not found; run `plantation assess` to write it")
+    again = "write it again with `plantation assess`"
+    try:
+        doc = json.loads(p.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        why = f"{exc.msg}, line {exc.lineno}" if isinstance(exc, json.JSONDecodeError) else "not UTF-8 text"
+        raise FileFormatError(f"{p}: not valid JSON ({why}); {again}") from None
+    if not isinstance(doc, dict):
+        raise FileFormatError(f"{p}: holds a JSON {type(doc).__name__}, not an assessment; is this the right file?")
+    if doc.get("kind") != FORMAT:
+        raise FileFormatError(f"{p}: kind {doc.get('kind')!r}, expected {FORMAT!r}; is this the right file?")
+    for keys, kind in ((_OBJECTS, dict), (_LISTS, list)):
+        for k in keys:
+            if doc.get(k) is not None and not isinstance(doc[k], kind):
+                raise FileFormatError(f"{p}: {k!r} is a JSON {type(doc[k]).__name__}, expected {'an object' if kind is dict else 'a list'}; the file was edited or damaged, {again}")
+    for k in ("conversion_by_year", "strata"):
+        for i, entry in enumerate(doc.get(k) or [], start=1):
+            if not isinstance(entry, dict):
+                raise FileFormatError(f"{p}: {k} entry {i} is a JSON {type(entry).__name__}, expected an object; the file was edited or damaged, {again}")
     return doc
 
 

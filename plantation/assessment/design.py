@@ -18,6 +18,15 @@ accuracies per stratum kind), a floor per stratum protects rare strata, and
 the rest is allocated by area (:func:`plantation.assessment.estimators.allocate`).
 Pixels are drawn without replacement within each stratum, in two passes over
 the map (count, then pick), so memory follows the strip, not the tile.
+
+The interpreters' sheet is blind (response design, Olofsson et al. 2014,
+section 4): ``samples.csv`` and ``samples.gpkg`` hold where each point is and
+blank reference columns (:data:`SHEET_COLUMNS`), nothing of the map's answer;
+even a stratum name such as ``conversion_2017_2020`` or ``forest_buffer``
+gives it away. The bookkeeping of each point — stratum, map class, mapped
+onset year, inclusion probability (:data:`BOOKKEEPING`) — is kept in
+``design.json`` under ``points``, beside the strata. This module is the one
+that writes and reads ``design.json`` (:func:`read_design`).
 """
 
 from __future__ import annotations
@@ -25,7 +34,7 @@ from __future__ import annotations
 import json
 import os
 from collections.abc import Iterator
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, fields
 from pathlib import Path
 from typing import Any
 
@@ -37,16 +46,27 @@ from pyproj import Transformer
 from scipy.ndimage import maximum_filter
 
 from plantation.assessment.estimators import allocate, cochran_sample_size, expected_overall_se
-from plantation.errors import ConfigError, InputNotFoundError, PlantationError
+from plantation.errors import ConfigError, FileFormatError, InputNotFoundError, PlantationError
 from plantation.imagery.config import RegionConfig
 from plantation.imagery.region import Grid
 from plantation.mapping.folder import MappedRegion, MapTile, open_map, sha256_of
 from plantation.reference.labels import LABEL_CODES, LABEL_NAMES
 
-FORMAT = "plantation-sample-design/1"
+#: Version 2 keeps each point's bookkeeping (``points``) here instead of on the sheet.
+FORMAT = "plantation-sample-design/2"
+#: The design's file name, beside the sheet.
+DESIGN_NAME = "design.json"
 MAP_NODATA = -32768
+#: Classes a point's map_class can take: the label classes and pixels without data.
+MAP_CLASSES = (*LABEL_NAMES, "no_data")
 #: Blank columns the interpreters fill in, in this order.
 REFERENCE_COLUMNS = ("label", "onset_year", "confidence", "interpreter", "note")
+#: The interpreters' sheet (samples.csv, samples.gpkg): where each point is, and the blank reference columns. Nothing of the map's answer.
+SHEET_COLUMNS = ("point_id", "tile", "row", "col", "x", "y", "crs", "lon", "lat", "pixel_ha", *REFERENCE_COLUMNS)
+#: What only the design keeps per point: these give the map's answer away, so they stay off the sheet.
+BOOKKEEPING = ("stratum", "map_class", "map_onset_year", "inclusion_probability")
+#: Fields of each entry of design.json's ``points``: the point's id and pixel (to check a sheet belongs to the design) and its bookkeeping.
+POINT_FIELDS = ("point_id", "tile", "row", "col", *BOOKKEEPING)
 #: Interpreter entry of points whose reference was filled from simulated truth.
 SIMULATED = "simulated truth (demo only)"
 
@@ -69,7 +89,7 @@ class AssumedAccuracy:
 
 @dataclass
 class DesignConfig:
-    """What ``scripts/sample.py`` needs (see ``configs/sample.yaml``)."""
+    """What ``plantation sample`` needs (see ``configs/sample.yaml``)."""
 
     region: RegionConfig = field(default_factory=RegionConfig)
     #: A mapped region folder (holding manifest.json and one COG per tile).
@@ -260,7 +280,8 @@ def draw(plan_: Design, seed: int, strip: int, buffer_px: int) -> pd.DataFrame:
 
     Returns one row per point: tile, row, col, stratum, map class and onset
     year, x/y (pixel centre, map CRS), lon/lat (EPSG:4326), inclusion
-    probability n_h / N_h and the pixel's area in ha.
+    probability n_h / N_h and the pixel's area in ha. The sheet written from
+    it keeps only :data:`SHEET_COLUMNS`; the rest goes to ``design.json``.
     """
     rng = np.random.default_rng(np.random.SeedSequence([seed, 7]))
     chosen = [np.sort(rng.choice(s.pixels, s.n, replace=False)) if s.n else np.zeros(0, np.int64) for s in plan_.strata]
@@ -334,9 +355,6 @@ def fill_from_truth(table: pd.DataFrame, region: RegionConfig) -> pd.DataFrame:
     return out
 
 
-COLUMNS = ("point_id", "tile", "row", "col", "x", "y", "crs", "lon", "lat", "stratum", "map_class", "map_onset_year", "inclusion_probability", "pixel_ha", *REFERENCE_COLUMNS)
-
-
 def _atomic_text(path: Path, text: str) -> None:
     tmp = path.with_name(path.name + ".partial")
     tmp.write_text(text)
@@ -344,7 +362,10 @@ def _atomic_text(path: Path, text: str) -> None:
 
 
 def write_samples(table: pd.DataFrame, out_dir: Path) -> tuple[Path, Path]:
-    """``samples.csv`` and ``samples.gpkg`` (points in EPSG:4326, layer ``samples``), atomically."""
+    """The interpreters' sheet: ``samples.csv`` and ``samples.gpkg`` (points in EPSG:4326, layer ``samples``), atomically.
+
+    Only :data:`SHEET_COLUMNS` are written: the map's answer stays in ``design.json``.
+    """
     import logging
 
     import pyogrio
@@ -354,14 +375,14 @@ def write_samples(table: pd.DataFrame, out_dir: Path) -> tuple[Path, Path]:
     out_dir.mkdir(parents=True, exist_ok=True)
     csv = out_dir / "samples.csv"
     tmp = csv.with_name(csv.name + ".partial")
-    table.loc[:, list(COLUMNS)].to_csv(tmp, index=False, lineterminator="\n")
+    table.loc[:, list(SHEET_COLUMNS)].to_csv(tmp, index=False, lineterminator="\n")
     os.replace(tmp, csv)
     gpkg = out_dir / "samples.gpkg"
     tmpg = gpkg.with_name("samples.partial.gpkg")
     if tmpg.exists():
         tmpg.unlink()
     geom = shapely.to_wkb(shapely.points(table["lon"].to_numpy(), table["lat"].to_numpy()))
-    cols = [c for c in COLUMNS if c not in ("lon", "lat")]
+    cols = [c for c in SHEET_COLUMNS if c not in ("lon", "lat")]
     data = [table[c].to_numpy() if table[c].dtype != object else table[c].astype(str).to_numpy() for c in cols]
     pyogrio.raw.write(str(tmpg), geom, data, cols, crs="EPSG:4326", geometry_type="Point", driver="GPKG", layer="samples")
     os.replace(tmpg, gpkg)
@@ -371,9 +392,11 @@ def write_samples(table: pd.DataFrame, out_dir: Path) -> tuple[Path, Path]:
 def run(cfg: DesignConfig, resolved_config: str | None = None, echo: Any = print) -> Design:
     """Plan the sample, show the allocation, and (unless ``dry_run``) draw and write it.
 
-    Writes into ``out_dir``: ``samples.csv`` and ``samples.gpkg`` (blank
-    reference columns, or filled from truth with ``fill_from_truth``) and
-    ``design.json`` (strata, sizes, areas, allocation, the map's digests).
+    Writes into ``out_dir``: the interpreters' blind sheet, ``samples.csv``
+    and ``samples.gpkg`` (:data:`SHEET_COLUMNS`: blank reference columns, or
+    filled from truth with ``fill_from_truth``), and ``design.json`` (strata,
+    sizes, areas, allocation, the map's digests, and each point's
+    :data:`BOOKKEEPING` under ``points``).
     """
     design = plan(cfg)
     for line in design.table():
@@ -404,7 +427,122 @@ def run(cfg: DesignConfig, resolved_config: str | None = None, echo: Any = print
         "samples_sha256": sha256_of(csv),
         "strata": [asdict(s) for s in design.strata],
         "config": resolved_config,
+        "points": design_points(table),
     }
-    _atomic_text(out / "design.json", json.dumps(doc, indent=1))
-    echo(f"{design.n_total} points written to {csv} and {gpkg}; design in {out / 'design.json'}")
+    path = write_design(doc, out)
+    echo(f"{design.n_total} points written to {csv} and {gpkg} (for the interpreters: no map class on them); design and each point's map class in {path} (keep it from them)")
     return design
+
+
+def design_points(table: pd.DataFrame) -> list[dict[str, Any]]:
+    """The ``points`` entries of design.json from a drawn table: :data:`POINT_FIELDS` per point, in the sheet's order."""
+    return [
+        {
+            "point_id": str(r.point_id),
+            "tile": str(r.tile),
+            "row": int(r.row),
+            "col": int(r.col),
+            "stratum": str(r.stratum),
+            "map_class": str(r.map_class),
+            "map_onset_year": int(r.map_onset_year),
+            "inclusion_probability": float(r.inclusion_probability),
+        }
+        for r in table.itertuples(index=False)
+    ]
+
+
+def write_design(doc: dict[str, Any], out_dir: Path) -> Path:
+    """Write ``design.json`` into ``out_dir`` atomically, one line per point so it reads (and diffs) as a table."""
+    head = json.dumps({k: v for k, v in doc.items() if k != "points"}, indent=1)
+    points = ",\n".join("  " + json.dumps(q) for q in doc.get("points", []))
+    # head ends with "\n}": reopen it to append the points.
+    path = Path(out_dir) / DESIGN_NAME
+    _atomic_text(path, head[:-2] + ',\n "points": [\n' + points + "\n ]\n}\n")
+    return path
+
+
+def _is_int(v: Any) -> bool:
+    return isinstance(v, int) and not isinstance(v, bool)
+
+
+def _is_number(v: Any) -> bool:
+    return isinstance(v, int | float) and not isinstance(v, bool) and np.isfinite(v)
+
+
+def read_design(path: str | Path) -> dict[str, Any]:
+    """The sample design :func:`run` wrote: strata, the map's digests and each point's bookkeeping.
+
+    Args:
+        path: ``design.json``, or the folder holding it.
+
+    Returns:
+        The document as written; ``strata`` is a list of :class:`Stratum`
+        fields and ``points`` a list of :data:`POINT_FIELDS` records with
+        unique ``point_id``.
+
+    Raises:
+        InputNotFoundError: there is no such file.
+        FileFormatError: it is not valid JSON, is a design of another kind or of
+            an older version (kind ``.../1`` kept the map's classes on the
+            sheet and has no ``points``), or an entry is malformed; one line
+            naming the file and the entry.
+    """
+    p = Path(path)
+    if p.is_dir():
+        p = p / DESIGN_NAME
+    if not p.is_file():
+        raise InputNotFoundError(f"{p.absolute()}: design.json not found (`plantation sample` writes it beside samples.csv; or set design=<its path>)")
+    redraw = "draw the sample again with `plantation sample`"
+    try:
+        doc = json.loads(p.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        why = f"{exc.msg}, line {exc.lineno}" if isinstance(exc, json.JSONDecodeError) else "not UTF-8 text"
+        raise FileFormatError(f"{p}: not valid JSON ({why}); restore the design.json written with the sample, or {redraw}") from None
+    if not isinstance(doc, dict):
+        raise FileFormatError(f"{p}: holds a JSON {type(doc).__name__}, not a sample design; point design= at the design.json written by `plantation sample`")
+    kind = doc.get("kind")
+    if kind == "plantation-sample-design/1":
+        raise FileFormatError(f"{p}: a design of an older version ({kind!r}) that kept the map's classes on the interpreters' sheet and no per-point bookkeeping; {redraw} and label its blind sheet")
+    if kind != FORMAT:
+        raise FileFormatError(f"{p}: kind {kind!r}, expected {FORMAT!r}; point design= at the design.json written by `plantation sample`")
+
+    def bad(what: str) -> FileFormatError:
+        return FileFormatError(f"{p}: {what}; the file was edited or damaged: restore it, or {redraw}")
+
+    kinds = tuple(f.name for f in fields(AssumedAccuracy))
+    strata = doc.get("strata")
+    if not isinstance(strata, list) or not strata:
+        raise bad("no list of strata")
+    for k, s in enumerate(strata, start=1):
+        ok = isinstance(s, dict) and isinstance(s.get("name"), str) and s.get("kind") in kinds
+        if not ok or not all(_is_int(s.get(f)) for f in ("pixels", "n")) or not _is_number(s.get("area_ha")) or s["area_ha"] < 0:
+            raise bad(f"stratum {k} is not a {{name, kind (one of {list(kinds)}), pixels, area_ha, n}} entry")
+    names = [s["name"] for s in strata]
+    if len(set(names)) != len(names):
+        raise bad(f"stratum names repeat: {names}")
+    if sum(s["area_ha"] for s in strata) <= 0:
+        raise bad("the strata have no area")
+    if not isinstance(doc.get("tiles"), dict):
+        raise bad("no 'tiles' object (the map's tile digests)")
+    points = doc.get("points")
+    if not isinstance(points, list):
+        raise bad("no list of points")
+    seen: set[str] = set()
+    for k, q in enumerate(points, start=1):
+        if not isinstance(q, dict) or any(f not in q for f in POINT_FIELDS):
+            raise bad(f"point {k} is not a {{{', '.join(POINT_FIELDS)}}} entry")
+        pid = q["point_id"]
+        if not isinstance(pid, str) or not pid:
+            raise bad(f"point {k}: point_id {pid!r} is not a name")
+        if pid in seen:
+            raise bad(f"point_id {pid!r} appears twice")
+        seen.add(pid)
+        if q["stratum"] not in names:
+            raise bad(f"point {pid!r}: stratum {q['stratum']!r} is not one of the design's strata {names}")
+        if q["map_class"] not in MAP_CLASSES:
+            raise bad(f"point {pid!r}: map_class {q['map_class']!r} is not one of {list(MAP_CLASSES)}")
+        if not isinstance(q["tile"], str) or not all(_is_int(q[f]) for f in ("row", "col", "map_onset_year")):
+            raise bad(f"point {pid!r}: tile must be text and row, col and map_onset_year whole numbers")
+        if not _is_number(q["inclusion_probability"]) or not 0 < q["inclusion_probability"] <= 1:
+            raise bad(f"point {pid!r}: inclusion_probability {q['inclusion_probability']!r} is not in (0, 1]")
+    return doc

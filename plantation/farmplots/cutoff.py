@@ -1,6 +1,6 @@
 """The farm-plot cutoff report: for each plot, how much of it the map says was converted after a cutoff date.
 
-Input: a mapped region (the folder ``scripts/map.py`` writes: one COG per
+Input: a mapped region (the folder ``plantation map`` writes: one COG per
 tile with the bands of :data:`plantation.mapping.folder.LAYERS`, and its
 ``manifest.json``) and a vector file of farm plots (GeoPackage or GeoJSON
 polygons, any CRS, an id attribute).
@@ -61,12 +61,14 @@ import rasterio.windows
 import shapely
 from pyproj import CRS, Geod, Transformer
 
-from plantation.errors import ConfigError, InputNotFoundError, PlantationError
+from plantation.errors import ConfigError, FileFormatError, InputNotFoundError, PlantationError
 from plantation.imagery.config import RegionConfig
 from plantation.mapping.folder import BAND, NODATA, NOTICE, MapTile, file_digest, open_map
 from plantation.reference.labels import LABEL_CODES
 
 KIND = "plantation-plots/1"
+#: The plot check's record, written by :func:`run` and read by :func:`read_plots_json` (this module is its one reader and writer).
+PLOTS_JSON = "plots.json"
 VERDICTS: tuple[str, ...] = ("low_evidence", "review", "strong_evidence")
 #: Per-plot problems, in the order they are checked (a plot gets the first that applies).
 PROBLEMS: tuple[str, ...] = ("missing_id", "duplicate_id", "empty_geometry", "not_a_polygon", "invalid_geometry", "outside_map")
@@ -279,7 +281,7 @@ def read_plots(path: str | Path, id_field: str = "id") -> PlotSet:
 
     path = Path(path)
     if not path.exists():
-        raise InputNotFoundError(f"{path}: plots file does not exist")
+        raise InputNotFoundError(f"{Path(path).absolute()}: plots file does not exist")
     if path.suffix.lower() not in _VECTOR_SUFFIXES:
         raise PlantationError(f"{path}: unsupported plots format {path.suffix!r}; use .gpkg or .geojson")
     try:
@@ -635,7 +637,7 @@ def _write_geojson(rows: Sequence[PlotRow], table: pd.DataFrame, dest: Path) -> 
 def write_outputs(result_rows: Sequence[PlotRow], doc: dict[str, Any], out_dir: Path) -> dict[str, Path]:
     """Write plots.csv, plots.geojson and plots.json into ``out_dir``, each under a ``.partial`` name first."""
     out_dir.mkdir(parents=True, exist_ok=True)
-    names = {"csv": out_dir / "plots.csv", "geojson": out_dir / "plots.geojson", "json": out_dir / "plots.json"}
+    names = {"csv": out_dir / "plots.csv", "geojson": out_dir / "plots.geojson", "json": out_dir / PLOTS_JSON}
     tmps = {k: p.with_name(p.name + ".partial") for k, p in names.items()}
     table = _table(result_rows)
     try:
@@ -649,6 +651,42 @@ def write_outputs(result_rows: Sequence[PlotRow], doc: dict[str, Any], out_dir: 
         for t in tmps.values():
             t.unlink(missing_ok=True)
     return names
+
+
+def read_plots_json(path: str | Path) -> dict[str, Any]:
+    """``plots.json`` as :func:`run` wrote it.
+
+    Args:
+        path: the file, or the folder holding it (``out_dir`` of the plot check).
+
+    Raises:
+        InputNotFoundError: there is no such file.
+        FileFormatError: it is not valid JSON, not a plot check (its ``kind``), or
+            a section has the wrong shape; one line naming the file.
+    """
+    p = Path(path)
+    if p.is_dir():
+        p = p / PLOTS_JSON
+    if not p.is_file():
+        raise InputNotFoundError(f"{p.absolute()}: plots.json not found; run `plantation farmplots` to write it")
+    again = "write it again with `plantation farmplots`"
+    try:
+        doc = json.loads(p.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        why = f"{exc.msg}, line {exc.lineno}" if isinstance(exc, json.JSONDecodeError) else "not UTF-8 text"
+        raise FileFormatError(f"{p}: not valid JSON ({why}); {again}") from None
+    if not isinstance(doc, dict):
+        raise FileFormatError(f"{p}: holds a JSON {type(doc).__name__}, not a plot check; is this the right file?")
+    if doc.get("kind") != KIND:
+        raise FileFormatError(f"{p}: kind {doc.get('kind')!r}, expected {KIND!r}; is this the right file?")
+    for k, kind in (("cutoff", dict), ("thresholds", dict), ("counts", dict), ("plots", list), ("problems", list)):
+        if doc.get(k) is not None and not isinstance(doc[k], kind):
+            raise FileFormatError(f"{p}: {k!r} is a JSON {type(doc[k]).__name__}, expected {'an object' if kind is dict else 'a list'}; the file was edited or damaged, {again}")
+    for k in ("plots", "problems"):
+        for i, entry in enumerate(doc.get(k) or [], start=1):
+            if not isinstance(entry, dict):
+                raise FileFormatError(f"{p}: {k} entry {i} is a JSON {type(entry).__name__}, expected an object; the file was edited or damaged, {again}")
+    return doc
 
 
 def _earlier_cover(readers: Sequence[TileReader], k: int) -> Any:

@@ -5,10 +5,11 @@ bands of :data:`LAYERS` (all int16, nodata :data:`NODATA`, probabilities
 scaled by :data:`SCALE`), a QGIS style and quicklook per tile, and
 ``manifest.json``, which records each finished tile's file, sha256, key and
 areas. This module is the one place that knows that format: the mapping job
-writes it through :class:`Manifest`; sampling, assessment, the farm-plot
-check and the report read it through :func:`open_map`, so they agree on which
-tiles exist and refuse a map changed after it was made. It never imports
-torch.
+writes it through :class:`Manifest`; sampling, assessment and the farm-plot
+check read it through :func:`open_map`, so they agree on which tiles exist
+and refuse a map changed after it was made; the report, which must build
+without a map folder, through :func:`read_manifest` (the one parser of the
+file, which the other two use too). It never imports torch.
 
 Output layers:
 
@@ -45,10 +46,12 @@ from typing import Any
 import rasterio
 
 from plantation import __version__
-from plantation.errors import InputNotFoundError, PlantationError, RegionError
+from plantation.errors import FileFormatError, InputNotFoundError, PlantationError, RegionError
 from plantation.imagery.region import Grid
 
 FORMAT = "plantation-map/1"
+#: The manifest's file name in a mapped region folder.
+MANIFEST = "manifest.json"
 NODATA = -32768
 #: Scaled layers store round(value / SCALE).
 SCALE = 1e-4
@@ -107,6 +110,50 @@ def file_digest(paths: Sequence[Path]) -> str:
 
 
 
+def read_manifest(path: str | Path) -> dict[str, Any] | None:
+    """``manifest.json`` of a mapped region as written, or None when there is none.
+
+    Tolerant of absence (a region not mapped yet; a report built without its
+    map folder), strict about content. The one reader of the file: the
+    mapping job (:class:`Manifest`), :func:`open_map` and the report use it.
+
+    Args:
+        path: the mapped region folder, or the manifest file itself (a path ending in ``.json``).
+
+    Returns:
+        ``{"format": ..., "producer": ..., "tiles": {name: entry}}``, each
+        entry an object with at least ``file``; None if the file does not exist.
+
+    Raises:
+        FileFormatError: it is not valid JSON, not a map manifest (its
+            ``format``), or a tile entry is malformed; one line naming the file.
+    """
+    p = Path(path)
+    if p.suffix.lower() != ".json":
+        p = p / MANIFEST
+    if not p.is_file():
+        return None
+    again = "delete it and map the region again with `plantation map`"
+    try:
+        raw = json.loads(p.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        why = f"{exc.msg}, line {exc.lineno}" if isinstance(exc, json.JSONDecodeError) else "not UTF-8 text"
+        raise FileFormatError(f"{p}: not valid JSON ({why}); {again}") from None
+    if not isinstance(raw, dict) or raw.get("format") != FORMAT:
+        got = raw.get("format") if isinstance(raw, dict) else f"a JSON {type(raw).__name__}"
+        raise FileFormatError(f"{p}: format {got!r}, expected {FORMAT!r} (a manifest written by `plantation map`); is this a mapped region folder?")
+    tiles = raw.setdefault("tiles", {})
+    if not isinstance(tiles, dict):
+        raise FileFormatError(f"{p}: 'tiles' is a JSON {type(tiles).__name__}, expected an object; {again}")
+    for name, e in tiles.items():
+        if not isinstance(e, dict) or not isinstance(e.get("file"), str) or not e["file"]:
+            raise FileFormatError(f"{p}: tile {name!r} has no 'file' entry; {again}")
+        conv = e.get("converted_ha", {})
+        if not isinstance(conv, dict) or not all(str(y).strip().lstrip("-").isdigit() and isinstance(a, int | float) and not isinstance(a, bool) for y, a in conv.items()):
+            raise FileFormatError(f"{p}: tile {name!r} has a 'converted_ha' that is not {{year: hectares}}; {again}")
+    return raw
+
+
 class Manifest:
     """``manifest.json`` in the output folder: what made each finished tile.
 
@@ -116,15 +163,8 @@ class Manifest:
 
     def __init__(self, path: Path) -> None:
         self.path = path
-        self.tiles: dict[str, dict[str, Any]] = {}
-        if path.is_file():
-            try:
-                raw = json.loads(path.read_text())
-            except json.JSONDecodeError as exc:
-                raise PlantationError(f"{path}: not valid JSON ({exc.msg}, line {exc.lineno}); delete it to map every tile again") from None
-            if raw.get("format") != FORMAT:
-                raise PlantationError(f"{path}: format {raw.get('format')!r}, expected {FORMAT!r}")
-            self.tiles = raw.get("tiles", {})
+        raw = read_manifest(path)
+        self.tiles: dict[str, dict[str, Any]] = raw["tiles"] if raw is not None else {}
 
     def finished(self, name: str, key: str, folder: Path) -> TileResult | None:
         """The recorded result if tile ``name`` was finished with ``key`` and its file is intact."""
@@ -193,28 +233,24 @@ def open_map(folder: str | Path, *, verify: bool = True) -> MappedRegion:
     """Read ``manifest.json`` of a mapped region and check each tile's file.
 
     Args:
-        folder: the mapped region folder (``out_dir`` of scripts/map.py).
+        folder: the mapped region folder (``out_dir`` of `plantation map`).
         verify: compare every tile's bytes with the sha256 in the manifest.
 
     Raises:
         InputNotFoundError: no folder, manifest or tile file.
-        PlantationError: the manifest is not a map manifest; a file's bytes
-            differ from it; a tile lacks the mapped layers or the
-            ``cutoff_year`` tag; the tiles disagree on the cutoff year.
-        RegionError: a tile's grid is rotated or not north-up.
+        PlantationError: a file's bytes differ from the manifest; a tile
+            lacks the mapped layers or the ``cutoff_year`` tag; the tiles
+            disagree on the cutoff year.
+        FileFormatError: the manifest is malformed or not a map manifest
+            (:func:`read_manifest`); a tile's grid is rotated or not north-up.
     """
     folder = Path(folder)
-    man = folder / "manifest.json"
-    if not man.is_file():
-        raise InputNotFoundError(f"{folder}: no mapped region here (no manifest.json); map the region with scripts/map.py")
-    try:
-        raw = json.loads(man.read_text())
-    except json.JSONDecodeError as exc:
-        raise PlantationError(f"{man}: not valid JSON ({exc.msg}, line {exc.lineno})") from None
-    if raw.get("format") != FORMAT:
-        raise PlantationError(f"{man}: format {raw.get('format')!r}, expected {FORMAT!r} (a manifest written by scripts/map.py)")
-    if not raw.get("tiles"):
-        raise PlantationError(f"{man}: lists no finished tile; map the region with scripts/map.py")
+    man = folder / MANIFEST
+    raw = read_manifest(man)
+    if raw is None:
+        raise InputNotFoundError(f"{folder.absolute()}: no mapped region here (no manifest.json); map the region with `plantation map`")
+    if not raw["tiles"]:
+        raise PlantationError(f"{man}: lists no finished tile; map the region with `plantation map`")
     names = tuple(name for name, _, _ in LAYERS)
     band = BAND["p_after_cutoff"] - 1
     tiles: list[MapTile] = []
@@ -224,16 +260,16 @@ def open_map(folder: str | Path, *, verify: bool = True) -> MappedRegion:
         e = raw["tiles"][name]
         path = folder / e["file"]
         if not path.is_file():
-            raise InputNotFoundError(f"{path}: tile {name!r} of {man} is missing; map the region again with scripts/map.py")
+            raise InputNotFoundError(f"{path.absolute()}: tile {name!r} of {man} is missing; map the region again with `plantation map`")
         digest = sha256_of(path) if verify else str(e.get("sha256", ""))
         if verify and digest != e.get("sha256"):
             raise PlantationError(f"{path}: its bytes differ from the manifest (sha256); the map was changed after mapping, map it again")
         with rasterio.open(path) as src:
             if tuple(src.descriptions) != names:
-                raise PlantationError(f"{path}: bands {list(src.descriptions)}, expected {list(names)} (a map written by scripts/map.py)")
+                raise PlantationError(f"{path}: bands {list(src.descriptions)}, expected {list(names)} (a map written by `plantation map`)")
             tag = str(src.tags().get("cutoff_year", "")).strip()
             if not tag.lstrip("-").isdigit():
-                raise PlantationError(f"{path}: no cutoff_year tag; map the region again with scripts/map.py")
+                raise PlantationError(f"{path}: no cutoff_year tag; map the region again with `plantation map`")
             grid = Grid(src.crs, src.transform, src.height, src.width)
             tile = MapTile(name, path, digest, grid, int(tag), float(src.scales[band]), float(src.offsets[band]))
         t = grid.transform

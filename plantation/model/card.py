@@ -18,7 +18,7 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
-from plantation.errors import InputNotFoundError, PlantationError
+from plantation.errors import FileFormatError, InputNotFoundError
 
 FORMAT = "plantation-model/1"
 CARD = "model.json"
@@ -104,15 +104,15 @@ def read_card(folder: str | Path) -> ModelCard:
     try:
         raw = json.loads(meta.read_text())
     except json.JSONDecodeError as exc:
-        raise PlantationError(f"{meta}: not valid JSON ({exc.msg}, line {exc.lineno})") from None
+        raise FileFormatError(f"{meta}: not valid JSON ({exc.msg}, line {exc.lineno})") from None
     if not isinstance(raw, dict) or raw.get("format") != FORMAT:
         got = raw.get("format") if isinstance(raw, dict) else None
-        raise PlantationError(f"{meta}: format {got!r}, expected {FORMAT!r}")
+        raise FileFormatError(f"{meta}: format {got!r}, expected {FORMAT!r}")
     try:
         raw["calibration"] = Calibration(**raw["calibration"])
         return ModelCard(**raw)
     except (TypeError, KeyError) as exc:
-        raise PlantationError(f"{meta}: not a complete model card ({exc})") from None
+        raise FileFormatError(f"{meta}: not a complete model card ({exc})") from None
 
 
 def write_validation(folder: str | Path, record: dict[str, Any]) -> Path:
@@ -136,4 +136,4 @@ def read_validation(folder: str | Path) -> dict[str, Any] | None:
     try:
         return json.loads(path.read_text())
     except json.JSONDecodeError as exc:
-        raise PlantationError(f"{path}: not valid JSON ({exc.msg}, line {exc.lineno})") from None
+        raise FileFormatError(f"{path}: not valid JSON ({exc.msg}, line {exc.lineno})") from None

@@ -8,7 +8,11 @@ with matplotlib (Agg) and embedded as data URIs; the CSS is inline; there is
 no script at all, and a Content-Security-Policy forbids the page to load
 anything from anywhere, so what a reviewer sees offline is all there is.
 
-Every string that comes from a JSON file is escaped with :func:`html.escape`
+The JSON files are read by the modules that write them
+(:func:`plantation.assessment.assess.read_assessment`,
+:func:`plantation.farmplots.cutoff.read_plots_json`,
+:func:`plantation.mapping.folder.read_manifest`); this page only presents
+them. Every string that comes from a JSON file is escaped with :func:`html.escape`
 before it reaches the page: an id like ``<script>`` stays text. A section
 whose input is missing says so in one line instead of failing, so a report
 can be written after the assessment and before the plot check, or the other
@@ -19,7 +23,6 @@ from __future__ import annotations
 
 import base64
 import html
-import json
 import math
 import os
 from collections.abc import Iterable, Mapping, Sequence
@@ -30,14 +33,14 @@ from typing import Any
 import rasterio
 
 from plantation import __version__
-from plantation.errors import PlantationError
-from plantation.mapping.folder import NOTICE, sha256_of
+from plantation.assessment.assess import ASSESSMENT_NAME, read_assessment
+from plantation.errors import FileFormatError, PlantationError
+from plantation.farmplots.cutoff import PLOTS_JSON, read_plots_json
+from plantation.mapping.folder import MANIFEST, NOTICE, read_manifest, sha256_of
 from plantation.mapping.styles import CLASS_STYLE
 from plantation.reference.labels import LABEL_CODES
 from plantation.report import figures
 
-ASSESSMENT_KIND = "plantation-assessment/1"
-PLOTS_KIND = "plantation-plots/1"
 REPORT_NAME = "report.html"
 
 #: Reference/map class name → words a reader understands.
@@ -172,19 +175,6 @@ def _notrun(text: str) -> str:
 
 
 # --------------------------------------------------------------------------- inputs
-
-
-def _load(path: Path, kind: str) -> dict[str, Any] | None:
-    if not path.is_file():
-        return None
-    try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except json.JSONDecodeError as exc:
-        raise PlantationError(f"{path}: not valid JSON ({exc.msg}, line {exc.lineno}); write it again with the job that made it") from None
-    if not isinstance(data, dict) or data.get("kind") != kind:
-        got = data.get("kind") if isinstance(data, dict) else type(data).__name__
-        raise PlantationError(f"{path}: kind {got!r}, expected {kind!r}; is this the right file?")
-    return data
 
 
 def _locate(value: Any, folder: Path) -> Path | None:
@@ -561,7 +551,7 @@ def _plots_section(p: dict[str, Any] | None) -> str:
     )
 
 
-def _provenance_section(a: dict[str, Any] | None, p: dict[str, Any] | None, folder: Path, map_dir: Path | None, generated: str) -> str:
+def _provenance_section(a: dict[str, Any] | None, p: dict[str, Any] | None, folder: Path, map_dir: Path | None, generated: str, manifest_problem: str | None = None) -> str:
     head = '<section id="provenance"><h2>6. Provenance</h2>'
     rows: list[tuple[str, str]] = []
     prov = (a or {}).get("provenance") or {}
@@ -579,9 +569,11 @@ def _provenance_section(a: dict[str, Any] | None, p: dict[str, Any] | None, fold
             ("reference sample file", f"<code>{esc(_short_path(s.get('path')))}</code> ({esc(s.get('n', DASH))} points)"),
             ("reference sample sha256", f'<span class="hash">{esc(s.get("sha256") or DASH)}</span>' + _check(_locate(s.get("path"), folder), s.get("sha256"))),
         ]
-        mf = map_dir / "manifest.json" if map_dir is not None else None
+        mf = map_dir / MANIFEST if map_dir is not None else None
         rows.append(("map manifest sha256", f'<span class="hash">{esc(prov.get("map_manifest_sha256") or DASH)}</span>' + _check(mf, prov.get("map_manifest_sha256"))))
         rows.append(("assessment generated", _day(a.get("generated"))))
+    if manifest_problem:
+        rows.append(("map manifest", f'<span class="bad">unreadable, left out: {esc(manifest_problem)}</span>'))
     if p is not None:
         rows += [
             ("plots file", f"<code>{esc(_short_path(p.get('plots_file')))}</code>"),
@@ -612,27 +604,29 @@ def _cautions_section(simulated: bool) -> str:
     return '<section id="cautions"><h2>7. Cautions: what the map can and cannot show</h2><ul class="cautions">' + "".join(f"<li>{i}</li>" for i in items) + "</ul></section>"
 
 
-def _manifest_dates(map_dir: Path | None) -> str | None:
-    if map_dir is None or not (map_dir / "manifest.json").is_file():
-        return None
+def _manifest(map_dir: Path | None) -> tuple[dict[str, Any] | None, str | None]:
+    """The map folder's manifest (None without one) and, if it is malformed, why: the report is built without it then."""
+    if map_dir is None:
+        return None, None
     try:
-        tiles = json.loads((map_dir / "manifest.json").read_text()).get("tiles", {})
-    except (json.JSONDecodeError, AttributeError):
-        return None
-    days = sorted(str(t.get("finished"))[:10] for t in tiles.values() if isinstance(t, dict) and t.get("finished"))
+        return read_manifest(map_dir), None
+    except FileFormatError as exc:
+        return None, str(exc)
+
+
+def _manifest_dates(manifest: dict[str, Any] | None) -> str | None:
+    """The day (or range of days) the map's tiles were finished."""
+    tiles = (manifest or {}).get("tiles", {})
+    days = sorted(str(t.get("finished"))[:10] for t in tiles.values() if t.get("finished"))
     if not days:
         return None
     return days[0] if days[0] == days[-1] else f"{days[0]} to {days[-1]}"
 
 
-def _manifest_years(map_dir: Path | None) -> list[int]:
-    if map_dir is None or not (map_dir / "manifest.json").is_file():
-        return []
-    try:
-        tiles = json.loads((map_dir / "manifest.json").read_text()).get("tiles", {})
-        return sorted({int(y) for t in tiles.values() for y in (t.get("converted_ha") or {})})
-    except (json.JSONDecodeError, AttributeError, ValueError, TypeError):
-        return []
+def _manifest_years(manifest: dict[str, Any] | None) -> list[int]:
+    """The onset years the map's tiles can hold (read_manifest checked they are years)."""
+    tiles = (manifest or {}).get("tiles", {})
+    return sorted({int(y) for t in tiles.values() for y in t.get("converted_ha") or {}})
 
 
 # --------------------------------------------------------------------------- entry point
@@ -644,15 +638,18 @@ def build_report(folder: Path, *, map_dir: Path | None = None) -> Path:
     The map folder (for the quicklooks and the manifest check) is ``map_dir``
     if given, else the ``map_dir`` recorded in the assessment or the plot
     check (as given if absolute, else relative to ``folder`` or the working
-    directory). The page is self-contained and written atomically.
+    directory). The page is self-contained and written atomically. A
+    malformed ``manifest.json`` in the map folder does not stop the page: it
+    is left out and the provenance section says why.
 
     Raises:
-        PlantationError: the folder holds neither file, or one of them is not
-            valid JSON of the expected kind.
+        PlantationError: the folder holds neither file.
+        LabelError: ``assessment.json`` is malformed (:func:`plantation.assessment.assess.read_assessment`).
+        RegionError: ``plots.json`` is malformed (:func:`plantation.farmplots.cutoff.read_plots_json`).
     """
     folder = Path(folder)
-    a = _load(folder / "assessment.json", ASSESSMENT_KIND)
-    p = _load(folder / "plots.json", PLOTS_KIND)
+    a = read_assessment(folder / ASSESSMENT_NAME) if (folder / ASSESSMENT_NAME).is_file() else None
+    p = read_plots_json(folder / PLOTS_JSON) if (folder / PLOTS_JSON).is_file() else None
     if a is None and p is None:
         raise PlantationError(f"{folder}: neither assessment.json nor plots.json here; run the assessment or the plot check first")
     if map_dir is not None:
@@ -662,7 +659,8 @@ def build_report(folder: Path, *, map_dir: Path | None = None) -> Path:
 
     generated = datetime.now(UTC).isoformat(timespec="seconds")
     simulated = bool((a or {}).get("simulated_reference"))
-    years = sorted({int(r["year"]) for r in (a or {}).get("conversion_by_year") or [] if r.get("year") is not None} | set(_manifest_years(mdir)))
+    manifest, manifest_problem = _manifest(mdir)
+    years = sorted({int(r["year"]) for r in (a or {}).get("conversion_by_year") or [] if r.get("year") is not None} | set(_manifest_years(manifest)))
     cutoff = ((a or {}).get("after_cutoff") or {}).get("cutoff_year")
     if cutoff is None:
         cutoff = ((p or {}).get("cutoff") or {}).get("year")
@@ -672,11 +670,11 @@ def build_report(folder: Path, *, map_dir: Path | None = None) -> Path:
     dates: list[tuple[str, str]] = []
     if a is not None:
         dates.append(("assessment generated", _day(a.get("generated"))))
-    mapped = _manifest_dates(mdir)
+    mapped = _manifest_dates(manifest)
     if mapped:
         dates.append(("map tiles finished", esc(mapped)))
     if p is not None:
-        when = p.get("generated") or datetime.fromtimestamp((folder / "plots.json").stat().st_mtime, UTC).isoformat(timespec="seconds")
+        when = p.get("generated") or datetime.fromtimestamp((folder / PLOTS_JSON).stat().st_mtime, UTC).isoformat(timespec="seconds")
         dates.append(("plot check written", _day(when)))
         dates.append(("cutoff date", esc((p.get("cutoff") or {}).get("date", DASH))))
     elif cutoff is not None:
@@ -691,7 +689,7 @@ def build_report(folder: Path, *, map_dir: Path | None = None) -> Path:
             _accuracy_section(a),
             _validation_section(a),
             _plots_section(p),
-            _provenance_section(a, p, folder, mdir, generated),
+            _provenance_section(a, p, folder, mdir, generated, manifest_problem),
             _cautions_section(simulated),
         ]
     )
