@@ -33,7 +33,8 @@ def test_observability_on_the_toy_region_matches_a_pixel_by_pixel_count():
     from plantation.config import to_object
     from plantation.imagery.config import RegionConfig
     from plantation.imagery.region import open_region
-    from plantation.simulation.landscape import SimulationConfig, build_landscape, dates_of, decimal_year
+    from plantation.simulation.landscape import build_landscape
+    from plantation.simulation.scenario import SimulationConfig, dates_of, decimal_year
 
     cfg = compose_job("train", [], verb="train")
     sim = to_object(compose_job("simulate", [], verb="simulate").sim, SimulationConfig)

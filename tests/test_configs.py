@@ -11,7 +11,7 @@ from plantation.config import to_object
 from plantation.errors import ConfigError
 from plantation.imagery.config import RegionConfig
 from plantation.reference.survey import SurveyConfig
-from plantation.simulation.landscape import SimulationConfig, check_config
+from plantation.simulation.scenario import SimulationConfig, check_config
 
 CONFIGS = Path(__file__).resolve().parents[1] / "configs"
 

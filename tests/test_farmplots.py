@@ -457,7 +457,8 @@ def test_demo_plots_regenerate_from_the_truth(tmp_path):
 
     from plantation.cli.compose import register_configs
     from plantation.config import to_object
-    from plantation.simulation.landscape import SimulationConfig, _write_plots
+    from plantation.simulation.scenario import SimulationConfig
+    from plantation.simulation.writer import _write_plots
 
     register_configs()
     with initialize_config_dir(config_dir=str(ROOT / "configs"), version_base="1.3"):

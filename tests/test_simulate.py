@@ -20,7 +20,9 @@ from plantation.imagery.config import LabelsConfig, MaskConfig, RegionConfig, Sc
 from plantation.imagery.region import open_region
 from plantation.reference.labels import LABEL_CODES, read_labels
 from plantation.simulation import spectra
-from plantation.simulation.landscape import EVENTS, QA_CLOUD, SimulationConfig, Simulator, tile_names, write_region
+from plantation.simulation.landscape import Simulator
+from plantation.simulation.scenario import EVENTS, QA_CLOUD, SimulationConfig
+from plantation.simulation.writer import tile_names, write_region
 
 
 @pytest.fixture(scope="module")

@@ -38,7 +38,9 @@ from plantation.model.inference import predict_tile
 from plantation.model.outcomes import Outcomes, summarise
 from plantation.model.patches import PatchSet, features, year_of
 from plantation.model.training import TrainConfig, fit, load_region_samples, model_card
-from plantation.simulation.landscape import Landscape, SimulationConfig, build_landscape, dates_of, decimal_year, tile_names, write_region
+from plantation.simulation.landscape import Landscape, build_landscape
+from plantation.simulation.scenario import SimulationConfig, dates_of, decimal_year
+from plantation.simulation.writer import tile_names, write_region
 
 
 @dataclass

@@ -23,7 +23,8 @@ import numpy as np
 from plantation.imagery.config import MaskConfig, RegionConfig, ScalingRule, TileConfig
 from plantation.imagery.indices import ndvi
 from plantation.imagery.region import open_tile
-from plantation.simulation.landscape import BANDS, SimulationConfig, write_region
+from plantation.simulation.scenario import BANDS, SimulationConfig
+from plantation.simulation.writer import write_region
 
 
 @dataclass

@@ -41,7 +41,8 @@ from plantation.model.inference import read_window, windows
 from plantation.model.network import ConvRecurrentNet
 from plantation.model.patches import day_of_year_fraction, features, read_patches, year_of
 from plantation.model.training import TrainConfig, load_region_samples
-from plantation.simulation.landscape import SimulationConfig, write_region
+from plantation.simulation.scenario import SimulationConfig
+from plantation.simulation.writer import write_region
 
 
 @dataclass

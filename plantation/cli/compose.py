@@ -35,7 +35,7 @@ from omegaconf.errors import OmegaConfBaseException
 from plantation.errors import ConfigError, InputNotFoundError
 from plantation.imagery.config import RegionConfig
 from plantation.model.config import NetworkConfig, TrainerConfig, TrainingConfig
-from plantation.simulation.landscape import SimulationConfig
+from plantation.simulation.scenario import SimulationConfig
 
 #: Environment variable naming the user's own config folders (``os.pathsep``-separated).
 CONFIG_DIR_ENV = "PLANTATION_CONFIG_DIR"

@@ -102,7 +102,8 @@ def farmplots(cfg: DictConfig) -> None:
 
 
 def simulate(cfg: DictConfig) -> None:
-    from plantation.simulation.landscape import SimulationConfig, write_region
+    from plantation.simulation.scenario import SimulationConfig
+    from plantation.simulation.writer import write_region
 
     out = write_region(to_object(cfg.sim, SimulationConfig), cfg.out, progress=cfg.progress)
     print(f"simulated region written to {out}/")

@@ -13,7 +13,7 @@ window with the same result as a small one would give for the same pixels:
    followed by forest regrowth, forest cleared for crops or pasture, estate
    roads, rivers.
 2. **Trajectories** (:func:`surface_state`): per pixel and date, the canopy
-   drivers of :mod:`plantation.spectra` (LAI, vigour, soil brightness,
+   drivers of :mod:`plantation.simulation.spectra` (LAI, vigour, soil brightness,
    tree-crop cover fraction) with seasonality and year-to-year anomalies.
 3. **Spectra**: PROSAIL band reflectance, mixed at class edges by the sensor's
    point-spread function.
@@ -23,7 +23,7 @@ window with the same result as a small one would give for the same pixels:
    fixed offset in the stored integers, to be removed by the region's
    scaling rules).
 
-Outputs (:func:`write_region`): per tile, ``imagery/YYYY-MM-DD.tif`` (int16,
+Outputs (:func:`plantation.simulation.writer.write_region`): per tile, ``imagery/YYYY-MM-DD.tif`` (int16,
 bands blue…swir2 as reflectance × 10000, then a QA band: bit 0 cloud, bit 1
 shadow, bit 2 fill), ``truth.tif`` (int32 bands: class, onset_year, event,
 event_year, parcel), plus region-wide ``labels.csv`` (a stratified reference
@@ -32,149 +32,29 @@ sample with interpreter errors) and ``labels_truth.csv``.
 
 from __future__ import annotations
 
-import hashlib
-import json
-import shutil
 from collections.abc import Iterator
-from dataclasses import asdict, dataclass, field
-from datetime import date, timedelta
-from pathlib import Path
+from dataclasses import dataclass, field
+from datetime import date
 from typing import Any
 
 import numpy as np
-import pandas as pd
-import rasterio
 import shapely
 from affine import Affine
 from rasterio.features import rasterize
-from rasterio.windows import Window
 from scipy.ndimage import gaussian_filter
 
-from plantation.errors import ConfigError
-from plantation.reference.labels import LABEL_CODES, LABEL_NAMES
+from plantation.reference.labels import LABEL_CODES
+from plantation.simulation.scenario import _CLASS_OF_EVENT, EVENTS, QA_CLOUD, QA_FILL, QA_SHADOW, SimulationConfig, check_config, dates_of, decimal_year
 from plantation.simulation.spectra import CLOUD, HAZE, WATER, SpectralTable, default_table
 
-BANDS: tuple[str, ...] = ("blue", "green", "red", "nir", "swir1", "swir2")
 
-#: Event codes of the truth raster's ``event`` band.
-EVENTS: dict[str, int] = {
-    "none": 0,
-    "estate_conversion": 1,
-    "holding_conversion": 2,
-    "logging": 3,
-    "fire_regrowth": 4,
-    "cleared_for_crops": 5,
-    "cropland": 6,
-    "grassland": 7,
-    "water": 8,
-    "road": 9,
-    "old_plantation": 10,
-}
-
-#: Class of each event kind in the truth raster (codes of LABEL_CODES).
-_CLASS_OF_EVENT = {
-    "none": "stable_forest",
-    "estate_conversion": "conversion",
-    "holding_conversion": "conversion",
-    "logging": "stable_forest",
-    "fire_regrowth": "stable_forest",
-    "cleared_for_crops": "other",
-    "cropland": "other",
-    "grassland": "other",
-    "water": "other",
-    "road": "other",
-    "old_plantation": "old_plantation",
-}
-
-QA_CLOUD, QA_SHADOW, QA_FILL = 1, 2, 4
-
-
-@dataclass
-class SimulationConfig:
-    """Knobs of a simulated region (documented in ``configs/sim/*.yaml``)."""
-
-    name: str = "selvara_lowlands"
-    seed: int = 20130
-    tiles_x: int = 2
-    tiles_y: int = 1
-    tile_size: int = 192
-    pixel_size: float = 30.0
-    crs: str = "EPSG:32650"
-    origin_x: float = 604020.0
-    origin_y: float = 171990.0
-    first_year: int = 2013
-    last_year: int = 2024
-    composite_doys: list[int] = field(default_factory=lambda: [45, 136, 227, 318])
-    # Landscape, expected counts per 100 km² (a 192-px tile at 30 m is 33 km²).
-    estates_per_100km2: float = 9.0
-    estate_ha: list[float] = field(default_factory=lambda: [150.0, 450.0])
-    estate_spread_years: int = 3
-    holdings_per_100km2: float = 150.0
-    holding_ha: list[float] = field(default_factory=lambda: [1.0, 8.0])
-    old_estates_per_100km2: float = 3.0
-    logging_per_100km2: float = 40.0
-    fires_per_100km2: float = 25.0
-    cleared_for_crops_per_100km2: float = 40.0
-    cropland_per_100km2: float = 12.0
-    grassland_per_100km2: float = 12.0
-    rivers_per_100km2: float = 1.5
-    burn_share: float = 0.7
-    # Observation
-    cloud_share_by_month: list[float] = field(default_factory=lambda: [0.7, 0.68, 0.62, 0.5, 0.35, 0.25, 0.2, 0.22, 0.3, 0.45, 0.6, 0.7])
-    cloud_share_jitter: float = 0.08
-    fill_share_of_cloud: float = 0.3
-    haze_max: float = 0.08
-    noise_sigma: list[float] = field(default_factory=lambda: [0.003, 0.003, 0.003, 0.004, 0.004, 0.004])
-    noise_relative: float = 0.015
-    psf_sigma_px: float = 0.5
-    sensor_change: str = "2019-01-01"
-    sensor_gain: list[float] = field(default_factory=lambda: [1.02, 1.01, 1.03, 0.97, 1.015, 1.02])
-    sensor_offset: list[float] = field(default_factory=lambda: [0.004, 0.003, 0.002, -0.006, 0.004, 0.003])
-    processing_change: str = "2021-01-01"
-    processing_offset_dn: int = 1000
-    nodata: int = -9999
-    # Reference labels
-    n_labels: int = 3000
-    label_shares: dict[str, float] = field(default_factory=lambda: {"stable_forest": 0.35, "conversion": 0.35, "old_plantation": 0.1, "other": 0.2})
-    label_error: float = 0.05
-    # Writing
-    block: int = 256
-    zlevel: int = 9
-
-
-def check_config(cfg: SimulationConfig) -> None:
-    """Raise :class:`ConfigError` for inconsistent simulation settings."""
-    if cfg.last_year < cfg.first_year:
-        raise ConfigError(f"sim.last_year {cfg.last_year} is before sim.first_year {cfg.first_year}")
-    if len(cfg.cloud_share_by_month) != 12:
-        raise ConfigError(f"sim.cloud_share_by_month needs 12 values, got {len(cfg.cloud_share_by_month)}")
-    for key in ("noise_sigma", "sensor_gain", "sensor_offset"):
-        if len(getattr(cfg, key)) != len(BANDS):
-            raise ConfigError(f"sim.{key} needs {len(BANDS)} values (one per band), got {len(getattr(cfg, key))}")
-    if set(cfg.label_shares) - set(LABEL_NAMES):
-        raise ConfigError(f"sim.label_shares: unknown label(s) {sorted(set(cfg.label_shares) - set(LABEL_NAMES))}")
-    if not 0 <= cfg.label_error < 1:
-        raise ConfigError(f"sim.label_error must be in [0, 1), got {cfg.label_error}")
-    if any(not 1 <= d <= 365 for d in cfg.composite_doys):
-        raise ConfigError(f"sim.composite_doys must lie in 1..365, got {list(cfg.composite_doys)}")
-    if cfg.block % 16:
-        raise ConfigError(f"sim.block must be a multiple of 16 (GeoTIFF tiling), got {cfg.block}")
-
-
-def dates_of(cfg: SimulationConfig) -> list[date]:
-    """Composite dates: every ``composite_doys`` day of every year."""
-    return [date(y, 1, 1) + timedelta(days=d - 1) for y in range(cfg.first_year, cfg.last_year + 1) for d in cfg.composite_doys]
-
-
-def decimal_year(d: date) -> float:
-    """Calendar year plus the fraction of it elapsed at noon of ``d``."""
-    start = date(d.year, 1, 1)
-    length = (date(d.year + 1, 1, 1) - start).days
-    return d.year + ((d - start).days + 0.5) / length
+def _fill_margin(share: float) -> float:
+    """Field excess over the cloud threshold beyond which a cloud is a data gap."""
+    return float(np.interp(share, [0.0, 0.3, 1.0], [3.0, 0.6, 0.0]))
 
 
 # --------------------------------------------------------------------------- #
-# Smooth random fields, window-independent
+# Writing
 # --------------------------------------------------------------------------- #
 
 
@@ -657,298 +537,3 @@ class Simulator:
         return np.stack([cls, onset, kind, yr, pid]).astype(np.int32)
 
 
-def _fill_margin(share: float) -> float:
-    """Field excess over the cloud threshold beyond which a cloud is a data gap."""
-    return float(np.interp(share, [0.0, 0.3, 1.0], [3.0, 0.6, 0.0]))
-
-
-# --------------------------------------------------------------------------- #
-# Writing
-# --------------------------------------------------------------------------- #
-
-
-def _profile(cfg: SimulationConfig, ti: int, tj: int, count: int, dtype: str, nodata: float | None) -> dict:
-    transform = Affine(cfg.pixel_size, 0, cfg.origin_x + tj * cfg.tile_size * cfg.pixel_size, 0, -cfg.pixel_size, cfg.origin_y - ti * cfg.tile_size * cfg.pixel_size)
-    block = min(cfg.block, 256)
-    tiled = cfg.tile_size >= block
-    prof = {
-        "driver": "GTiff",
-        "width": cfg.tile_size,
-        "height": cfg.tile_size,
-        "count": count,
-        "dtype": dtype,
-        "crs": cfg.crs,
-        "transform": transform,
-        "nodata": nodata,
-        "compress": "deflate",
-        "predictor": 2,
-        "zlevel": cfg.zlevel,
-        "interleave": "pixel",
-    }
-    if tiled:
-        prof.update(tiled=True, blockxsize=block, blockysize=block)
-    else:
-        prof.update(tiled=False, blockysize=16)
-    return prof
-
-
-def tile_names(cfg: SimulationConfig) -> list[tuple[str, int, int]]:
-    """(name, tile row, tile col) for every tile, row-major."""
-    return [(f"t{ti * cfg.tiles_x + tj + 1:02d}", ti, tj) for ti in range(cfg.tiles_y) for tj in range(cfg.tiles_x)]
-
-
-def write_region(cfg: SimulationConfig, out: str | Path, *, progress: bool = True, table: SpectralTable | None = None) -> Path:
-    """Simulate a region and write it under ``out`` (see the module docstring).
-
-    The region is written into a temporary sibling folder and renamed into
-    place when complete, so an interrupted run leaves no half region behind.
-    Existing contents of ``out`` are replaced.
-
-    Returns:
-        The output folder.
-    """
-    out = Path(out)
-    sim = Simulator(cfg, table)
-    tmp = out.with_name(out.name + ".partial")
-    if tmp.exists():
-        shutil.rmtree(tmp)
-    tmp.mkdir(parents=True)
-    from tqdm import tqdm
-
-    tiles = tile_names(cfg)
-    n_blocks = int(np.ceil(cfg.tile_size / cfg.block)) ** 2
-    bar = tqdm(total=len(tiles) * n_blocks, desc="simulating windows", unit="win", disable=not progress)
-    halo = sim.halo()
-    for ti_name, ti, tj in tiles:
-        tdir = tmp / ti_name / "imagery"
-        tdir.mkdir(parents=True)
-        prof = _profile(cfg, ti, tj, len(BANDS) + 1, "int16", cfg.nodata)
-        dsts = [rasterio.open(tdir / f"{d.isoformat()}.tif", "w", **prof) for d in sim.dates]
-        try:
-            for dst in dsts:
-                for b, name in enumerate(BANDS, 1):
-                    dst.set_band_description(b, name)
-                dst.set_band_description(len(BANDS) + 1, "qa")
-            with rasterio.open(tmp / ti_name / "truth.tif", "w", **{**_profile(cfg, ti, tj, 5, "int32", None), "nodata": None}) as tdst:
-                for b, name in enumerate(("class", "onset_year", "event", "event_year", "parcel"), 1):
-                    tdst.set_band_description(b, name)
-                for wr in range(0, cfg.tile_size, cfg.block):
-                    for wc in range(0, cfg.tile_size, cfg.block):
-                        h = min(cfg.block, cfg.tile_size - wr)
-                        w = min(cfg.block, cfg.tile_size - wc)
-                        r0, c0 = ti * cfg.tile_size + wr, tj * cfg.tile_size + wc
-                        win = Window(wc, wr, w, h)
-                        tdst.write(sim.truth(r0, c0, h, w), window=win)
-                        st = sim.static(r0 - halo, c0 - halo, h + 2 * halo, w + 2 * halo)
-                        for k, dst in enumerate(dsts):
-                            rng = np.random.default_rng(np.random.SeedSequence([cfg.seed, 3, r0, c0, k]))
-                            dn, qa = sim.window(r0, c0, h, w, k, rng, st)
-                            dst.write(dn, indexes=list(range(1, len(BANDS) + 1)), window=win)
-                            dst.write(qa.astype(np.int16), indexes=len(BANDS) + 1, window=win)
-                        bar.update(1)
-        finally:
-            for dst in dsts:
-                dst.close()
-    bar.close()
-    _write_labels(cfg, sim, tmp)
-    _write_plots(cfg, tmp)
-    (tmp / "simulation.json").write_text(json.dumps(asdict(cfg), indent=2, sort_keys=True) + "\n")
-    _write_manifest(tmp)
-    if out.exists():
-        shutil.rmtree(out)
-    tmp.rename(out)
-    return out
-
-
-def _write_labels(cfg: SimulationConfig, sim: Simulator, folder: Path) -> None:
-    """Stratified reference sample from the truth, with interpreter errors."""
-    from pyproj import Transformer
-
-    rng = np.random.default_rng(np.random.SeedSequence([cfg.seed, 4]))
-    frames = []
-    for name, _, _ in tile_names(cfg):
-        with rasterio.open(folder / name / "truth.tif") as src:
-            cls, onset = src.read(1), src.read(2)
-            transform = src.transform
-        rr, cc = np.nonzero(cls > 0)
-        frames.append(pd.DataFrame({"tile": name, "row": rr, "col": cc, "cls": cls[rr, cc], "onset": onset[rr, cc], "a": transform.a, "c": transform.c, "e": transform.e, "f": transform.f}))
-    pool = pd.concat(frames, ignore_index=True)
-    total = cfg.n_labels
-    shares = {k: v / sum(cfg.label_shares.values()) for k, v in cfg.label_shares.items()}
-    picks = []
-    for lab, share in shares.items():
-        idx = np.flatnonzero(pool["cls"].to_numpy() == LABEL_CODES[lab])
-        n = min(int(round(total * share)), idx.size)
-        picks.append(rng.choice(idx, n, replace=False))
-    s = pool.iloc[np.sort(np.concatenate(picks))].reset_index(drop=True)
-    # A point anywhere inside its pixel, away from the edges.
-    jx, jy = rng.uniform(0.2, 0.8, len(s)), rng.uniform(0.2, 0.8, len(s))
-    x = s["c"] + (s["col"] + jx) * s["a"]
-    y = s["f"] + (s["row"] + jy) * s["e"]
-    lon, lat = Transformer.from_crs(cfg.crs, "EPSG:4326", always_xy=True).transform(x.to_numpy(), y.to_numpy())
-    true_label = np.array(LABEL_NAMES)[s["cls"].to_numpy() - 1]
-    true_onset = s["onset"].to_numpy()
-    label = true_label.copy()
-    onset = true_onset.copy()
-    wrong = rng.uniform(size=len(s)) < cfg.label_error
-    for i in np.flatnonzero(wrong):
-        if label[i] == "conversion" and rng.uniform() < 0.5:
-            # A timing error: the interpreter saw the clearing a year off.
-            shift = rng.choice([-1, 1])
-            if not cfg.first_year <= onset[i] + shift <= cfg.last_year:
-                shift = -shift
-            onset[i] = onset[i] + shift
-        else:
-            label[i] = rng.choice([n for n in LABEL_NAMES if n != label[i]])
-            onset[i] = int(rng.integers(cfg.first_year, cfg.last_year + 1)) if label[i] == "conversion" else 0
-    onset_text = np.where(label == "conversion", onset.astype(str), "")
-    pd.DataFrame({"x": np.round(lon, 7), "y": np.round(lat, 7), "label": label, "onset_year": onset_text}).to_csv(folder / "labels.csv", index=False, lineterminator="\n")
-    pd.DataFrame(
-        {
-            "tile": s["tile"],
-            "row": s["row"],
-            "col": s["col"],
-            "label": label,
-            "onset_year": np.where(label == "conversion", onset, 0),
-            "true_label": true_label,
-            "true_onset_year": true_onset,
-            "is_error": wrong,
-        }
-    ).to_csv(folder / "labels_truth.csv", index=False, lineterminator="\n")
-
-
-def _write_plots(cfg: SimulationConfig, folder: Path) -> None:
-    """Fictional farm plots over the region: ``plots.geojson`` (EPSG:4326, RFC 7946), for ``plantation farmplots``.
-
-    Outlines are parcels of the truth ``parcel`` band, polygonised (whole
-    across tile seams), simplified and shifted by a few metres so their edges
-    cut across pixels. About 40 plots: holdings and estate blocks converted
-    up to and after 2020 (the demo's cutoff year), old-plantation blocks,
-    forest logged or burnt that regrew, forest cleared for crops, rotated
-    squares of untouched forest, and one plot across the seam of the first
-    two tiles. Attributes: ``id`` (``SLV-P0001``, ...) and ``holder``, an
-    invented code. Same config, same bytes.
-    """
-    import logging
-
-    import pyogrio
-    import shapely.affinity
-    from pyproj import Transformer
-    from rasterio.features import shapes
-
-    cutoff = 2020  # calibration.cutoff_year's default, the cutoff the toy map is made with
-    rng = np.random.default_rng(np.random.SeedSequence([cfg.seed, 5]))
-    ts, px = cfg.tile_size, cfg.pixel_size
-    height, width = cfg.tiles_y * ts, cfg.tiles_x * ts
-    min_px, max_px = 8, 400  # 0.7-36 ha at 30 m: holding- to block-sized plots
-    pieces: dict[int, list[shapely.Geometry]] = {}
-    event_of: dict[int, int] = {}
-    year_of: dict[int, int] = {}
-    parcel_all = np.zeros((height, width), np.int32)
-    for name, ti, tj in tile_names(cfg):
-        with rasterio.open(folder / name / "truth.tif") as src:
-            _, _, event, event_year, parcel = src.read()
-            transform = src.transform
-        parcel_all[ti * ts : (ti + 1) * ts, tj * ts : (tj + 1) * ts] = parcel
-        # Every pixel of a parcel carries the parcel's event and year.
-        ids, first = np.unique(parcel, return_index=True)
-        for pid, k in zip(ids.tolist(), first.tolist(), strict=True):
-            event_of[pid], year_of[pid] = int(event.flat[k]), int(event_year.flat[k])
-        for geom, value in shapes(parcel, mask=parcel > 0, transform=transform, connectivity=4):
-            pieces.setdefault(int(value), []).append(shapely.geometry.shape(geom))
-
-    def outline(pid: int) -> shapely.Geometry:
-        # A parcel drawn over by later ones can be in fragments or holed: the
-        # plot is its largest piece, holes filled (a holder's boundary).
-        parts = shapely.get_parts(shapely.union_all(pieces[pid]))
-        return shapely.Polygon(max(parts, key=lambda p: p.area).exterior)
-
-    shapes_of = {pid: outline(pid) for pid in sorted(pieces)}
-    # Compact outlines only: what is left of a parcel drawn over by roads or
-    # later parcels can be a strip or a cross, not a plot anyone holds.
-    sized = [pid for pid, g in shapes_of.items() if min_px <= g.area / px**2 <= max_px and g.area >= 0.6 * g.convex_hull.area]
-    E = EVENTS
-    picks: list[shapely.Geometry] = []
-    used: set[int] = set()
-    if cfg.tiles_x > 1:
-        # At least 3 pixels on each side of the t01/t02 seam, so it still crosses once shifted.
-        x0, y0 = cfg.origin_x, cfg.origin_y
-        sides = [shapely.box(x0 + j * ts * px, y0 - ts * px, x0 + (j + 1) * ts * px, y0) for j in (0, 1)]
-        crossing = [p for p in sized if all(shapes_of[p].intersection(b).area >= 3 * px**2 for b in sides)]
-        for kinds in ((E["holding_conversion"],), (E["estate_conversion"],), tuple(E.values())):
-            cand = [p for p in crossing if event_of[p] in kinds]
-            if cand:
-                pid = int(rng.choice(cand))
-                used.add(pid)
-                picks.append(shapes_of[pid])
-                break
-    groups = (
-        (lambda p: event_of[p] == E["holding_conversion"] and year_of[p] <= cutoff, 9),
-        (lambda p: event_of[p] == E["holding_conversion"] and year_of[p] > cutoff, 9),
-        (lambda p: event_of[p] == E["estate_conversion"] and year_of[p] <= cutoff, 3),
-        (lambda p: event_of[p] == E["estate_conversion"] and year_of[p] > cutoff, 3),
-        (lambda p: event_of[p] == E["old_plantation"], 5),
-        (lambda p: event_of[p] in (E["logging"], E["fire_regrowth"]), 4),
-        (lambda p: event_of[p] == E["cleared_for_crops"], 2),
-    )
-    for keep, n in groups:
-        cand = [p for p in sized if p not in used and keep(p)]
-        for pid in rng.choice(cand, min(n, len(cand)), replace=False).tolist() if cand else []:
-            used.add(int(pid))
-            picks.append(shapes_of[int(pid)])
-    # Untouched forest: rotated squares over background pixels only.
-    squares, tries = 0, 0
-    while squares < 4 and tries < 500:
-        tries += 1
-        side = rng.uniform(6, 11)
-        r, c = rng.uniform(side, height - side), rng.uniform(side, width - side)
-        half = int(np.ceil(side * 0.75))
-        if parcel_all[max(int(r) - half, 0) : int(r) + half + 1, max(int(c) - half, 0) : int(c) + half + 1].any():
-            continue
-        sq = shapely.affinity.rotate(shapely.box(c - side / 2, r - side / 2, c + side / 2, r + side / 2), rng.uniform(0, 90))
-        picks.append(shapely.affinity.affine_transform(sq, [px, 0, 0, -px, cfg.origin_x, cfg.origin_y]))
-        squares += 1
-    plots = []
-    for g in picks:
-        # Edges off the pixel grid: a simplified outline, shifted a few metres.
-        g = g.simplify(rng.uniform(0.3, 0.7) * px)
-        g = shapely.affinity.translate(g, rng.uniform(-0.4, 0.4) * px, rng.uniform(-0.4, 0.4) * px)
-        g = shapely.make_valid(g)
-        parts = [p for p in shapely.get_parts(g) if p.geom_type == "Polygon"]
-        if parts:
-            plots.append(max(parts, key=lambda p: p.area))
-    order = rng.permutation(len(plots))
-    letters = np.array(list("ACEFHJKLMNPRTWXY"))
-    holders: list[str] = []
-    while len(holders) < 16:
-        code = f"{''.join(rng.choice(letters, 3))}-{int(rng.integers(10, 100))}"
-        if code not in holders:
-            holders.append(code)
-    to_wgs84 = Transformer.from_crs(cfg.crs, "EPSG:4326", always_xy=True)
-    geoms = [shapely.transform(plots[i], to_wgs84.transform, interleaved=False) for i in order]
-    ids = np.array([f"SLV-P{k + 1:04d}" for k in range(len(geoms))], dtype=object)
-    holder = np.array([holders[int(rng.integers(len(holders)))] for _ in geoms], dtype=object)
-    io_log = logging.getLogger("pyogrio._io")  # its INFO "Created N records" would reach a script's output
-    level = io_log.level
-    io_log.setLevel(max(level, logging.WARNING))
-    try:
-        pyogrio.raw.write(
-            folder / "plots.geojson",
-            np.array([shapely.to_wkb(g) for g in geoms], dtype=object),
-            [ids, holder],
-            ["id", "holder"],
-            layer="plots",
-            driver="GeoJSON",
-            geometry_type="Polygon",
-            crs="EPSG:4326",
-            layer_options={"RFC7946": "YES", "COORDINATE_PRECISION": "7"},
-        )
-    finally:
-        io_log.setLevel(level)
-
-
-def _write_manifest(folder: Path) -> None:
-    """SHA-256 of every file, so a regeneration can be checked byte for byte."""
-    files = sorted(p for p in folder.rglob("*") if p.is_file() and p.name != "MANIFEST.json")
-    digest = {str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest() for p in files}
-    (folder / "MANIFEST.json").write_text(json.dumps(digest, indent=1, sort_keys=True) + "\n")
