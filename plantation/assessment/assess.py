@@ -32,6 +32,7 @@ from plantation.errors import ConfigError, FileFormatError, InputNotFoundError, 
 from plantation.imagery.config import RegionConfig
 from plantation.mapping.folder import open_map, sha256_of
 from plantation.model.card import CARD, WEIGHTS, read_card, read_validation, resolve_model
+from plantation.records import check_shapes, load_object
 from plantation.reference.labels import LABEL_NAMES
 
 FORMAT = "plantation-assessment/1"
@@ -362,7 +363,6 @@ def run(cfg: AssessConfig, resolved_config: str | None = None, echo: Any = print
 
 #: Sections of assessment.json that, when present, must be JSON objects or lists (what the report walks through).
 _OBJECTS = ("error_matrix", "users", "producers", "area_ha", "after_cutoff", "timing", "sample", "provenance")
-_LISTS = ("classes", "map_classes", "conversion_by_year", "strata")
 
 
 def read_assessment(path: str | Path) -> dict[str, Any]:
@@ -382,23 +382,10 @@ def read_assessment(path: str | Path) -> dict[str, Any]:
     if not p.is_file():
         raise InputNotFoundError(f"{p.absolute()}: assessment.json not found; run `plantation assess` to write it")
     again = "write it again with `plantation assess`"
-    try:
-        doc = json.loads(p.read_text(encoding="utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        why = f"{exc.msg}, line {exc.lineno}" if isinstance(exc, json.JSONDecodeError) else "not UTF-8 text"
-        raise FileFormatError(f"{p}: not valid JSON ({why}); {again}") from None
-    if not isinstance(doc, dict):
-        raise FileFormatError(f"{p}: holds a JSON {type(doc).__name__}, not an assessment; is this the right file?")
+    doc = load_object(p, what="an assessment", again=again)
     if doc.get("kind") != FORMAT:
         raise FileFormatError(f"{p}: kind {doc.get('kind')!r}, expected {FORMAT!r}; is this the right file?")
-    for keys, kind in ((_OBJECTS, dict), (_LISTS, list)):
-        for k in keys:
-            if doc.get(k) is not None and not isinstance(doc[k], kind):
-                raise FileFormatError(f"{p}: {k!r} is a JSON {type(doc[k]).__name__}, expected {'an object' if kind is dict else 'a list'}; the file was edited or damaged, {again}")
-    for k in ("conversion_by_year", "strata"):
-        for i, entry in enumerate(doc.get(k) or [], start=1):
-            if not isinstance(entry, dict):
-                raise FileFormatError(f"{p}: {k} entry {i} is a JSON {type(entry).__name__}, expected an object; the file was edited or damaged, {again}")
+    check_shapes(p, doc, objects=_OBJECTS, lists=("classes", "map_classes"), records=("conversion_by_year", "strata"), again=again)
     return doc
 
 

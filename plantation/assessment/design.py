@@ -50,6 +50,7 @@ from plantation.errors import ConfigError, FileFormatError, InputNotFoundError, 
 from plantation.imagery.config import RegionConfig
 from plantation.imagery.region import Grid
 from plantation.mapping.folder import MappedRegion, MapTile, open_map, sha256_of
+from plantation.records import load_object
 from plantation.reference.labels import LABEL_CODES, LABEL_NAMES
 
 #: Version 2 keeps each point's bookkeeping (``points``) here instead of on the sheet.
@@ -493,13 +494,7 @@ def read_design(path: str | Path) -> dict[str, Any]:
     if not p.is_file():
         raise InputNotFoundError(f"{p.absolute()}: design.json not found (`plantation sample` writes it beside samples.csv; or set design=<its path>)")
     redraw = "draw the sample again with `plantation sample`"
-    try:
-        doc = json.loads(p.read_text(encoding="utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        why = f"{exc.msg}, line {exc.lineno}" if isinstance(exc, json.JSONDecodeError) else "not UTF-8 text"
-        raise FileFormatError(f"{p}: not valid JSON ({why}); restore the design.json written with the sample, or {redraw}") from None
-    if not isinstance(doc, dict):
-        raise FileFormatError(f"{p}: holds a JSON {type(doc).__name__}, not a sample design; point design= at the design.json written by `plantation sample`")
+    doc = load_object(p, what="a sample design", again=f"restore the design.json written with the sample, or {redraw}")
     kind = doc.get("kind")
     if kind == "plantation-sample-design/1":
         raise FileFormatError(f"{p}: a design of an older version ({kind!r}) that kept the map's classes on the interpreters' sheet and no per-point bookkeeping; {redraw} and label its blind sheet")

@@ -64,6 +64,7 @@ from pyproj import CRS, Geod, Transformer
 from plantation.errors import ConfigError, FileFormatError, InputNotFoundError, PlantationError
 from plantation.imagery.config import RegionConfig
 from plantation.mapping.folder import BAND, NODATA, NOTICE, MapTile, file_digest, open_map
+from plantation.records import check_shapes, load_object
 from plantation.reference.labels import LABEL_CODES
 
 KIND = "plantation-plots/1"
@@ -670,22 +671,10 @@ def read_plots_json(path: str | Path) -> dict[str, Any]:
     if not p.is_file():
         raise InputNotFoundError(f"{p.absolute()}: plots.json not found; run `plantation farmplots` to write it")
     again = "write it again with `plantation farmplots`"
-    try:
-        doc = json.loads(p.read_text(encoding="utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        why = f"{exc.msg}, line {exc.lineno}" if isinstance(exc, json.JSONDecodeError) else "not UTF-8 text"
-        raise FileFormatError(f"{p}: not valid JSON ({why}); {again}") from None
-    if not isinstance(doc, dict):
-        raise FileFormatError(f"{p}: holds a JSON {type(doc).__name__}, not a plot check; is this the right file?")
+    doc = load_object(p, what="a plot check", again=again)
     if doc.get("kind") != KIND:
         raise FileFormatError(f"{p}: kind {doc.get('kind')!r}, expected {KIND!r}; is this the right file?")
-    for k, kind in (("cutoff", dict), ("thresholds", dict), ("counts", dict), ("plots", list), ("problems", list)):
-        if doc.get(k) is not None and not isinstance(doc[k], kind):
-            raise FileFormatError(f"{p}: {k!r} is a JSON {type(doc[k]).__name__}, expected {'an object' if kind is dict else 'a list'}; the file was edited or damaged, {again}")
-    for k in ("plots", "problems"):
-        for i, entry in enumerate(doc.get(k) or [], start=1):
-            if not isinstance(entry, dict):
-                raise FileFormatError(f"{p}: {k} entry {i} is a JSON {type(entry).__name__}, expected an object; the file was edited or damaged, {again}")
+    check_shapes(p, doc, objects=("cutoff", "thresholds", "counts"), records=("plots", "problems"), again=again)
     return doc
 
 

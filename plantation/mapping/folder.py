@@ -48,6 +48,7 @@ import rasterio
 from plantation import __version__
 from plantation.errors import FileFormatError, InputNotFoundError, PlantationError, RegionError
 from plantation.imagery.region import Grid
+from plantation.records import load_object
 
 FORMAT = "plantation-map/1"
 #: The manifest's file name in a mapped region folder.
@@ -134,13 +135,9 @@ def read_manifest(path: str | Path) -> dict[str, Any] | None:
     if not p.is_file():
         return None
     again = "delete it and map the region again with `plantation map`"
-    try:
-        raw = json.loads(p.read_text(encoding="utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        why = f"{exc.msg}, line {exc.lineno}" if isinstance(exc, json.JSONDecodeError) else "not UTF-8 text"
-        raise FileFormatError(f"{p}: not valid JSON ({why}); {again}") from None
-    if not isinstance(raw, dict) or raw.get("format") != FORMAT:
-        got = raw.get("format") if isinstance(raw, dict) else f"a JSON {type(raw).__name__}"
+    raw = load_object(p, what="a map manifest", again=again)
+    if raw.get("format") != FORMAT:
+        got = raw.get("format")
         raise FileFormatError(f"{p}: format {got!r}, expected {FORMAT!r} (a manifest written by `plantation map`); is this a mapped region folder?")
     tiles = raw.setdefault("tiles", {})
     if not isinstance(tiles, dict):
