@@ -162,3 +162,13 @@ def test_new_region_writes_a_file_the_jobs_accept(tmp_path, tiny_values):
     # A second run does not replace the file unless asked.
     line = one_error_line(plantation("new-region", "mine", "--imagery", "delivery/imagery", "--out", str(out), cwd=tmp_path))
     assert str(out) in line
+
+
+def test_keys_are_checked_against_the_chosen_region(tmp_path, tiny_values):
+    region = write_user_region(tmp_path, tiny_values)
+    text = region.read_text().replace("  - {name: t1, path: imagery/t1}", "  - {name: t1, path: imagery/t1}\n  - {name: t2, path: imagery/t1}\n  - {name: t3, path: imagery/t1}")
+    region.write_text(text)
+    cfg = compose_job("survey", [f"region={region}", "region.tiles.2.name=third"], verb="survey")
+    assert [t.name for t in cfg.region.tiles] == ["t1", "t2", "third"]
+    with pytest.raises(ConfigError, match=r"survey: 'region.tiles.3.name': region.tiles has 3 items, numbered from 0"):
+        compose_job("survey", [f"region={region}", "region.tiles.3.name=x"], verb="survey")

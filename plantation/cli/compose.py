@@ -251,11 +251,8 @@ def compose_job(config_name: str, overrides: Sequence[str], *, verb: str, config
             group_args.append(text)
         else:
             key_args.append((o, text))
-    base = _compose(src, config_name, group_args, verb)
-    choices = base.hydra.runtime.choices
-    final = list(group_args)
-    if "region" in choices and choices.get("region") is not None:
-        chosen = region_value or str(choices["region"])
+    if defaults.get("region") is not None:
+        chosen = region_value or str(defaults["region"])
         if _looks_like_path(chosen):
             path = Path(os.path.expanduser(chosen))
         else:
@@ -264,7 +261,10 @@ def compose_job(config_name: str, overrides: Sequence[str], *, verb: str, config
                 raise ConfigError(f"{verb}: unknown region {chosen!r}; available: {', '.join(src.options('region')) or 'none'}; {src.where_user_files_go()}")
             path = found
         ConfigStore.instance().store(group="region", name=SELECTED_REGION, node=load_region_file(path))
-        final.append(f"region={SELECTED_REGION}")
+        group_args.append(f"region={SELECTED_REGION}")
+    # Keys are checked against the job as composed with the chosen options (a region of five tiles has tiles.4).
+    base = _compose(src, config_name, group_args, verb)
+    final = list(group_args)
     for o, text in key_args:
         key = o.key_or_group
         _check_key(base, key, verb)
