@@ -412,23 +412,19 @@ def test_read_plots_json_and_its_one_line_errors(tmp_path):
         assert "\n" not in str(err.value) and str(err.value).startswith(str(path))
 
 
-# ------------------------------------------------------------------ the script and the demo plots
+# ------------------------------------------------------------------ the command and the demo plots
 
 
 def test_config_composes_and_typos_are_errors():
-    from hydra import compose, initialize_config_dir
-
-    from plantation.cli.compose import register_configs
+    from plantation.cli.compose import compose_job
     from plantation.config import to_object
 
-    register_configs()
-    with initialize_config_dir(config_dir=str(ROOT / "configs"), version_base="1.3"):
-        cfg = to_object(compose(config_name="farmplots", overrides=["cutoff=2020-06-30", "verdict.strong_min_ha=1"]), PlotsConfig)
-        assert cfg.cutoff == "2020-06-30" and cfg.verdict.strong_min_ha == 1.0
-        assert cfg.map == f"outputs/maps/{cfg.region.name}" and cfg.out_dir == f"outputs/assess/{cfg.region.name}"
-        assert to_object(compose(config_name="farmplots", overrides=["cutoff=2020"]), PlotsConfig).cutoff == "2020"
-        with pytest.raises(ConfigError, match="strong_min"):
-            to_object(compose(config_name="farmplots", overrides=["+verdict.strong_min=1"]), PlotsConfig)
+    cfg = to_object(compose_job("farmplots", ["cutoff=2020-06-30", "verdict.strong_min_ha=1"], verb="farmplots"), PlotsConfig)
+    assert cfg.cutoff == "2020-06-30" and cfg.verdict.strong_min_ha == 1.0
+    assert cfg.map == f"outputs/maps/{cfg.region.name}" and cfg.out_dir == f"outputs/assess/{cfg.region.name}"
+    assert to_object(compose_job("farmplots", ["cutoff=2020"], verb="farmplots"), PlotsConfig).cutoff == "2020"
+    with pytest.raises(ConfigError, match=r"unknown key 'verdict.strong_min' \(did you mean 'verdict.strong_min_ha'\?\)"):
+        compose_job("farmplots", ["+verdict.strong_min=1"], verb="farmplots")
 
 
 def _script(*overrides: str) -> subprocess.CompletedProcess:
@@ -453,16 +449,12 @@ def test_script_on_a_tiny_map(tmp_path):
 
 def test_demo_plots_regenerate_from_the_truth(tmp_path):
     """toy_tiles/plots.geojson is what _write_plots makes of the toy truth rasters (byte for byte)."""
-    from hydra import compose, initialize_config_dir
-
-    from plantation.cli.compose import register_configs
+    from plantation.cli.compose import compose_job
     from plantation.config import to_object
     from plantation.simulation.scenario import SimulationConfig
     from plantation.simulation.writer import _write_plots
 
-    register_configs()
-    with initialize_config_dir(config_dir=str(ROOT / "configs"), version_base="1.3"):
-        sim = to_object(compose(config_name="simulate").sim, SimulationConfig)
+    sim = to_object(compose_job("simulate", [], verb="simulate").sim, SimulationConfig)
     for t in ("t01", "t02"):
         (tmp_path / t).mkdir()
         shutil.copy(ROOT / "toy_tiles" / t / "truth.tif", tmp_path / t / "truth.tif")

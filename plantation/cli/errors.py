@@ -1,10 +1,9 @@
-"""Helpers for the thin entry points in ``scripts/``."""
+"""A refused input as the command reports it: one line on stderr, exit status 1."""
 
 from __future__ import annotations
 
-import functools
 import sys
-from collections.abc import Callable, Iterator
+from collections.abc import Iterator
 from contextlib import contextmanager
 from typing import TypeVar
 
@@ -24,14 +23,3 @@ def user_errors() -> Iterator[None]:
     except PlantationError as exc:
         print(f"error: {exc}", file=sys.stderr)
         sys.exit(1)
-
-
-def guarded(fn: Callable[..., T]) -> Callable[..., T]:
-    """Decorator form of :func:`user_errors` for a Hydra task function."""
-
-    @functools.wraps(fn)
-    def wrapper(*args: object, **kwargs: object) -> T:
-        with user_errors():
-            return fn(*args, **kwargs)
-
-    return wrapper
