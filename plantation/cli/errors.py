@@ -5,11 +5,8 @@ from __future__ import annotations
 import sys
 from collections.abc import Iterator
 from contextlib import contextmanager
-from typing import TypeVar
 
 from plantation.errors import PlantationError
-
-T = TypeVar("T")
 
 
 @contextmanager
