@@ -214,7 +214,7 @@ def readme_with_blocks(path: Path) -> Path:
     return readme
 
 
-def config(tmp_path: Path, **kw: object) -> ReadmeConfig:
+def config(tmp_path: Path, *, check: bool = False) -> ReadmeConfig:
     return ReadmeConfig(
         region=RegionConfig(name="toy"),
         readme=str(tmp_path / "README.md"),
@@ -222,7 +222,7 @@ def config(tmp_path: Path, **kw: object) -> ReadmeConfig:
         map_dir=str(tmp_path / "maps"),
         assess_dir=str(tmp_path / "assess"),
         results_dir=str(tmp_path / "results"),
-        **kw,  # type: ignore[arg-type]
+        check=check,
     )
 
 

@@ -147,6 +147,12 @@ def benchmark_read(cfg: DictConfig) -> None:
     _write_json(res, rc.result)
 
 
+def readme_figures(cfg: DictConfig) -> None:
+    from plantation.benchmarks.readme import ReadmeConfig, run
+
+    print("\n".join(run(to_object(cfg, ReadmeConfig))))
+
+
 VERBS: dict[str, Verb] = {
     v.name: v
     for v in (
@@ -160,5 +166,6 @@ VERBS: dict[str, Verb] = {
         Verb("benchmark-accuracy", "benchmark_accuracy", "compare the model with the baselines on a held-out simulated region", benchmark_accuracy),
         Verb("benchmark-speed", "benchmark_speed", "time and measure the memory of mapping, side by side with the baselines", benchmark_speed),
         Verb("benchmark-read", "benchmark_read", "peak memory of reading a large stack window by window", benchmark_read),
+        Verb("readme-figures", "readme_figures", "rewrite the README's figure tables from the JSON the jobs wrote (check=true: only check)", readme_figures),
     )
 }
