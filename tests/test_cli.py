@@ -172,3 +172,10 @@ def test_keys_are_checked_against_the_chosen_region(tmp_path, tiny_values):
     assert [t.name for t in cfg.region.tiles] == ["t1", "t2", "third"]
     with pytest.raises(ConfigError, match=r"survey: 'region.tiles.3.name': region.tiles has 3 items, numbered from 0"):
         compose_job("survey", [f"region={region}", "region.tiles.3.name=x"], verb="survey")
+
+
+def test_python_dash_m_runs_the_same_command():
+    res = subprocess.run([sys.executable, "-m", "plantation", "mapp"], capture_output=True, text=True, timeout=120)
+    assert one_error_line(res) == "error: unknown verb 'mapp' (did you mean 'map'?); `plantation --help` lists them"
+    res = subprocess.run([sys.executable, "-m", "plantation", "--help"], capture_output=True, text=True, timeout=120)
+    assert res.returncode == 0 and "readme-figures" in res.stdout
