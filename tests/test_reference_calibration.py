@@ -1,8 +1,14 @@
-"""Calibration metrics against scikit-learn (sklearn.calibration.calibration_curve, sklearn.metrics.brier_score_loss).
+"""Calibration against scikit-learn (sklearn.calibration.calibration_curve, sklearn.metrics.brier_score_loss, sklearn.linear_model.LogisticRegression).
 
 scikit-learn's ``calibration_curve(strategy="uniform")`` gives the mean
 outcome and mean probability of each non-empty equal-width bin; the ECE is
 their absolute difference weighted by bin counts (Guo et al. 2017, eq. 3).
+
+The design-weighted recalibration is an unpenalised logistic regression of
+the outcome on logit(p) with ``sample_weight`` = 1/π: scikit-learn's
+``LogisticRegression(C=np.inf)`` (no penalty; the spelling
+of ``penalty=None`` from scikit-learn 1.8 on) maximises the same weighted
+likelihood.
 """
 
 from __future__ import annotations
@@ -10,9 +16,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from sklearn.calibration import calibration_curve
+from sklearn.linear_model import LogisticRegression
 from sklearn.metrics import brier_score_loss
 
-from plantation.model.calibration import expected_calibration_error
+from plantation.model.calibration import apply_recalibration, expected_calibration_error, fit_recalibration
 
 
 @pytest.mark.parametrize("seed", range(4))
@@ -40,3 +47,21 @@ def test_ece_is_zero_for_a_perfectly_calibrated_binning_and_brier_agrees():
     q = np.clip(p + 0.1, 0, 1)
     assert expected_calibration_error(q, y) == pytest.approx(0.1, abs=1e-12)
     assert brier_score_loss(y, q) > brier_score_loss(y, p)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_weighted_recalibration_matches_scikit_learn_logistic_regression(seed):
+    rng = np.random.default_rng(seed)
+    n = 1500
+    p = rng.beta(0.5, 2.0, n)
+    p[:3] = [0.0, 1.0, 1e-9]  # exercise the clipping (both sides clip the same way below)
+    y = rng.random(n) < np.clip(1.3 * p - 0.02, 0, 1)
+    weight = rng.choice([1.0, 4.0, 25.0], n)  # 1/pi of three strata
+    a, b = fit_recalibration(p, y, weight)
+    x = np.log(np.clip(p, 1e-6, 1 - 1e-6) / (1 - np.clip(p, 1e-6, 1 - 1e-6)))[:, None]
+    ref = LogisticRegression(C=np.inf, tol=1e-12, max_iter=10_000).fit(x, y, sample_weight=weight)
+    assert a == pytest.approx(ref.intercept_[0], abs=1e-5)
+    assert b == pytest.approx(ref.coef_[0, 0], abs=1e-5)
+    np.testing.assert_allclose(apply_recalibration(p, (a, b)), ref.predict_proba(x)[:, 1], atol=1e-6)
+    # Only the weights' ratios matter.
+    np.testing.assert_allclose(fit_recalibration(p, y, weight * 1000), (a, b), atol=1e-7)

@@ -1,14 +1,20 @@
 """What a practitioner would use instead of the network, for side-by-side benchmarks.
 
-Both baselines read the centre pixel's series only and return the same
+The baselines read the centre pixel's series only and return the same
 outcome distribution as the network (see :mod:`plantation.model.outcomes`), so one
-scoring code compares all three.
+scoring code compares them all.
 
 * :class:`AnnualTrees` — gradient-boosted trees (scikit-learn's
   ``HistGradientBoostingClassifier``) on per-year summaries of the indices:
   each year's median NDVI, NBR, NDMI, SWIR1 and red, its clear-view count,
   and the year-to-year changes of NBR and NDVI. The trees predict the
   outcome (a static class, or conversion in a given year) directly.
+* :class:`AnnualForest` — a random forest (scikit-learn's
+  ``RandomForestClassifier``) on the same per-year summaries plus each
+  year's minimum of the indices and its year-to-year changes, tuned on the
+  validation split (trees, depth, features per split) and calibrated like the
+  network: one temperature on its log-probabilities, fitted on the validation
+  split.
 * :class:`BreakRule` — a structural break on the annual median NBR series,
   the exact penalised least-squares segmentation that PELT (Killick,
   Fearnhead & Eckley 2012, JASA 107: 1590–1598) computes, checked against
@@ -29,9 +35,42 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from plantation.model import calibration
 from plantation.model.outcomes import N_STATIC, Outcomes
 
 SUMMARY_CHANNELS: tuple[str, ...] = ("NDVI", "NBR", "NDMI", "swir1", "red")
+
+
+#: Per-year reductions :func:`annual_summaries` knows, each NaN-aware.
+ANNUAL_STATS = {"median": np.nanmedian, "min": np.nanmin}
+
+
+def annual_summaries(x: np.ndarray, valid: np.ndarray, date_year: np.ndarray, n_years: int, stats: Sequence[str] = ("median",)) -> tuple[np.ndarray, np.ndarray]:
+    """Per-year reductions (median, minimum) of each channel over valid dates.
+
+    Args:
+        x: (n, time, channel) values; valid: (n, time) bool.
+        date_year: (time,) year index of each date.
+        stats: names in :data:`ANNUAL_STATS`.
+
+    Returns:
+        (summaries (n, years, len(stats), channel) float32, NaN for a year
+        with no clear view; clear counts (n, years) int).
+    """
+    bad = [k for k in stats if k not in ANNUAL_STATS]
+    if bad:
+        raise ValueError(f"unknown annual statistic(s) {bad}; choose from {list(ANNUAL_STATS)}")
+    xm = np.where(valid[..., None], x, np.nan)
+    out = np.full((x.shape[0], n_years, len(stats), x.shape[2]), np.nan, np.float32)
+    count = np.zeros((x.shape[0], n_years), np.int64)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN years stay NaN
+        for y in range(n_years):
+            sel = date_year == y
+            for k, name in enumerate(stats):
+                out[:, y, k] = ANNUAL_STATS[name](xm[:, sel], axis=1)
+            count[:, y] = valid[:, sel].sum(1)
+    return out, count
 
 
 def annual_medians(x: np.ndarray, valid: np.ndarray, date_year: np.ndarray, n_years: int) -> tuple[np.ndarray, np.ndarray]:
@@ -45,16 +84,8 @@ def annual_medians(x: np.ndarray, valid: np.ndarray, date_year: np.ndarray, n_ye
         (medians (n, years, channel) float32, NaN for a year with no clear
         view; clear counts (n, years) int).
     """
-    xm = np.where(valid[..., None], x, np.nan)
-    med = np.full((x.shape[0], n_years, x.shape[2]), np.nan, np.float32)
-    count = np.zeros((x.shape[0], n_years), np.int64)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN years stay NaN
-        for y in range(n_years):
-            sel = date_year == y
-            med[:, y] = np.nanmedian(xm[:, sel], axis=1)
-            count[:, y] = valid[:, sel].sum(1)
-    return med, count
+    med, count = annual_summaries(x, valid, date_year, n_years, ("median",))
+    return med[:, :, 0], count
 
 
 def _channel_index(channels: Sequence[str], wanted: Sequence[str]) -> list[int]:
@@ -64,13 +95,26 @@ def _channel_index(channels: Sequence[str], wanted: Sequence[str]) -> list[int]:
     return [list(channels).index(c) for c in wanted]
 
 
-def annual_features(x: np.ndarray, valid: np.ndarray, date_year: np.ndarray, n_years: int, channels: Sequence[str]) -> np.ndarray:
-    """The trees' feature matrix (n, features), NaN where a year had no clear view."""
+def annual_features(x: np.ndarray, valid: np.ndarray, date_year: np.ndarray, n_years: int, channels: Sequence[str], *, minima: bool = False) -> np.ndarray:
+    """The trees' feature matrix (n, features), NaN where a year had no clear view.
+
+    Columns: each year's median of :data:`SUMMARY_CHANNELS`, its clear-view
+    count, the year-to-year changes of median NBR and NDVI; with ``minima``
+    then also each year's minimum of the channels and the year-to-year
+    changes of minimum NBR and NDVI (a clearing shows in the minimum even when
+    the year's median still looks like forest).
+    """
     ci = _channel_index(channels, SUMMARY_CHANNELS)
-    med, count = annual_medians(x[:, :, ci], valid, date_year, n_years)
-    d_nbr = np.diff(med[:, :, 1], axis=1)
-    d_ndvi = np.diff(med[:, :, 0], axis=1)
-    return np.concatenate([med.reshape(len(x), -1), count, d_nbr, d_ndvi], axis=1).astype(np.float32)
+    summ, count = annual_summaries(x[:, :, ci], valid, date_year, n_years, ("median", "min") if minima else ("median",))
+    parts = []
+    for k in range(summ.shape[2]):
+        s = summ[:, :, k]
+        parts.append([s.reshape(len(x), -1), np.diff(s[:, :, 1], axis=1), np.diff(s[:, :, 0], axis=1)])
+    med = parts[0]
+    cols = [med[0], count, med[1], med[2]]  # the original column order, which AnnualTrees models rely on
+    for extra in parts[1:]:
+        cols.extend(extra)
+    return np.concatenate(cols, axis=1).astype(np.float32)
 
 
 @dataclass
@@ -101,6 +145,123 @@ class AnnualTrees:
         p = self.model_.predict_proba(feats)  # type: ignore[attr-defined]
         out = np.zeros((len(feats), self.n_outcomes_), np.float64)
         out[:, self.classes_] = p
+        return out
+
+
+@dataclass
+class AnnualForest:
+    """Random forest on annual medians and minima, tuned and temperature-scaled on the validation split.
+
+    ``fit`` tries every combination of ``n_estimators`` × ``max_depth`` ×
+    ``max_features`` on the training split and scores each by its validation
+    negative log-likelihood *after* temperature scaling, the form in which
+    the forest is compared: raw forest probabilities are often exactly 0 or 1,
+    so an uncalibrated score would pick shallow forests for their smoother
+    probabilities rather than for telling the outcomes apart. The validation
+    split, not the out-of-bag samples, scores the grid because the network is
+    early-stopped and calibrated on that same (spatial) split; out-of-bag
+    samples are neighbours of the training pixels. The best combination is
+    refitted on the training split (same seed: the same forest), and one
+    temperature T is fitted on its validation log-probabilities with
+    :func:`plantation.model.calibration.fit_temperature`:
+    ``p ∝ max(p_forest, prob_floor) ** (1 / T)`` over the outcomes seen in
+    training; outcomes absent from training get probability 0.
+
+    Attributes (after ``fit``):
+        n_outcomes_: size of the outcome space.
+        classes_: outcome indices seen in training (the forest's columns).
+        params_: the chosen ``n_estimators``, ``max_depth``, ``max_features``.
+        temperature_: the fitted temperature.
+        grid_: one dict per grid point: its parameters, ``val_nll_raw`` and
+            ``val_nll`` (after its own temperature).
+        val_nll_: validation NLL of the chosen forest before (``raw``) and
+            after (``calibrated``) temperature scaling, over validation
+            samples whose outcome was seen in training (``n``; ``n_unseen``
+            others are left out, since no forest can give them probability).
+    """
+
+    n_estimators: tuple[int, ...] = (100, 300)
+    max_depth: tuple[int | None, ...] = (8, 16, None)
+    max_features: tuple[str | float, ...] = ("sqrt", 0.3)
+    seed: int = 0
+    n_jobs: int = 1
+    #: Smallest forest probability taken to the log (a leaf vote of 0 is not certainty).
+    prob_floor: float = 1e-4
+    model_: object | None = field(default=None, repr=False)
+    classes_: np.ndarray | None = None
+    params_: dict[str, object] | None = None
+    temperature_: float | None = None
+    grid_: list[dict[str, object]] = field(default_factory=list, repr=False)
+    val_nll_: dict[str, float | int] | None = None
+
+    @staticmethod
+    def features(x: np.ndarray, valid: np.ndarray, date_year: np.ndarray, n_years: int, channels: Sequence[str]) -> np.ndarray:
+        """The forest's feature matrix (n, features): :func:`annual_features` with minima."""
+        return annual_features(x, valid, date_year, n_years, channels, minima=True)
+
+    def _forest(self, n_estimators: int, max_depth: int | None, max_features: str | float, warm_start: bool = False) -> object:
+        from sklearn.ensemble import RandomForestClassifier
+
+        return RandomForestClassifier(n_estimators=n_estimators, max_depth=max_depth, max_features=max_features, random_state=self.seed, n_jobs=self.n_jobs, warm_start=warm_start)
+
+    def _log_probs(self, model: object, feats: np.ndarray) -> np.ndarray:
+        """(n, seen outcomes) log of the floored forest probabilities."""
+        p = model.predict_proba(feats)  # type: ignore[attr-defined]
+        return np.log(np.maximum(p, self.prob_floor))
+
+    def fit(self, feats: np.ndarray, target: np.ndarray, n_outcomes: int, *, val: tuple[np.ndarray, np.ndarray]) -> AnnualForest:
+        """Tune on ``val`` = (validation features, validation targets), refit, calibrate; returns self.
+
+        Args:
+            feats: (n, features) training features (:meth:`features`).
+            target: (n,) outcome indices in [0, n_outcomes).
+            n_outcomes: size of the outcome space (``Outcomes.size``).
+            val: the validation split's (features, targets), the split the
+                network is early-stopped and temperature-scaled on.
+        """
+        vf, vt = np.asarray(val[0]), np.asarray(val[1])
+        target = np.asarray(target)
+        if len(feats) != len(target) or len(vf) != len(vt):
+            raise ValueError(f"features and targets differ in length: train {len(feats)} vs {len(target)}, val {len(vf)} vs {len(vt)}")
+        for name, t in (("target", target), ("val target", vt)):
+            if len(t) and (t.min() < 0 or t.max() >= n_outcomes):
+                raise ValueError(f"{name} holds outcome indices outside [0, {n_outcomes}); got {t.min()}..{t.max()}")
+        if not (self.n_estimators and self.max_depth and self.max_features):
+            raise ValueError(f"the tuning grid is empty: n_estimators={self.n_estimators!r}, max_depth={self.max_depth!r}, max_features={self.max_features!r}")
+        classes = np.unique(target)
+        seen = np.isin(vt, classes)
+        if not seen.any():
+            raise ValueError("no validation sample has an outcome seen in training; the forest cannot be tuned or calibrated (check the split)")
+        vf_s, vt_s = vf[seen], np.searchsorted(classes, vt[seen])
+        self.n_outcomes_ = n_outcomes
+        self.grid_ = []
+        for depth, mf in itertools.product(self.max_depth, self.max_features):
+            # Growing one warm-started forest gives each tree count the same forest a fresh fit would.
+            model = self._forest(min(self.n_estimators), depth, mf, warm_start=True)
+            for n_est in sorted(self.n_estimators):
+                model.set_params(n_estimators=n_est)  # type: ignore[attr-defined]
+                model.fit(feats, target)  # type: ignore[attr-defined]
+                lp = self._log_probs(model, vf_s)
+                t = calibration.fit_temperature(lp, vt_s)
+                self.grid_.append({"n_estimators": n_est, "max_depth": depth, "max_features": mf, "val_nll_raw": calibration.nll(lp, vt_s), "val_nll": calibration.nll(lp, vt_s, t)})
+        best = min(self.grid_, key=lambda g: g["val_nll"])  # type: ignore[arg-type, return-value]
+        self.params_ = {k: best[k] for k in ("n_estimators", "max_depth", "max_features")}
+        self.model_ = self._forest(**self.params_)  # type: ignore[arg-type]
+        self.model_.fit(feats, target)  # type: ignore[attr-defined]
+        self.classes_ = self.model_.classes_  # type: ignore[attr-defined]
+        lp = self._log_probs(self.model_, vf_s)
+        self.temperature_ = calibration.fit_temperature(lp, vt_s)
+        self.val_nll_ = {"raw": calibration.nll(lp, vt_s), "calibrated": calibration.nll(lp, vt_s, self.temperature_), "n": int(seen.sum()), "n_unseen": int((~seen).sum())}
+        return self
+
+    def predict_proba(self, feats: np.ndarray) -> np.ndarray:
+        """(n, outcomes) calibrated probabilities; outcomes absent from training get 0."""
+        if self.model_ is None or self.classes_ is None or self.temperature_ is None:
+            raise RuntimeError("AnnualForest is not fitted yet; call fit first")
+        from scipy.special import softmax
+
+        out = np.zeros((len(feats), self.n_outcomes_), np.float64)
+        out[:, self.classes_] = softmax(self._log_probs(self.model_, feats) / self.temperature_, axis=1)
         return out
 
 

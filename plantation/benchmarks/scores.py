@@ -7,6 +7,7 @@ real map needs from a reference sample.
 
 from __future__ import annotations
 
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
@@ -14,9 +15,15 @@ from sklearn.metrics import f1_score
 
 from plantation.model.calibration import expected_calibration_error
 from plantation.model.outcomes import Summary
-from plantation.reference.labels import LABEL_CODES
+from plantation.reference.labels import LABEL_CODES, LABEL_NAMES
 
 CONVERSION = LABEL_CODES["conversion"]
+
+#: Event kinds (keys of :data:`plantation.simulation.scenario.EVENTS`) that are
+#: not conversions but can look like one.
+LOOK_ALIKES: tuple[str, ...] = ("logging", "fire_regrowth", "cleared_for_crops", "cropland", "grassland", "water")
+#: Bins of years from the event to the last year of the series; the last is open.
+YEARS_SINCE_BINS: tuple[str, ...] = ("0", "1", "2", "3+")
 
 
 def map_scores(summary: Summary, true_label: np.ndarray, true_year: np.ndarray, *, has_interval: bool = True, has_probability: bool = True) -> dict[str, Any]:
@@ -72,3 +79,79 @@ def map_scores(summary: Summary, true_label: np.ndarray, true_year: np.ndarray, 
     if not has_probability:
         out["ece_note"] = "0/1 outputs: ECE is the error of a probability that is always 0 or 1"
     return {k: (round(v, 4) if isinstance(v, float) else v) for k, v in out.items()}
+
+
+def per_class_f1(summary: Summary, true_label: np.ndarray) -> dict[str, float]:
+    """F1 of each label (stable_forest, conversion, old_plantation, other), the map's class against the truth's.
+
+    Args:
+        summary: the method's per-pixel summary (flattened or not).
+        true_label: label codes (1..4) of the truth, same shape.
+
+    Returns:
+        {label name: F1}, 0 for a label neither mapped nor true; the same
+        numbers as ``sklearn.metrics.f1_score(..., average=None, zero_division=0)``.
+    """
+    lab = np.asarray(true_label).ravel()
+    pl = np.asarray(summary.label).ravel()
+    if lab.shape != pl.shape:
+        raise ValueError(f"map and truth differ in size: {pl.size} vs {lab.size} pixels")
+    out = {}
+    for name in LABEL_NAMES:
+        c = LABEL_CODES[name]
+        tp = int(((pl == c) & (lab == c)).sum())
+        denom = int((pl == c).sum() + (lab == c).sum())  # 2·TP + FP + FN
+        out[name] = round(2 * tp / denom, 4) if denom else 0.0
+    return out
+
+
+def false_conversion_rate(
+    pred_conversion: np.ndarray, truth_event: np.ndarray, truth_event_year: np.ndarray, years: Sequence[int], event_codes: Mapping[str, int], kinds: Sequence[str] = LOOK_ALIKES
+) -> dict[str, dict[str, Any]]:
+    """Share of each look-alike's pixels mapped as conversion, overall and by years since its event.
+
+    Years since the event count to the last year of the series: an event in
+    the last year has had no time to regrow (0), one three or more years
+    before it has (``3+``). Kinds without an event year in the truth (0:
+    cropland, grassland, water) have no breakdown.
+
+    Args:
+        pred_conversion: bool, pixels the method maps as conversion (e.g.
+            ``summary.label == 2``).
+        truth_event: event codes of the truth raster's ``event`` band (band 3
+            of ``truth.tif``), same shape.
+        truth_event_year: calendar year of the event (band 4; 0 when none).
+        years: calendar years of the series (``Outcomes.years``).
+        event_codes: event name → code (:data:`plantation.simulation.scenario.EVENTS`).
+        kinds: the event kinds to score.
+
+    Returns:
+        {kind: {"rate", "n_pixels", "by_years_since": {bin: rate},
+        "n_by_years_since": {bin: pixels}}}; a rate is None where there are no
+        pixels.
+    """
+    pred = np.asarray(pred_conversion).ravel().astype(bool)
+    ev = np.asarray(truth_event).ravel()
+    ey = np.asarray(truth_event_year).ravel().astype(np.int64)
+    if not (pred.shape == ev.shape == ey.shape):
+        raise ValueError(f"map and truth differ in size: {pred.size}, {ev.size} and {ey.size} pixels")
+    unknown = [k for k in kinds if k not in event_codes]
+    if unknown:
+        raise ValueError(f"unknown event kind(s) {unknown}; the event codes are {sorted(event_codes)}")
+    since = np.minimum(int(max(years)) - ey, len(YEARS_SINCE_BINS) - 1)
+
+    def rate(m: np.ndarray) -> float | None:
+        return round(float(pred[m].mean()), 4) if m.any() else None
+
+    out: dict[str, dict[str, Any]] = {}
+    for kind in kinds:
+        m = ev == event_codes[kind]
+        dated = m & (ey > 0)
+        res: dict[str, Any] = {"rate": rate(m), "n_pixels": int(m.sum()), "by_years_since": {}, "n_by_years_since": {}}
+        if dated.any():
+            for b, name in enumerate(YEARS_SINCE_BINS):
+                mb = dated & (since == b)
+                res["by_years_since"][name] = rate(mb)
+                res["n_by_years_since"][name] = int(mb.sum())
+        out[kind] = res
+    return out
