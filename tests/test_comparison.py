@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+
 import pytest
 
 from plantation.benchmarks.accuracy import ComparisonConfig, train_config
@@ -57,3 +59,26 @@ def test_observability_on_the_toy_region_matches_a_pixel_by_pixel_count():
         assert in_year[r, c] == (bool(views) and int(t[views[0]]) == onset[r, c])
     assert not seen[cls != 2].any()
     assert 0.5 < seen[cls == 2].mean() < 1.0 and in_year.sum() < seen.sum()
+
+
+@pytest.mark.slow
+def test_benchmark_end_to_end_writes_every_method_and_figure(tmp_path):
+    """A tiny run: one seed, one epoch, a 64² held-out tile; the JSON has the shape the results are read in."""
+    from plantation.cli.compose import compose_job
+    from plantation.config import to_object
+
+    overrides = ["seeds=[0]", "network.members=1", "training.max_epochs=1", "trainer.enable_progress_bar=false", "forest.n_estimators=[20]", "forest.max_depth=[8]", "forest.max_features=[0.3]"]
+    overrides += ["eval_sim.tile_size=64", "eval_sim.tiles_x=1", f"eval_dir={tmp_path / 'eval'}", f"out={tmp_path / 'acc.json'}", "progress=false"]
+    report = run_comparison(to_object(compose_job("benchmark_accuracy", overrides, verb="benchmark-accuracy"), ComparisonConfig))
+    region = report["regions"]["simulated"]
+    assert 0 < region["observable_ceiling"] <= 1
+    assert set(region["methods"]) == {"model", "random_forest", "trees", "breakpoint"}
+    for name, m in region["methods"].items():
+        for key in ("year_exact", "conversion_f1", "macro_f1", "ece", "ece_after_cutoff", "mean_p_conversion", "true_conversion_share", "interval80_coverage", "forest_plot_after_share", "seeds"):
+            assert key in m, (name, key)
+        assert set(m["per_class_f1"]) == {"stable_forest", "conversion", "old_plantation", "other"}
+        assert {"logging", "fire_regrowth", "cleared_for_crops"} <= set(m["false_conversion_rate"])
+        assert m["seeds"] == [0] and m["spread"]["year_exact"] == [m["year_exact"], m["year_exact"]]
+    # The model is trained afresh and still beats a coin: a wrong scorer or a shuffled map would not.
+    assert region["methods"]["model"]["conversion_f1"] > 0.5
+    assert json.loads((tmp_path / "acc.json").read_text()) == json.loads(json.dumps(report))

@@ -273,3 +273,18 @@ def test_json_without_a_figure_is_an_error_naming_the_block(tmp_path):
     (tmp_path / "results" / "speed.json").write_text(json.dumps({"threads": 2}))
     with pytest.raises(PlantationError, match="figures:mapping-speed: .*speed.json lacks a figure"):
         run(config(tmp_path))
+
+
+def test_accuracy_block_reads_per_region_medians_with_their_range():
+    method = {"year_exact": 0.7, "year_within1": 0.9, "conversion_f1": 0.95, "macro_f1": 0.8, "year_mae": 0.3, "ece": 0.02, "interval80_coverage": 0.8, "train_seconds": 10.0}
+    doc = {
+        "regions": {
+            "simulated": {"eval_region": {"true_conversion_share": 0.15}, "observable_ceiling": 0.9, "methods": {"model": method | {"spread": {"year_exact": [0.68, 0.72]}}, "trees": method | {"year_exact": 0.5}}}
+        },
+        "seeds": [0, 1, 2],
+        "threads": 2,
+    }
+    text = accuracy_block(doc, source="bench/results/accuracy.json")
+    assert "**simulated** (true conversion share 0.150, observable ceiling 0.900)" in text
+    assert "| `year_exact` (true conversions mapped to the right year) | **0.700** (0.680–0.720) | 0.500 |" in text
+    assert "medians over training seeds [0, 1, 2]" in text

@@ -1,9 +1,12 @@
-"""Side-by-side accuracy benchmark: the network against two classical baselines.
+"""Side-by-side accuracy benchmark: the network against three classical baselines.
 
-``run(cfg)`` trains all three methods on the same samples and splits of the
-training region, then maps a held-out simulated region (another seed: another
-landscape, other clouds) wall to wall and scores each map against that
-region's complete truth rasters (:mod:`plantation.scores`).
+``run(cfg)`` trains every method (the network, a tuned and calibrated random
+forest on yearly medians and minima, gradient-boosted trees, a break rule) on
+the same samples and splits of the training region, for each training seed,
+then maps a held-out simulated region (another seed: another landscape, other
+clouds) wall to wall and scores each map against that region's complete
+truth rasters (:mod:`plantation.benchmarks.scores`). Figures are medians over
+the seeds, with their spread.
 
 The reference sample is stratified, so every method's probabilities reflect
 the sample's outcome frequencies, not the map's. With ``prior_adjust`` the
@@ -27,20 +30,29 @@ import numpy as np
 import rasterio
 import torch
 
-from plantation.benchmarks.baselines import AnnualTrees, BreakRule, annual_features
-from plantation.benchmarks.scores import map_scores
+from plantation.benchmarks.baselines import AnnualForest, AnnualTrees, BreakRule, annual_features
+from plantation.benchmarks.scores import false_conversion_rate, map_scores, per_class_f1
 from plantation.errors import ConfigError
 from plantation.imagery.config import RegionConfig, TileConfig
 from plantation.imagery.region import TileStack, open_region
 from plantation.model import artefact as art_io
-from plantation.model.calibration import adjust_priors
+from plantation.model.calibration import adjust_priors, expected_calibration_error
 from plantation.model.inference import predict_tile
 from plantation.model.outcomes import Outcomes, summarise
 from plantation.model.patches import PatchSet, features, year_of
 from plantation.model.training import TrainConfig, fit, load_region_samples, model_card
 from plantation.simulation.landscape import Landscape, build_landscape
-from plantation.simulation.scenario import SimulationConfig, dates_of, decimal_year
+from plantation.simulation.scenario import EVENTS, SimulationConfig, dates_of, decimal_year
 from plantation.simulation.writer import tile_names, write_region
+
+
+@dataclass
+class ForestGrid:
+    """The random forest's tuning grid (0 in max_depth: unlimited)."""
+
+    n_estimators: list[int] = field(default_factory=lambda: [100, 300])
+    max_depth: list[int] = field(default_factory=lambda: [8, 16, 0])
+    max_features: list[float] = field(default_factory=lambda: [0.1, 0.3])
 
 
 @dataclass
@@ -52,6 +64,11 @@ class ComparisonConfig(TrainConfig):
     """
 
     eval_sim: SimulationConfig = field(default_factory=SimulationConfig)
+    #: Training seeds; every figure is the median over them, with its spread.
+    seeds: list[int] = field(default_factory=lambda: [0, 1, 2])
+    forest: ForestGrid = field(default_factory=lambda: ForestGrid())
+    #: Side of the square plots (pixels) of untouched forest for forest_plot_after_share.
+    plot_px: int = 10
     eval_dir: str = "bench/cache/eval_region"
     prior_adjust: bool = False
     window: int = 96
@@ -96,11 +113,12 @@ def tile_series(stack: TileStack, bands: list[str], index_names: list[str]) -> t
     return f.transpose(2, 3, 0, 1).reshape(h * w, t, c), valid.transpose(1, 2, 0).reshape(h * w, t)
 
 
-def _truth(tile: TileConfig) -> tuple[np.ndarray, np.ndarray]:
+def _truth(tile: TileConfig) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Class, onset year, event and event year bands of a tile's truth raster."""
     if not tile.truth:
         raise ConfigError(f"tile {tile.name!r}: the evaluation region needs truth rasters")
     with rasterio.open(tile.truth) as src:
-        return src.read(1), src.read(2)
+        return src.read(1), src.read(2), src.read(3), src.read(4)
 
 
 def conversion_observability(land: Landscape, date_years: np.ndarray, stack: TileStack, tile: TileConfig) -> tuple[np.ndarray, np.ndarray]:
@@ -133,19 +151,66 @@ def conversion_observability(land: Landscape, date_years: np.ndarray, stack: Til
     return seen, in_year
 
 
-def run(cfg: ComparisonConfig) -> dict[str, Any]:
-    """Train, map and score the three methods; write ``cfg.out`` (JSON) atomically."""
-    if cfg.trainer.devices > 1 or cfg.trainer.num_nodes > 1:
-        # DDP re-runs the script in more processes; they would all simulate, map and write.
-        raise ConfigError("trainer: the accuracy benchmark trains in one process; use trainer=cpu (DDP is for `plantation train`)")
-    torch.set_num_threads(cfg.training.threads or (os.cpu_count() or 1))
+def _median_tree(parts: list[Any]) -> Any:
+    """Median over seeds, leaf by leaf: numbers → median; dicts → per key; anything else → the first seed's value."""
+    first = parts[0]
+    if isinstance(first, dict):
+        return {k: _median_tree([p.get(k) for p in parts if isinstance(p, dict)]) for k in first}
+    nums = [p for p in parts if isinstance(p, int | float) and not isinstance(p, bool)]
+    if nums and len(nums) == len(parts):
+        return round(float(np.median(nums)), 4)
+    return first
+
+
+def _spread(parts: list[dict[str, Any]]) -> dict[str, list[float]]:
+    """[min, max] over seeds of every top-level number."""
+    out = {}
+    for k in parts[0]:
+        vals = [p.get(k) for p in parts]
+        if all(isinstance(x, int | float) and not isinstance(x, bool) for x in vals):
+            out[k] = [round(float(min(vals)), 4), round(float(max(vals)), 4)]
+    return out
+
+
+def untouched_forest_plots(true_label: np.ndarray, true_event: np.ndarray, shape: tuple[int, int], plot_px: int) -> np.ndarray:
+    """Pixels (flattened, row-major) inside square plots of ``plot_px`` pixels whose every pixel is untouched stable forest."""
+    lab = true_label.reshape(shape)
+    ev = true_event.reshape(shape)
+    h, w = (shape[0] // plot_px) * plot_px, (shape[1] // plot_px) * plot_px
+    clean = ((lab == 1) & (ev == 0))[:h, :w].reshape(h // plot_px, plot_px, w // plot_px, plot_px).all(axis=(1, 3))
+    keep = np.zeros(shape, bool)
+    keep[:h, :w] = np.repeat(np.repeat(clean, plot_px, 0), plot_px, 1)
+    return keep.ravel()
+
+
+def _scores(summ: Any, truth: dict[str, np.ndarray], outcomes: Outcomes, cfg: ComparisonConfig, *, has_probability: bool) -> dict[str, Any]:
+    """Every figure of one method on one region."""
+    sc = map_scores(summ, truth["label"], truth["year"], has_interval=has_probability, has_probability=has_probability)
+    seen = truth["seen"]
+    seen_sc = map_scores(summ, np.where(seen | (truth["label"] != 2), truth["label"], 0), np.where(seen, truth["year"], 0), has_interval=has_probability)
+    sc["on_conversions_seen_cleared"] = {k: seen_sc[k] for k in ("year_exact", "year_within1", "interval80_coverage")}
+    p_conv = np.asarray(summ.p_conversion).ravel()
+    p_after = np.asarray(summ.p_after_cutoff).ravel()
+    after_true = (truth["label"] == 2) & (truth["year"] > cfg.calibration.cutoff_year)
+    sc["ece_after_cutoff"] = round(float(expected_calibration_error(p_after, after_true)), 4)
+    sc["mean_p_conversion"] = round(float(p_conv.mean()), 4)
+    sc["true_conversion_share"] = round(float((truth["label"] == 2).mean()), 4)
+    plots = truth["forest_plots"]
+    sc["forest_plot_after_share"] = round(float(p_after[plots].mean()), 4) if plots.any() else None
+    sc["per_class_f1"] = per_class_f1(summ, truth["label"])
+    sc["false_conversion_rate"] = false_conversion_rate(np.asarray(summ.label).ravel() == 2, truth["event"], truth["event_year"], outcomes.years, EVENTS)
+    return sc
+
+
+def evaluate_seed(cfg: ComparisonConfig, seed: int) -> tuple[dict[str, dict[str, Any]], dict[str, Any]]:
+    """Train every method with one training seed, map the held-out region, score each: ({method: scores}, region facts)."""
     tc = train_config(cfg)
+    tc = replace(tc, training=replace(tc.training, seed=seed))
     _, labels, samples = load_region_samples(tc)
     outcomes: Outcomes = samples.outcomes
-    train = samples.part("train")
+    train, val = samples.part("train"), samples.part("val")
     date_year = year_of(samples.dates) - year_of(samples.dates).min()
     ny = len(outcomes.years)
-    results: dict[str, Any] = {}
 
     with tempfile.TemporaryDirectory(prefix="plantation-bench-") as tmp:
         t0 = time.perf_counter()
@@ -154,12 +219,19 @@ def run(cfg: ComparisonConfig) -> dict[str, Any]:
         art_io.save(Path(tmp) / "model", model_card(tc, samples, trained, labels), trained.members)
         artefact = art_io.load(Path(tmp) / "model")
         if cfg.model_dir:
-            shutil.copytree(Path(tmp) / "model", cfg.model_dir, dirs_exist_ok=True)
+            shutil.copytree(Path(tmp) / "model", Path(cfg.model_dir) / f"seed{seed}", dirs_exist_ok=True)
 
     xs, vs = centre_series(train)
+    xv, vv = centre_series(val)
     t0 = time.perf_counter()
-    trees = AnnualTrees(seed=cfg.training.seed).fit(annual_features(xs, vs, date_year, ny, samples.channels), train.target, outcomes.size)
+    trees = AnnualTrees(seed=seed).fit(annual_features(xs, vs, date_year, ny, samples.channels), train.target, outcomes.size)
     trees_seconds = time.perf_counter() - t0
+    t0 = time.perf_counter()
+    grid = cfg.forest
+    depths = tuple(None if d == 0 else d for d in grid.max_depth)
+    forest = AnnualForest(n_estimators=tuple(grid.n_estimators), max_depth=depths, max_features=tuple(grid.max_features), seed=seed, n_jobs=torch.get_num_threads())
+    forest.fit(AnnualForest.features(xs, vs, date_year, ny, samples.channels), train.target, outcomes.size, val=(AnnualForest.features(xv, vv, date_year, ny, samples.channels), val.target))
+    forest_seconds = time.perf_counter() - t0
     t0 = time.perf_counter()
     nbr, static = BreakRule.series(xs, vs, date_year, ny, samples.channels)
     rule = BreakRule().fit(nbr, static, train.target)
@@ -168,11 +240,12 @@ def run(cfg: ComparisonConfig) -> dict[str, Any]:
     folder = ensure_region(cfg.eval_sim, Path(cfg.eval_dir), cfg.progress)
     region = eval_region_config(cfg.region, cfg.eval_sim, folder)
     stacks = open_region(region)
-    probs: dict[str, list[np.ndarray]] = {"model": [], "trees": [], "breakpoint": []}
-    truth_label, truth_year, seen_parts, in_year_parts = [], [], [], []
+    methods = ("model", "random_forest", "trees", "breakpoint")
+    probs: dict[str, list[np.ndarray]] = {m: [] for m in methods}
+    map_seconds = dict.fromkeys(methods, 0.0)
+    parts: dict[str, list[np.ndarray]] = {k: [] for k in ("label", "year", "event", "event_year", "seen", "in_year", "forest_plots")}
     land = build_landscape(cfg.eval_sim)
     date_years = np.array([decimal_year(d) for d in dates_of(cfg.eval_sim)])
-    map_seconds = {"model": 0.0, "trees": 0.0, "breakpoint": 0.0}
     for st, tile in zip(stacks, region.tiles, strict=True):
         t0 = time.perf_counter()
         tp = predict_tile(artefact, st, window=cfg.window, progress=cfg.progress, scaling=region.scaling)
@@ -183,36 +256,36 @@ def run(cfg: ComparisonConfig) -> dict[str, Any]:
         probs["trees"].append(trees.predict_proba(annual_features(x, v, date_year, ny, samples.channels)))
         map_seconds["trees"] += time.perf_counter() - t0
         t0 = time.perf_counter()
+        probs["random_forest"].append(forest.predict_proba(AnnualForest.features(x, v, date_year, ny, samples.channels)))
+        map_seconds["random_forest"] += time.perf_counter() - t0
+        t0 = time.perf_counter()
         n_, s_ = BreakRule.series(x, v, date_year, ny, samples.channels)
         probs["breakpoint"].append(rule.predict_proba(n_, s_, outcomes))
         map_seconds["breakpoint"] += time.perf_counter() - t0
-        cls, onset = _truth(tile)
-        truth_label.append(cls.ravel())
-        truth_year.append(onset.ravel())
+        cls, onset, event, event_year = _truth(tile)
         seen_t, in_year_t = conversion_observability(land, date_years, st, tile)
-        seen_parts.append(seen_t.ravel())
-        in_year_parts.append(in_year_t.ravel())
-    true_label = np.concatenate(truth_label)
-    true_year = np.concatenate(truth_year)
-    seen = np.concatenate(seen_parts)
-    n_conv = max(int((true_label == 2).sum()), 1)
+        for k, arr in (("label", cls), ("year", onset), ("event", event), ("event_year", event_year), ("seen", seen_t), ("in_year", in_year_t)):
+            parts[k].append(arr.ravel())
+        parts["forest_plots"].append(untouched_forest_plots(cls.ravel(), event.ravel(), cls.shape, cfg.plot_px))
+    truth = {k: np.concatenate(v) for k, v in parts.items()}
+    n_conv = max(int((truth["label"] == 2).sum()), 1)
     train_prior = np.asarray(artefact.card.calibration.train_prior)
-    seconds = {"model": model_seconds, "trees": trees_seconds, "breakpoint": rule_seconds}
-    for name, parts in probs.items():
-        p = np.concatenate(parts)
+    seconds = {"model": model_seconds, "random_forest": forest_seconds, "trees": trees_seconds, "breakpoint": rule_seconds}
+    results: dict[str, dict[str, Any]] = {}
+    for name in methods:
+        p = np.concatenate(probs[name])
         extra: dict[str, Any] = {}
-        if name != "breakpoint":
+        has_probability = name != "breakpoint"
+        if has_probability:
             # Report the other choice of prior handling beside the chosen one.
             p_adj, est = adjust_priors(p, train_prior)
             other = summarise(p if cfg.prior_adjust else p_adj, outcomes.years, cutoff_year=cfg.calibration.cutoff_year, level=cfg.calibration.interval_level)
-            extra["ece_without_prior_adjust" if cfg.prior_adjust else "ece_with_prior_adjust"] = map_scores(other, true_label, true_year)["ece"]
+            extra["ece_without_prior_adjust" if cfg.prior_adjust else "ece_with_prior_adjust"] = map_scores(other, truth["label"], truth["year"])["ece"]
             extra["em_estimated_conversion_share"] = round(float(est[3:].sum()), 4)
             if cfg.prior_adjust:
                 p = p_adj
         summ = summarise(p, outcomes.years, cutoff_year=cfg.calibration.cutoff_year, level=cfg.calibration.interval_level)
-        sc = map_scores(summ, true_label, true_year, has_interval=name != "breakpoint", has_probability=name != "breakpoint")
-        seen_sc = map_scores(summ, np.where(seen | (true_label != 2), true_label, 0), np.where(seen, true_year, 0), has_interval=name != "breakpoint")
-        sc["on_conversions_seen_cleared"] = {k: seen_sc[k] for k in ("year_exact", "year_within1", "interval80_coverage")}
+        sc = _scores(summ, truth, outcomes, cfg, has_probability=has_probability)
         sc.update(extra)
         sc["train_seconds"] = round(seconds[name], 1)
         sc["map_seconds"] = round(map_seconds[name], 1)
@@ -221,25 +294,51 @@ def run(cfg: ComparisonConfig) -> dict[str, Any]:
     results["model"]["members"] = len(artefact.members)
     results["model"]["temperature"] = round(artefact.card.calibration.temperature, 4)
     results["model"]["test_split"] = trained.metrics.get("test")
+    results["random_forest"]["params"] = {k: str(v) for k, v in forest.params_.items()}
+    results["random_forest"]["temperature"] = round(forest.temperature_, 4)
     results["breakpoint"]["params"] = rule.params_
-    report = {
-        "eval_region": {
-            "name": region.name,
-            "seed": cfg.eval_sim.seed,
-            "tiles": len(stacks),
-            "pixels": int(true_label.size),
-            "true_conversion_share": round(float((true_label == 2).mean()), 4),
-            "conversions_in_last_year": round(float(((true_label == 2) & (true_year == max(outcomes.years))).sum() / max((true_label == 2).sum(), 1)), 4),
-            # Shares of true conversions seen clear after clearing at all, and
-            # first seen so in the onset year: ceilings for every method.
-            "conversions_seen_cleared": round(float(seen.sum() / n_conv), 4),
-            "conversions_first_seen_in_onset_year": round(float(np.concatenate(in_year_parts).sum() / n_conv), 4),
-        },
+    facts = {
+        "name": region.name,
+        "seed": cfg.eval_sim.seed,
+        "tiles": len(stacks),
+        "pixels": int(truth["label"].size),
+        "true_conversion_share": round(float((truth["label"] == 2).mean()), 4),
+        "conversions_in_last_year": round(float(((truth["label"] == 2) & (truth["year"] == max(outcomes.years))).sum() / n_conv), 4),
+        # Shares of true conversions seen clear after clearing at all, and
+        # first seen so in the onset year: ceilings for every method.
+        "observable_ceiling": round(float(truth["seen"].sum() / n_conv), 4),
+        "conversions_first_seen_in_onset_year": round(float(truth["in_year"].sum() / n_conv), 4),
+        "forest_plot_pixels": int(truth["forest_plots"].sum()),
         "train_region": cfg.region.name,
         "labels_fingerprint": labels.fingerprint,
+    }
+    return results, facts
+
+
+def run(cfg: ComparisonConfig) -> dict[str, Any]:
+    """Train, map and score every method for each training seed; write ``cfg.out`` (JSON) atomically.
+
+    Every figure of a method is the median over ``cfg.seeds``, with the
+    [min, max] over seeds in ``spread``; per-seed figures are kept in ``by_seed``.
+    """
+    if cfg.trainer.devices > 1 or cfg.trainer.num_nodes > 1:
+        # DDP re-runs the script in more processes; they would all simulate, map and write.
+        raise ConfigError("trainer: the accuracy benchmark trains in one process; use trainer=cpu (DDP is for `plantation train`)")
+    if not cfg.seeds:
+        raise ConfigError("seeds: give at least one training seed, e.g. seeds=[0,1,2]")
+    torch.set_num_threads(cfg.training.threads or (os.cpu_count() or 1))
+    per_seed = [evaluate_seed(cfg, seed) for seed in cfg.seeds]
+    methods = {}
+    for name in per_seed[0][0]:
+        runs = [r[name] for r, _ in per_seed]
+        methods[name] = _median_tree(runs) | {"seeds": list(cfg.seeds), "spread": _spread(runs), "by_seed": runs}
+    facts = per_seed[0][1]
+    region = {"eval_region": facts, "observable_ceiling": facts["observable_ceiling"], "methods": methods}
+    report = {
+        "regions": {"simulated": region},
+        "seeds": list(cfg.seeds),
         "prior_adjust": cfg.prior_adjust,
         "threads": torch.get_num_threads(),
-        "methods": results,
     }
     out = Path(cfg.out)
     out.parent.mkdir(parents=True, exist_ok=True)

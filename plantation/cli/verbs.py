@@ -89,6 +89,13 @@ def assess(cfg: DictConfig) -> None:
     print(NOTICE)
 
 
+def recalibrate(cfg: DictConfig) -> None:
+    from plantation.assessment.recalibrate import RecalibrateConfig, run
+
+    result = run(to_object(cfg, RecalibrateConfig))
+    print("\n".join(result.lines()))
+
+
 def farmplots(cfg: DictConfig) -> None:
     from plantation.farmplots.cutoff import PlotsConfig, run
     from plantation.mapping.folder import NOTICE
@@ -122,10 +129,12 @@ def benchmark_accuracy(cfg: DictConfig) -> None:
     from plantation.benchmarks.accuracy import ComparisonConfig, run
 
     report = run(to_object(cfg, ComparisonConfig))
-    keys = ("year_exact", "year_within1", "conversion_f1", "macro_f1", "year_mae", "ece", "interval80_coverage", "train_seconds")
-    print(f"{'method':<11}" + "".join(f"{k:>20}" for k in keys))
-    for name, m in report["methods"].items():
-        print(f"{name:<11}" + "".join(f"{str(m.get(k)):>20}" for k in keys))
+    keys = ("year_exact", "year_within1", "conversion_f1", "macro_f1", "ece", "mean_p_conversion", "forest_plot_after_share", "interval80_coverage")
+    for region, r in report["regions"].items():
+        print(f"{region}: medians over seeds {report['seeds']} (true conversion share {r['eval_region']['true_conversion_share']}, observable ceiling {r['observable_ceiling']})")
+        print(f"{'method':<14}" + "".join(f"{k:>24}" for k in keys))
+        for name, m in r["methods"].items():
+            print(f"{name:<14}" + "".join(f"{str(m.get(k)):>24}" for k in keys))
     print(f"written to {cfg.out}")
 
 
@@ -161,6 +170,7 @@ VERBS: dict[str, Verb] = {
         Verb("map", "map", "map every tile of a region with a trained model to Cloud-Optimized GeoTIFFs", map_region),
         Verb("sample", "sample", "draw a stratified validation sample from a map for interpreters to label", sample),
         Verb("assess", "assess", "estimate accuracy and areas with confidence intervals from the labelled sample", assess),
+        Verb("recalibrate", "recalibrate", "correct a written map's probabilities from its labelled sample (design-weighted recalibration)", recalibrate),
         Verb("farmplots", "farmplots", "say for each farm plot how much of it the map has converted after a cutoff", farmplots),
         Verb("simulate", "simulate", "write a simulated region (imagery, labels, plots, truth) from a seed", simulate),
         Verb("benchmark-accuracy", "benchmark_accuracy", "compare the model with the baselines on a held-out simulated region", benchmark_accuracy),
