@@ -279,7 +279,11 @@ def test_accuracy_block_reads_per_region_medians_with_their_range():
     method = {"year_exact": 0.7, "year_within1": 0.9, "conversion_f1": 0.95, "macro_f1": 0.8, "year_mae": 0.3, "ece": 0.02, "interval80_coverage": 0.8, "train_seconds": 10.0}
     doc = {
         "regions": {
-            "simulated": {"eval_region": {"true_conversion_share": 0.15}, "observable_ceiling": 0.9, "methods": {"model": method | {"spread": {"year_exact": [0.68, 0.72]}}, "trees": method | {"year_exact": 0.5}}}
+            "simulated": {
+                "eval_region": {"true_conversion_share": 0.15},
+                "observable_ceiling": 0.9,
+                "methods": {"model": method | {"spread": {"year_exact": [0.68, 0.72]}}, "trees": method | {"year_exact": 0.5}},
+            }
         },
         "seeds": [0, 1, 2],
         "threads": 2,
