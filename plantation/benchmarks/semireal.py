@@ -52,7 +52,7 @@ import numpy as np
 import rasterio
 from scipy.ndimage import distance_transform_edt, gaussian_filter
 
-from plantation.benchmarks.realdata import RealStack, read_s2_stack, s2_six_bands
+from plantation.benchmarks.realdata import S2_MEMBER, S2_PACKAGE, S2_VERSION, RealStack, read_s2_stack, reference_file, s2_six_bands
 from plantation.errors import ConfigError
 from plantation.imagery.config import MaskConfig, RegionConfig, ScalingRule, TileConfig
 from plantation.reference.labels import LABEL_CODES, LABEL_NAMES
@@ -318,8 +318,6 @@ def write_semireal_region(cfg: SemiRealConfig, out: str | Path, *, real_path: Pa
 
 
 def _sha256(path: Path | None) -> str:
-    from plantation.benchmarks.realdata import S2_MEMBER, S2_PACKAGE, S2_VERSION, reference_file
-
     p = reference_file(S2_PACKAGE, S2_VERSION, S2_MEMBER) if path is None else Path(path)
     return hashlib.sha256(p.read_bytes()).hexdigest()
 
