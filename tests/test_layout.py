@@ -24,6 +24,7 @@ TORCH_FREE = [
     "plantation.assessment.design",
     "plantation.assessment.estimators",
     "plantation.assessment.assess",
+    "plantation.assessment.recalibrate",
     "plantation.farmplots.cutoff",
     "plantation.report.figures",
     "plantation.report.page",

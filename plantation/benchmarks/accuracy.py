@@ -32,8 +32,10 @@ import torch
 
 from plantation.benchmarks.baselines import AnnualForest, AnnualTrees, BreakRule, annual_features
 from plantation.benchmarks.scores import false_conversion_rate, map_scores, per_class_f1
+from plantation.benchmarks.semireal import SemiRealConfig, ensure_semireal_region, region_config
+from plantation.benchmarks.semireal import simulation_config as semireal_simulation
 from plantation.errors import ConfigError
-from plantation.imagery.config import RegionConfig, TileConfig
+from plantation.imagery.config import LabelsConfig, RegionConfig, TileConfig
 from plantation.imagery.region import TileStack, open_region
 from plantation.model import artefact as art_io
 from plantation.model.calibration import adjust_priors, expected_calibration_error
@@ -56,6 +58,20 @@ class ForestGrid:
 
 
 @dataclass
+class SemiRealBench:
+    """The semi-real benchmark region: one region built from ``train_seed`` to train on, another from ``eval_seed`` to map and score."""
+
+    train_seed: int = 20131
+    eval_seed: int = 77031
+    size: int = 384
+    years: int = 10
+    dates_per_year: int = 6
+    n_labels: int = 1500
+    conversion_oversampling: float = 2.0
+    dir: str = "bench/cache/semireal"
+
+
+@dataclass
 class ComparisonConfig(TrainConfig):
     """Schema of ``configs/benchmark_accuracy.yaml``: the training config plus the held-out region.
 
@@ -64,6 +80,9 @@ class ComparisonConfig(TrainConfig):
     """
 
     eval_sim: SimulationConfig = field(default_factory=SimulationConfig)
+    #: Benchmark regions to run: ``simulated`` (train on the region config, score on ``eval_sim``) and ``semi_real``.
+    regions: list[str] = field(default_factory=lambda: ["simulated", "semi_real"])
+    semi_real: SemiRealBench = field(default_factory=SemiRealBench)
     #: Training seeds; every figure is the median over them, with its spread.
     seeds: list[int] = field(default_factory=lambda: [0, 1, 2])
     forest: ForestGrid = field(default_factory=lambda: ForestGrid())
@@ -202,10 +221,39 @@ def _scores(summ: Any, truth: dict[str, np.ndarray], outcomes: Outcomes, cfg: Co
     return sc
 
 
-def evaluate_seed(cfg: ComparisonConfig, seed: int) -> tuple[dict[str, dict[str, Any]], dict[str, Any]]:
-    """Train every method with one training seed, map the held-out region, score each: ({method: scores}, region facts)."""
+@dataclass
+class HeldOut:
+    """One benchmark region: the training config (its region and labels) and the held-out region scored wall to wall."""
+
+    train: TrainConfig
+    region: RegionConfig
+    #: The held-out region's simulation (landscape and dates, for the observability ceiling).
+    sim: SimulationConfig
+
+
+def simulated_held_out(cfg: ComparisonConfig) -> HeldOut:
+    """Train on the configured region (the toy region by default); score on the simulated ``eval_sim`` region."""
+    folder = ensure_region(cfg.eval_sim, Path(cfg.eval_dir), cfg.progress)
+    return HeldOut(train_config(cfg), eval_region_config(cfg.region, cfg.eval_sim, folder), cfg.eval_sim)
+
+
+def semi_real_held_out(cfg: ComparisonConfig) -> HeldOut:
+    """Train on a semi-real region built from ``train_seed`` and its labels; score on another built from ``eval_seed``."""
+    sr = cfg.semi_real
+    built = {}
+    for role, seed in (("train", sr.train_seed), ("eval", sr.eval_seed)):
+        shape = {"size": sr.size, "years": sr.years, "dates_per_year": sr.dates_per_year, "n_labels": sr.n_labels, "conversion_oversampling": sr.conversion_oversampling}
+        scfg = SemiRealConfig(name=f"semireal_{role}", seed=seed, **shape)
+        folder = ensure_semireal_region(scfg, Path(sr.dir) / role, progress=cfg.progress)
+        region = region_config(scfg, folder, base=cfg.region)
+        built[role] = (scfg, replace(region, labels=LabelsConfig(path=str(folder / "labels.csv"), crs="EPSG:4326")))
     tc = train_config(cfg)
-    tc = replace(tc, training=replace(tc.training, seed=seed))
+    return HeldOut(replace(tc, region=built["train"][1]), built["eval"][1], semireal_simulation(built["eval"][0]))
+
+
+def evaluate_seed(cfg: ComparisonConfig, held: HeldOut, seed: int) -> tuple[dict[str, dict[str, Any]], dict[str, Any]]:
+    """Train every method with one training seed, map the held-out region, score each: ({method: scores}, region facts)."""
+    tc = replace(held.train, training=replace(held.train.training, seed=seed))
     _, labels, samples = load_region_samples(tc)
     outcomes: Outcomes = samples.outcomes
     train, val = samples.part("train"), samples.part("val")
@@ -237,21 +285,20 @@ def evaluate_seed(cfg: ComparisonConfig, seed: int) -> tuple[dict[str, dict[str,
     rule = BreakRule().fit(nbr, static, train.target)
     rule_seconds = time.perf_counter() - t0
 
-    folder = ensure_region(cfg.eval_sim, Path(cfg.eval_dir), cfg.progress)
-    region = eval_region_config(cfg.region, cfg.eval_sim, folder)
+    region = held.region
     stacks = open_region(region)
     methods = ("model", "random_forest", "trees", "breakpoint")
     probs: dict[str, list[np.ndarray]] = {m: [] for m in methods}
     map_seconds = dict.fromkeys(methods, 0.0)
     parts: dict[str, list[np.ndarray]] = {k: [] for k in ("label", "year", "event", "event_year", "seen", "in_year", "forest_plots")}
-    land = build_landscape(cfg.eval_sim)
-    date_years = np.array([decimal_year(d) for d in dates_of(cfg.eval_sim)])
+    land = build_landscape(held.sim)
+    date_years = np.array([decimal_year(d) for d in dates_of(held.sim)])
     for st, tile in zip(stacks, region.tiles, strict=True):
         t0 = time.perf_counter()
         tp = predict_tile(artefact, st, window=cfg.window, progress=cfg.progress, scaling=region.scaling)
         map_seconds["model"] += time.perf_counter() - t0
         probs["model"].append(tp.probs.reshape(-1, outcomes.size))
-        x, v = tile_series(st, list(cfg.region.bands), list(cfg.patches.indices))
+        x, v = tile_series(st, list(region.bands), list(cfg.patches.indices))
         t0 = time.perf_counter()
         probs["trees"].append(trees.predict_proba(annual_features(x, v, date_year, ny, samples.channels)))
         map_seconds["trees"] += time.perf_counter() - t0
@@ -299,7 +346,7 @@ def evaluate_seed(cfg: ComparisonConfig, seed: int) -> tuple[dict[str, dict[str,
     results["breakpoint"]["params"] = rule.params_
     facts = {
         "name": region.name,
-        "seed": cfg.eval_sim.seed,
+        "seed": held.sim.seed,
         "tiles": len(stacks),
         "pixels": int(truth["label"].size),
         "true_conversion_share": round(float((truth["label"] == 2).mean()), 4),
@@ -309,7 +356,7 @@ def evaluate_seed(cfg: ComparisonConfig, seed: int) -> tuple[dict[str, dict[str,
         "observable_ceiling": round(float(truth["seen"].sum() / n_conv), 4),
         "conversions_first_seen_in_onset_year": round(float(truth["in_year"].sum() / n_conv), 4),
         "forest_plot_pixels": int(truth["forest_plots"].sum()),
-        "train_region": cfg.region.name,
+        "train_region": held.train.region.name,
         "labels_fingerprint": labels.fingerprint,
     }
     return results, facts
@@ -327,15 +374,22 @@ def run(cfg: ComparisonConfig) -> dict[str, Any]:
     if not cfg.seeds:
         raise ConfigError("seeds: give at least one training seed, e.g. seeds=[0,1,2]")
     torch.set_num_threads(cfg.training.threads or (os.cpu_count() or 1))
-    per_seed = [evaluate_seed(cfg, seed) for seed in cfg.seeds]
-    methods = {}
-    for name in per_seed[0][0]:
-        runs = [r[name] for r, _ in per_seed]
-        methods[name] = _median_tree(runs) | {"seeds": list(cfg.seeds), "spread": _spread(runs), "by_seed": runs}
-    facts = per_seed[0][1]
-    region = {"eval_region": facts, "observable_ceiling": facts["observable_ceiling"], "methods": methods}
+    builders = {"simulated": simulated_held_out, "semi_real": semi_real_held_out}
+    unknown = [r for r in cfg.regions if r not in builders]
+    if unknown or not cfg.regions:
+        raise ConfigError(f"regions: {cfg.regions!r}; choose from {sorted(builders)}")
+    regions = {}
+    for name in cfg.regions:
+        held = builders[name](cfg)
+        per_seed = [evaluate_seed(cfg, held, seed) for seed in cfg.seeds]
+        methods = {}
+        for m in per_seed[0][0]:
+            runs = [r[m] for r, _ in per_seed]
+            methods[m] = _median_tree(runs) | {"seeds": list(cfg.seeds), "spread": _spread(runs), "by_seed": runs}
+        facts = per_seed[0][1]
+        regions[name] = {"eval_region": facts, "observable_ceiling": facts["observable_ceiling"], "methods": methods}
     report = {
-        "regions": {"simulated": region},
+        "regions": regions,
         "seeds": list(cfg.seeds),
         "prior_adjust": cfg.prior_adjust,
         "threads": torch.get_num_threads(),

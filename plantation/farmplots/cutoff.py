@@ -63,7 +63,7 @@ from pyproj import CRS, Geod, Transformer
 
 from plantation.errors import ConfigError, FileFormatError, InputNotFoundError, PlantationError
 from plantation.imagery.config import RegionConfig
-from plantation.mapping.folder import BAND, NODATA, NOTICE, MapTile, file_digest, open_map
+from plantation.mapping.folder import BAND, NO_CORRECTION, NODATA, NOTICE, MapTile, file_digest, open_map
 from plantation.records import check_shapes, load_object
 from plantation.reference.labels import LABEL_CODES
 
@@ -545,10 +545,12 @@ class PlotsResult:
     counts: dict[str, int]
     cutoff: Cutoff
     plots_file: str
+    #: Which probability correction the map carries (:meth:`plantation.mapping.folder.MappedRegion.correction_text`).
+    correction: str = NO_CORRECTION
 
     def lines(self) -> list[str]:
-        """A short account for the terminal: verdict counts, problems."""
-        out = [f"plots: {len(self.rows)} in {self.plots_file}; cutoff: converted {self.cutoff.describe()}", "verdict            plots"]
+        """A short account for the terminal: verdict counts, problems, and which probability correction the map carries."""
+        out = [f"plots: {len(self.rows)} in {self.plots_file}; cutoff: converted {self.cutoff.describe()}", f"map probabilities: {self.correction}", "verdict            plots"]
         for k in (*VERDICTS, "problem"):
             out.append(f"  {k:<16} {self.counts.get(k, 0):5d}")
         if self.problems:
@@ -763,6 +765,10 @@ def run(cfg: PlotsConfig) -> PlotsResult:
         "counts": counts,
         "notice": NOTICE,
     }
+    if mapped.correction is not None:
+        # Which correction the map's probabilities carry; absent: none, the probabilities as the model gave them.
+        doc["probability_correction"] = mapped.correction
+        doc["probability_correction_text"] = mapped.correction_text()
     out = Path(cfg.out_dir)
     files = write_outputs(ordered, doc, out)
-    return PlotsResult(out_dir=out, files=files, rows=ordered, problems=problems, counts=counts, cutoff=cutoff, plots_file=str(cfg.plots))
+    return PlotsResult(out_dir=out, files=files, rows=ordered, problems=problems, counts=counts, cutoff=cutoff, plots_file=str(cfg.plots), correction=mapped.correction_text())

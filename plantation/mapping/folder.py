@@ -31,6 +31,12 @@ band   description     content
 
 Bands 1–7 hold :data:`NODATA` where a pixel has fewer than ``min_clear``
 clear dates.
+
+A tile whose probabilities were corrected after mapping (`plantation
+recalibrate`, :mod:`plantation.assessment.recalibrate`) carries the
+correction as JSON in its :data:`CORRECTION_TAG` tag and in its manifest
+entry; a tile without it holds the probabilities as the model gave them
+(:func:`describe_correction`).
 """
 
 from __future__ import annotations
@@ -44,6 +50,7 @@ from pathlib import Path
 from typing import Any
 
 import rasterio
+import rasterio.shutil
 
 from plantation import __version__
 from plantation.errors import FileFormatError, InputNotFoundError, PlantationError, RegionError
@@ -69,6 +76,11 @@ LAYERS: tuple[tuple[str, float, str], ...] = (
     ("clear_dates", 1.0, "dates"),
 )
 BAND = {name: i + 1 for i, (name, _, _) in enumerate(LAYERS)}
+
+#: GeoTIFF tag (dataset level) and manifest entry key of a probability correction applied after mapping.
+CORRECTION_TAG = "probability_correction"
+#: What a map without a correction carries.
+NO_CORRECTION = "none: probabilities refer to the reference sample's class mix"
 
 NOTICE = (
     "Probabilistic evidence of conversion from satellite imagery, not a finding about any plot or person. "
@@ -97,6 +109,8 @@ class TileResult:
     #: The model folder and the sha256 over its two files (provenance for the assessment).
     model: str = ""
     model_sha256: str = ""
+    #: The probability correction applied after mapping (:data:`CORRECTION_TAG`); None: as the model gave them.
+    probability_correction: dict[str, Any] | None = None
 
 
 
@@ -109,6 +123,50 @@ def file_digest(paths: Sequence[Path]) -> str:
                 h.update(block)
     return h.hexdigest()
 
+
+
+def write_cog(src: Path, dest: Path) -> None:
+    """Convert a finished tiled GeoTIFF into a COG at ``dest`` (through a temporary name), with the mapping job's options.
+
+    256-px blocks, DEFLATE with the horizontal predictor, overviews by
+    nearest-neighbour resampling for every band: averaging would invent
+    classes and years that never existed. The same options as
+    :func:`plantation.mapping.tiles.write_cog`, here without torch.
+    """
+    tmp = dest.with_name(f".{dest.name}.partial")
+    try:
+        rasterio.shutil.copy(src, tmp, driver="COG", COMPRESS="DEFLATE", PREDICTOR="2", BLOCKSIZE="256", OVERVIEW_RESAMPLING="NEAREST", BIGTIFF="IF_SAFER", NUM_THREADS="2")
+        os.replace(tmp, dest)
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
+def describe_correction(correction: dict[str, Any] | None) -> str:
+    """One line saying which probability correction a map carries (None: the model's probabilities, uncorrected)."""
+    if not correction:
+        return NO_CORRECTION
+    n = correction.get("n", "?")
+    date = str(correction.get("date", "?"))[:10]
+    method = correction.get("method", "correction")
+    return f"{method} from a probability sample of {n} points ({date}); class, onset year and its interval are as the model gave them"
+
+
+def read_correction(tags: dict[str, str], where: str | Path) -> dict[str, Any] | None:
+    """The :data:`CORRECTION_TAG` of a tile's tags as an object, or None when absent.
+
+    Raises:
+        FileFormatError: the tag is not a JSON object.
+    """
+    text = tags.get(CORRECTION_TAG)
+    if not text:
+        return None
+    try:
+        value = json.loads(text)
+    except json.JSONDecodeError:
+        value = None
+    if not isinstance(value, dict):
+        raise FileFormatError(f"{where}: its {CORRECTION_TAG} tag is not a JSON object; restore the tile or map the region again with `plantation map`")
+    return value
 
 
 def read_manifest(path: str | Path) -> dict[str, Any] | None:
@@ -197,6 +255,8 @@ class MapTile:
     #: p_after_cutoff = stored × scale + offset.
     scale: float
     offset: float
+    #: The probability correction applied after mapping (its :data:`CORRECTION_TAG`); None: the probabilities as the model gave them.
+    correction: dict[str, Any] | None = None
 
 
 @dataclass
@@ -219,6 +279,18 @@ class MappedRegion:
     @property
     def years(self) -> list[int]:
         return sorted(self.converted_ha)
+
+    @property
+    def correction(self) -> dict[str, Any] | None:
+        """The probability correction the tiles carry (:attr:`MapTile.correction`); the first tile's if they differ."""
+        return self.tiles[0].correction if self.tiles else None
+
+    def correction_text(self) -> str:
+        """One line on the probability correction the map carries, for the farm-plot outputs and the report."""
+        texts = sorted({describe_correction(t.correction) for t in self.tiles})
+        if len(texts) <= 1:
+            return texts[0] if texts else NO_CORRECTION
+        return "mixed across tiles: " + "; ".join(f"{t.name}: {describe_correction(t.correction)}" for t in self.tiles)
 
 
 def sha256_of(*paths: Path) -> str:
@@ -268,7 +340,7 @@ def open_map(folder: str | Path, *, verify: bool = True) -> MappedRegion:
             if not tag.lstrip("-").isdigit():
                 raise PlantationError(f"{path}: no cutoff_year tag; map the region again with `plantation map`")
             grid = Grid(src.crs, src.transform, src.height, src.width)
-            tile = MapTile(name, path, digest, grid, int(tag), float(src.scales[band]), float(src.offsets[band]))
+            tile = MapTile(name, path, digest, grid, int(tag), float(src.scales[band]), float(src.offsets[band]), read_correction(src.tags(), path))
         t = grid.transform
         if t.b != 0 or t.d != 0 or t.a <= 0 or t.e >= 0:
             raise RegionError(f"{path}: the grid is rotated or not north-up; reproject the map to a north-up grid first")

@@ -78,21 +78,22 @@ def fit_temperature(logits: np.ndarray, targets: np.ndarray, bounds: tuple[float
     return float(np.exp(res.x))
 
 
-def expected_calibration_error(prob: np.ndarray, outcome: np.ndarray, n_bins: int = 10) -> float:
-    """ECE of a binary probability: Σ_b (n_b / n) · |mean(outcome) − mean(prob)| over equal-width bins of [0, 1].
+def expected_calibration_error(prob: np.ndarray, outcome: np.ndarray, n_bins: int = 10, weight: np.ndarray | None = None) -> float:
+    """ECE of a binary probability: Σ_b |Σ_{i∈b} wᵢ (yᵢ − pᵢ)| / Σ wᵢ over equal-width bins of [0, 1].
 
-    A probability of exactly 1 falls in the last bin.
+    With equal weights (the default) this is Σ_b (n_b / n) · |mean(outcome) −
+    mean(prob)|; with weights 1/π from a probability sample it estimates the
+    ECE over the population the sample was drawn from. A probability of
+    exactly 1 falls in the last bin.
     """
     p = np.asarray(prob, dtype=np.float64).ravel()
     y = np.asarray(outcome, dtype=np.float64).ravel()
     if len(p) == 0:
         raise ValueError("ECE of an empty sample")
+    w = np.ones_like(p) if weight is None else np.asarray(weight, dtype=np.float64).ravel()
     b = np.minimum((p * n_bins).astype(np.int64), n_bins - 1)
-    n = np.bincount(b, minlength=n_bins)
-    sp = np.bincount(b, weights=p, minlength=n_bins)
-    sy = np.bincount(b, weights=y, minlength=n_bins)
-    nz = n > 0
-    return float(np.abs(sy[nz] - sp[nz]).sum() / len(p))
+    diff = np.bincount(b, weights=w * (y - p), minlength=n_bins)
+    return float(np.abs(diff).sum() / w.sum())
 
 
 def reweight(probs: np.ndarray, old_prior: np.ndarray, new_prior: np.ndarray) -> np.ndarray:

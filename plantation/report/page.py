@@ -36,7 +36,7 @@ from plantation import __version__
 from plantation.assessment.assess import ASSESSMENT_NAME, read_assessment
 from plantation.errors import FileFormatError, PlantationError
 from plantation.farmplots.cutoff import PLOTS_JSON, read_plots_json
-from plantation.mapping.folder import MANIFEST, NOTICE, read_manifest, sha256_of
+from plantation.mapping.folder import CORRECTION_TAG, MANIFEST, NOTICE, describe_correction, read_manifest, sha256_of
 from plantation.mapping.styles import CLASS_STYLE
 from plantation.reference.labels import LABEL_CODES
 from plantation.report import figures
@@ -551,7 +551,25 @@ def _plots_section(p: dict[str, Any] | None) -> str:
     )
 
 
-def _provenance_section(a: dict[str, Any] | None, p: dict[str, Any] | None, folder: Path, map_dir: Path | None, generated: str, manifest_problem: str | None = None) -> str:
+def _correction_rows(manifest: dict[str, Any] | None, p: dict[str, Any] | None) -> list[tuple[str, str]]:
+    """Which probability correction the map carries (from its manifest) and the one the plot check read, if that differs."""
+    rows: list[tuple[str, str]] = []
+    here = None
+    if manifest is not None:
+        texts = sorted({describe_correction(t.get(CORRECTION_TAG)) for t in manifest.get("tiles", {}).values()})
+        here = "; ".join(texts) if texts else None
+        if here:
+            rows.append(("map probabilities", esc(here)))
+    # plots.json records a correction only when the map carried one.
+    used = (p or {}).get("probability_correction_text") or describe_correction(None)
+    if p is not None and used != here:
+        rows.append(("map probabilities in the plot check", esc(used)))
+    return rows
+
+
+def _provenance_section(
+    a: dict[str, Any] | None, p: dict[str, Any] | None, folder: Path, map_dir: Path | None, generated: str, manifest_problem: str | None = None, manifest: dict[str, Any] | None = None
+) -> str:
     head = '<section id="provenance"><h2>6. Provenance</h2>'
     rows: list[tuple[str, str]] = []
     prov = (a or {}).get("provenance") or {}
@@ -574,6 +592,7 @@ def _provenance_section(a: dict[str, Any] | None, p: dict[str, Any] | None, fold
         rows.append(("assessment generated", _day(a.get("generated"))))
     if manifest_problem:
         rows.append(("map manifest", f'<span class="bad">unreadable, left out: {esc(manifest_problem)}</span>'))
+    rows += _correction_rows(manifest, p)
     if p is not None:
         rows += [
             ("plots file", f"<code>{esc(_short_path(p.get('plots_file')))}</code>"),
@@ -689,7 +708,7 @@ def build_report(folder: Path, *, map_dir: Path | None = None) -> Path:
             _accuracy_section(a),
             _validation_section(a),
             _plots_section(p),
-            _provenance_section(a, p, folder, mdir, generated, manifest_problem),
+            _provenance_section(a, p, folder, mdir, generated, manifest_problem, manifest),
             _cautions_section(simulated),
         ]
     )
