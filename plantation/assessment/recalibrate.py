@@ -46,7 +46,7 @@ from plantation.assessment.assess import check_sample, read_sample_table
 from plantation.assessment.design import DESIGN_NAME, read_design
 from plantation.errors import ConfigError, PlantationError
 from plantation.imagery.config import RegionConfig
-from plantation.mapping.folder import BAND, CORRECTION_TAG, MANIFEST, NODATA, MappedRegion, describe_correction, open_map, read_manifest, sha256_of, write_cog
+from plantation.mapping.folder import BAND, CORRECTION_TAG, MANIFEST, NODATA, RECALIBRATION, MappedRegion, describe_correction, open_map, read_manifest, sha256_of, write_cog
 from plantation.model.calibration import apply_recalibration, expected_calibration_error, fit_recalibration
 
 METHOD = "design-weighted logistic recalibration"
@@ -233,7 +233,8 @@ def run(cfg: RecalibrateConfig, echo: Any = print) -> RecalibrationResult:
     design_path = Path(cfg.design) if cfg.design else samples.with_name(DESIGN_NAME)
     design = read_design(design_path)
     mapped = open_map(cfg.map)
-    done = [t for t in mapped.tiles if t.correction]
+    # The model's own prior correction (made at mapping time) is the starting point; a second recalibration is not.
+    done = [t for t in mapped.tiles if t.correction and RECALIBRATION in t.correction]
     if done:
         what = describe_correction(done[0].correction).split(";")[0]
         raise PlantationError(f"{done[0].path}: already carries a correction ({what}); recalibrate the original map (probabilities as the model gave them), not a corrected one")
@@ -290,7 +291,6 @@ def write_corrected(mapped: MappedRegion, out: Path, correction: dict[str, Any],
         raise PlantationError(f"{src_dir / MANIFEST}: disappeared while recalibrating")
     coef_c = tuple(correction["coef_conversion"])
     coef_a = tuple(correction["coef_after_cutoff"])
-    tag = json.dumps(correction, sort_keys=True)
     staged: dict[Path, Path] = {}
     extras: list[Path] = []
     kept: dict[Path, Path] = {}
@@ -302,9 +302,10 @@ def write_corrected(mapped: MappedRegion, out: Path, correction: dict[str, Any],
             final = out / e["file"]
             new = out / f".{final.name}.recalibrated.tif"
             staged[new] = final
-            capped += rewrite_tile(tile.path, new, coef_c, coef_a, tag, window=window)
+            merged = {**(tile.correction or {}), RECALIBRATION: correction}
+            capped += rewrite_tile(tile.path, new, coef_c, coef_a, json.dumps(merged, sort_keys=True), window=window)
             e["sha256"] = sha256_of(new)
-            e[CORRECTION_TAG] = correction
+            e[CORRECTION_TAG] = merged
         man_new = out / f".{MANIFEST}.partial"
         man_new.write_text(json.dumps(raw, indent=1, sort_keys=True))
         staged[man_new] = out / MANIFEST

@@ -134,7 +134,11 @@ class AnnualTrees:
         self.model_ = HistGradientBoostingClassifier(
             max_iter=self.max_iter, learning_rate=self.learning_rate, early_stopping=True, validation_fraction=0.15, n_iter_no_change=20, random_state=self.seed
         )
-        self.model_.fit(feats, target)  # type: ignore[attr-defined]
+        # Early stopping holds out a stratified share of the samples, which an
+        # outcome seen once cannot give; such an outcome cannot be learnt anyway.
+        target = np.asarray(target)
+        keep = np.bincount(target, minlength=n_outcomes)[target] >= 2
+        self.model_.fit(feats[keep], target[keep])  # type: ignore[attr-defined]
         self.classes_ = self.model_.classes_  # type: ignore[attr-defined]
         return self
 
@@ -247,7 +251,11 @@ class AnnualForest:
         best = min(self.grid_, key=lambda g: g["val_nll"])  # type: ignore[arg-type, return-value]
         self.params_ = {k: best[k] for k in ("n_estimators", "max_depth", "max_features")}
         self.model_ = self._forest(**self.params_)  # type: ignore[arg-type]
-        self.model_.fit(feats, target)  # type: ignore[attr-defined]
+        # Early stopping holds out a stratified share of the samples, which an
+        # outcome seen once cannot give; such an outcome cannot be learnt anyway.
+        target = np.asarray(target)
+        keep = np.bincount(target, minlength=n_outcomes)[target] >= 2
+        self.model_.fit(feats[keep], target[keep])  # type: ignore[attr-defined]
         self.classes_ = self.model_.classes_  # type: ignore[attr-defined]
         lp = self._log_probs(self.model_, vf_s)
         self.temperature_ = calibration.fit_temperature(lp, vt_s)

@@ -7,9 +7,16 @@ than a silent default.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+import math
+from dataclasses import asdict, dataclass, field
+from typing import Any
 
 from omegaconf import MISSING
+
+from plantation.errors import ConfigError
+
+#: The four label groups a region's area is shared among (the labels' names, in code order).
+LABEL_GROUPS: tuple[str, ...] = ("stable_forest", "conversion", "old_plantation", "other")
 
 
 @dataclass
@@ -52,12 +59,73 @@ class TileConfig:
 
 
 @dataclass
+class PopulationShares:
+    """Share of the region's area in each label group, where known from elsewhere (a published statistic, an earlier assessment).
+
+    All four None (the default) = unknown; otherwise all four are given and
+    sum to 1. A typed node rather than a free mapping, so a misspelt group is
+    an unknown-key error and ``population_shares.conversion=0.1`` works on
+    the command line.
+    """
+
+    stable_forest: float | None = None
+    conversion: float | None = None
+    old_plantation: float | None = None
+    other: float | None = None
+
+
+@dataclass
 class LabelsConfig:
-    """Reference points labelled by interpreters."""
+    """Reference points labelled by interpreters, and how they were drawn where the user knows."""
 
     path: str | None = None
     #: CRS of the ``x``/``y`` columns of a CSV file (vector files carry their own).
     crs: str | None = "EPSG:4326"
+    #: Share of the region's area per label group; used by ``calibration.prior=shares``.
+    population_shares: PopulationShares = field(default_factory=PopulationShares)
+    #: Column (attribute) of the labels file holding each point's inclusion
+    #: probability π in (0, 1] under the sampling design; None = not recorded.
+    #: Used by ``calibration.prior=inclusion``.
+    inclusion_column: str | None = None
+
+
+def population_shares(cfg: LabelsConfig) -> dict[str, float] | None:
+    """The labels config's shares as group → share, or None when unknown (not given, or every group None).
+
+    Raises:
+        ConfigError: an unknown or missing group, a negative or non-finite
+            share, or shares not summing to 1 (within 1e-6).
+    """
+    raw: Any = cfg.population_shares
+    if raw is None:
+        return None
+    # A plain mapping group → share (from a library caller) is read like the typed node.
+    given = {str(k): v for k, v in (asdict(raw) if isinstance(raw, PopulationShares) else dict(raw)).items() if v is not None}
+    if not given:
+        return None
+    unknown = sorted(set(given) - set(LABEL_GROUPS))
+    missing = [g for g in LABEL_GROUPS if g not in given]
+    if unknown or missing:
+        what = "; ".join(t for t in (f"unknown group(s) {unknown!r}" if unknown else "", f"missing {missing!r}" if missing else "") if t)
+        raise ConfigError(f"region.labels.population_shares: {what}; give a share for each of {list(LABEL_GROUPS)}, or none")
+    try:
+        shares = {g: float(given[g]) for g in LABEL_GROUPS}
+    except (TypeError, ValueError):
+        raise ConfigError(f"region.labels.population_shares: {given!r} must be numbers") from None
+    bad = {g: v for g, v in shares.items() if not (math.isfinite(v) and 0.0 <= v <= 1.0)}
+    if bad:
+        raise ConfigError(f"region.labels.population_shares: {bad!r} must be shares in [0, 1]")
+    total = sum(shares.values())
+    if abs(total - 1.0) > 1e-6:
+        raise ConfigError(f"region.labels.population_shares: {shares!r} sum to {total:.6g}, not 1; give each group's share of the region's area")
+    return shares
+
+
+def check_labels_config(cfg: LabelsConfig) -> None:
+    """Refuse bad population shares (see :func:`population_shares`) or an empty inclusion column name, naming the key."""
+    if cfg.inclusion_column is not None and not str(cfg.inclusion_column).strip():
+        raise ConfigError("region.labels.inclusion_column: an empty name; give the labels file's column of inclusion probabilities, or null")
+    population_shares(cfg)
 
 
 @dataclass

@@ -79,6 +79,8 @@ BAND = {name: i + 1 for i, (name, _, _) in enumerate(LAYERS)}
 
 #: GeoTIFF tag (dataset level) and manifest entry key of a probability correction applied after mapping.
 CORRECTION_TAG = "probability_correction"
+#: Key of the recalibration inside :data:`CORRECTION_TAG`, beside the model's own ``prior`` (its source) and ``target_prior_groups``.
+RECALIBRATION = "recalibration"
 #: What a map without a correction carries.
 NO_CORRECTION = "none: probabilities refer to the reference sample's class mix"
 
@@ -109,6 +111,8 @@ class TileResult:
     #: The model folder and the sha256 over its two files (provenance for the assessment).
     model: str = ""
     model_sha256: str = ""
+    #: The probability correction the tile carries (:data:`CORRECTION_TAG`); None for maps made before it was recorded.
+    probability_correction: dict[str, Any] | None = None
     #: The probability correction applied after mapping (:data:`CORRECTION_TAG`); None: as the model gave them.
     probability_correction: dict[str, Any] | None = None
 
@@ -130,8 +134,8 @@ def write_cog(src: Path, dest: Path) -> None:
 
     256-px blocks, DEFLATE with the horizontal predictor, overviews by
     nearest-neighbour resampling for every band: averaging would invent
-    classes and years that never existed. The same options as
-    :func:`plantation.mapping.tiles.write_cog`, here without torch.
+    classes and years that never existed, and a nearest probability is still
+    one some pixel has. Used by the mapping job and by recalibration.
     """
     tmp = dest.with_name(f".{dest.name}.partial")
     try:
@@ -142,13 +146,26 @@ def write_cog(src: Path, dest: Path) -> None:
 
 
 def describe_correction(correction: dict[str, Any] | None) -> str:
-    """One line saying which probability correction a map carries (None: the model's probabilities, uncorrected)."""
+    """One line saying which probability correction a map carries (None: the model's probabilities, for the sample's class mix).
+
+    ``correction`` holds the model's prior (``prior``: sample, shares,
+    inclusion or bbse, with ``target_prior_groups``), written at mapping
+    time, and a :data:`RECALIBRATION` added by ``plantation recalibrate``.
+    """
     if not correction:
         return NO_CORRECTION
-    n = correction.get("n", "?")
-    date = str(correction.get("date", "?"))[:10]
-    method = correction.get("method", "correction")
-    return f"{method} from a probability sample of {n} points ({date}); class, onset year and its interval are as the model gave them"
+    prior = correction.get("prior")
+    recal = correction.get(RECALIBRATION)
+    if prior in (None, "sample"):
+        parts = [NO_CORRECTION if not recal else "model probabilities for the reference sample's class mix"]
+    else:
+        share = (correction.get("target_prior_groups") or {}).get("conversion")
+        parts = [f"prior shifted to the region's class mix ({prior}" + (f"; conversion share {float(share):.3f})" if share is not None else ")")]
+    if recal:
+        n = recal.get("n", "?")
+        date = str(recal.get("date", "?"))[:10]
+        parts.append(f"then {recal.get('method', 'recalibrated')} from a probability sample of {n} points ({date}); class, onset year and its interval are as the model gave them")
+    return "; ".join(parts)
 
 
 def read_correction(tags: dict[str, str], where: str | Path) -> dict[str, Any] | None:

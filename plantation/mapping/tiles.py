@@ -14,7 +14,6 @@ from __future__ import annotations
 import hashlib
 import json
 import logging
-import os
 import time
 from collections import deque
 from collections.abc import Callable, Sequence
@@ -31,7 +30,7 @@ import torch
 from plantation import __version__
 from plantation.imagery.config import RegionConfig, TileConfig
 from plantation.imagery.region import TileStack, open_tile
-from plantation.mapping.folder import BAND, FORMAT, LAYERS, NODATA, NOTICE, SCALE, TileResult, file_digest
+from plantation.mapping.folder import BAND, FORMAT, LAYERS, NODATA, NOTICE, SCALE, TileResult, file_digest, write_cog
 from plantation.mapping.quicklook import quicklook
 from plantation.mapping.styles import class_style, onset_style, write_style
 from plantation.model.artefact import Artefact, load
@@ -153,21 +152,6 @@ def _profile(stack: TileStack, window: int) -> dict[str, Any]:
     return prof
 
 
-def write_cog(src: Path, dest: Path) -> None:
-    """Convert a finished tiled GeoTIFF into a COG at ``dest`` (through a temporary name).
-
-    Overviews use nearest-neighbour resampling for every band: averaging
-    would invent classes and years that never existed, and a nearest
-    probability is still one some pixel has.
-    """
-    tmp = dest.with_name(f".{dest.name}.partial")
-    try:
-        rasterio.shutil.copy(src, tmp, driver="COG", COMPRESS="DEFLATE", PREDICTOR="2", BLOCKSIZE="256", OVERVIEW_RESAMPLING="NEAREST", BIGTIFF="IF_SAFER", NUM_THREADS="2")
-        os.replace(tmp, dest)
-    finally:
-        tmp.unlink(missing_ok=True)
-
-
 def map_tile(
     stack: TileStack,
     art: Artefact,
@@ -229,6 +213,8 @@ def map_tile(
                 min_clear_dates=str(settings.min_clear),
                 model_region=art.card.region,
                 producer=f"plantation {__version__}",
+                # Which class mix the probabilities are for ("sample": the reference sample's, not the region's).
+                probability_correction=json.dumps(art.card.calibration.correction(), separators=(",", ":")),
             )
             ahead: deque[Future] = deque(reader.submit(read, w) for w in wins[:2])
             behind: deque[Future] = deque()
@@ -298,6 +284,7 @@ def map_tile_task(job: TileJob, on_window: Callable[[int], None] | None = None) 
         finished=time.strftime("%Y-%m-%dT%H:%M:%S%z"),
         model=job.model_dir,
         model_sha256=job.model_digest,
+        probability_correction=art.card.calibration.correction(),
     )
 
 

@@ -8,7 +8,8 @@ An artefact is two files side by side:
   outputs: band roles, scaling rules, indices, dates and years, the network's
   constructor arguments (normalisation statistics included), the calibration
   (temperature, per-outcome loss weights, training outcome frequencies,
-  optional conformal threshold), the cutoff year and the package version.
+  optional conformal threshold, optional region prior and its source), the
+  cutoff year and the package version.
 
 Reading it back uses only ``safetensors`` and ``json``: no code object is
 ever unpickled.
@@ -43,11 +44,26 @@ class Artefact:
 
 
 def calibrated_log_probs(member_logits: torch.Tensor, cal: Calibration) -> torch.Tensor:
-    """See :class:`Calibration` for the formula."""
+    """See :class:`Calibration` for the formula.
+
+    Raises:
+        PlantationError: the card's ``target_prior`` has no matching
+            ``train_prior`` (the probabilities' own mix is needed to divide out).
+    """
     lp = torch.logsumexp(torch.log_softmax(member_logits, -1), 0) - np.log(member_logits.shape[0])
     if cal.loss_weights:
         lp = lp - torch.log(torch.as_tensor(cal.loss_weights, dtype=lp.dtype))
-    return torch.log_softmax(lp / cal.temperature, -1)
+    lp = torch.log_softmax(lp / cal.temperature, -1)
+    if cal.target_prior:
+        k = lp.shape[-1]
+        if len(cal.target_prior) != k or len(cal.train_prior) != k:
+            raise PlantationError(
+                f"calibration: target_prior ({len(cal.target_prior)} values) and train_prior ({len(cal.train_prior)}) must both have one value per outcome ({k}); re-export the model"
+            )
+        # Bayes' rule: posteriors under the sample's mix (train_prior) → under the region's (target_prior).
+        shift = np.log(np.asarray(cal.target_prior, dtype=np.float64)) - np.log(np.asarray(cal.train_prior, dtype=np.float64))
+        lp = torch.log_softmax(lp + torch.as_tensor(shift, dtype=lp.dtype), -1)
+    return lp
 
 
 def build_network(spec: dict[str, Any]) -> ConvRecurrentNet:

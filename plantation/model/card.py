@@ -19,6 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from plantation.errors import FileFormatError, InputNotFoundError
+from plantation.model.calibration import GROUP_NAMES, outcome_groups
 
 FORMAT = "plantation-model/1"
 CARD = "model.json"
@@ -30,11 +31,20 @@ VALIDATION = "validation.json"
 class Calibration:
     """How member logits become calibrated outcome probabilities.
 
-    p = softmax((log mean_m softmax(z_m) − log w) / T), where ``w`` are the
-    per-outcome loss weights used in training (dividing them out restores
-    the posteriors of the reference sample) and ``T`` is the temperature
-    fitted on validation data. ``train_prior`` is the outcome frequency of
-    the training sample, the starting point for prior adjustment on a map.
+    p_sample = softmax((log mean_m softmax(z_m) − log w) / T), where ``w``
+    are the per-outcome loss weights used in training (dividing them out
+    restores the posteriors of the reference sample) and ``T`` is the
+    temperature fitted on validation data. These are posteriors under the
+    sample's outcome mix, ``train_prior`` (the training sample's outcome
+    frequencies; the validation split the temperature is fitted on is drawn
+    the same way).
+
+    With a ``target_prior`` q (the region's outcome frequencies, see
+    ``prior_source``), Bayes' rule moves them to the region's mix:
+    p ∝ p_sample · q / train_prior (Saerens et al. 2002), i.e.
+    p = softmax(log p_sample + log q − log train_prior). An empty
+    ``target_prior`` (every card written before it existed) leaves
+    p = p_sample.
     """
 
     temperature: float = 1.0
@@ -43,6 +53,29 @@ class Calibration:
     #: Split-conformal threshold on 1 − p(outcome) (None: not calibrated).
     conformal_qhat: float | None = None
     conformal_alpha: float | None = None
+    #: The region's outcome frequencies the probabilities are shifted to (empty: none, the sample's mix).
+    target_prior: list[float] = field(default_factory=list)
+    #: Where ``target_prior`` came from: "sample" (none), "shares" (the region
+    #: config's population shares), "inclusion" (Hájek estimate from the
+    #: points' inclusion probabilities) or "bbse" (black-box shift estimation
+    #: on the region's unlabelled pixels).
+    prior_source: str = "sample"
+
+    def prior(self) -> list[float]:
+        """The outcome frequencies the calibrated probabilities refer to: ``target_prior``, else ``train_prior``."""
+        return list(self.target_prior or self.train_prior)
+
+    def prior_groups(self) -> dict[str, float]:
+        """:meth:`prior` summed over the four label groups (empty when the card records no prior)."""
+        p = self.prior()
+        if len(p) < 4:
+            return {}
+        g = outcome_groups(len(p))
+        return {name: round(sum(v for v, gi in zip(p, g, strict=True) if gi == i), 6) for i, name in enumerate(GROUP_NAMES)}
+
+    def correction(self) -> dict[str, object]:
+        """What the probabilities are corrected for, as recorded in maps and metrics: the prior's source and its label-group shares."""
+        return {"prior": self.prior_source, "target_prior_groups": self.prior_groups()}
 
 
 @dataclass
@@ -76,8 +109,6 @@ def resolve_model(path: str | Path) -> Path:
         if (cand / "model.json").is_file():
             return cand
     raise InputNotFoundError(f"{p.absolute()}: no model here (expected a training run folder with model/model.json, or a folder with model.json); train one with `plantation train`")
-
-
 
 
 def write_card(folder: str | Path, card: ModelCard) -> Path:

@@ -75,3 +75,11 @@ class CalibrationConfig:
     cutoff_year: int = 2020
     interval_level: float = 0.8
     conformal_alpha: float | None = 0.2
+    #: Class mix the probabilities are for: ``sample`` (the reference
+    #: sample's), ``shares`` (region.labels.population_shares), ``inclusion``
+    #: (Hájek estimate from region.labels.inclusion_column), ``bbse``
+    #: (estimated from the region's unlabelled pixels) or ``auto`` (shares if
+    #: given, else inclusion if given, else sample).
+    prior: str = "auto"
+    #: Unlabelled pixels drawn (seeded, across tiles) for ``prior=bbse``.
+    bbse_pixels: int = 20000

@@ -9,12 +9,17 @@
    validation loss;
 3. fit the temperature on the validation split and, optionally, a
    split-conformal threshold on it (:mod:`plantation.model.calibration`);
-4. score the test split and write the run folder.
+4. score the test split;
+5. choose the class mix the exported probabilities are for
+   (``calibration.prior``, :func:`target_prior`) and write the run folder.
 
 Class imbalance: each outcome's loss weight is (n_outcome)^−½, normalised
 to mean one over the samples, so rare years and classes count more without
 letting a handful of points dominate. The weights are divided back out before
-calibration, so probabilities refer to the sample's frequencies.
+calibration, so probabilities refer to the sample's frequencies; the
+exported card then shifts them to the region's mix where one is known
+(``calibration.prior``). The test metrics and ``validation.json`` describe
+the sample-mix probabilities on the (stratified) held-out points.
 
 Label noise: ``training.loss=gce`` uses the generalised cross-entropy of
 Zhang & Sabuncu (2018, NeurIPS), (1 − p_y^q) / q, which bounds the pull of a
@@ -29,6 +34,7 @@ import os
 import shutil
 import time
 import warnings
+from collections.abc import Sequence
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
@@ -41,7 +47,7 @@ from torch.utils.data import DataLoader, TensorDataset
 
 from plantation import __version__
 from plantation.errors import ConfigError
-from plantation.imagery.config import RegionConfig
+from plantation.imagery.config import LabelsConfig, RegionConfig, check_labels_config, population_shares
 from plantation.imagery.region import TileStack, open_region
 from plantation.model import calibration
 from plantation.model.artefact import calibrated_log_probs
@@ -50,10 +56,13 @@ from plantation.model.card import Calibration, ModelCard, write_validation
 from plantation.model.config import CalibrationConfig, NetworkConfig, PatchConfig, SplitConfig, TrainerConfig, TrainingConfig
 from plantation.model.network import ConvRecurrentNet
 from plantation.model.outcomes import summarise
-from plantation.model.patches import SPLITS, PatchSet, build_patches, day_of_year_fraction, year_of
+from plantation.model.patches import SPLITS, PatchSet, build_patches, day_of_year_fraction, features, read_patches, year_of
 from plantation.reference.labels import LABEL_CODES, LabelSet, read_labels
 
 log = logging.getLogger(__name__)
+
+#: Values of ``calibration.prior`` besides ``auto`` (see :func:`resolve_prior`).
+PRIORS: tuple[str, ...] = ("sample", "shares", "inclusion", "bbse")
 
 
 @dataclass
@@ -90,6 +99,29 @@ def check_config(cfg: TrainConfig) -> None:
     a = cfg.calibration.conformal_alpha
     if a is not None and not 0 < a < 1:
         raise ConfigError(f"calibration.conformal_alpha: {a!r} must be in (0, 1) or null")
+    check_labels_config(cfg.region.labels)
+    resolve_prior(cfg.calibration, cfg.region.labels)
+    if cfg.calibration.bbse_pixels < 1:
+        raise ConfigError(f"calibration.bbse_pixels: {cfg.calibration.bbse_pixels!r} must be at least 1")
+
+
+def resolve_prior(cc: CalibrationConfig, lc: LabelsConfig) -> str:
+    """The prior source ``calibration.prior`` stands for: ``auto`` becomes shares, else inclusion, else sample, by what the region's labels config gives.
+
+    Raises:
+        ConfigError: an unknown value, or ``shares`` / ``inclusion`` without
+            the region key it needs.
+    """
+    p = cc.prior
+    if p == "auto":
+        return "shares" if population_shares(lc) else "inclusion" if lc.inclusion_column else "sample"
+    if p not in PRIORS:
+        raise ConfigError(f"calibration.prior: {p!r} is not one of {['auto', *PRIORS]}")
+    if p == "shares" and not population_shares(lc):
+        raise ConfigError("calibration.prior: 'shares' needs region.labels.population_shares (each label group's share of the region's area)")
+    if p == "inclusion" and not lc.inclusion_column:
+        raise ConfigError("calibration.prior: 'inclusion' needs region.labels.inclusion_column (the labels file's column of inclusion probabilities)")
+    return p
 
 
 def outcome_weights(targets: np.ndarray, n_outcomes: int, scheme: str) -> np.ndarray:
@@ -283,10 +315,12 @@ class TrainedModel:
     is_global_zero: bool = True
 
 
-def fit(samples: PatchSet, cfg: TrainConfig, folder: Path) -> TrainedModel:
+def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[TileStack] = (), labels: LabelSet | None = None) -> TrainedModel:
     """Train the ensemble on ``samples`` (split already assigned) and calibrate it.
 
-    Checkpoints and logs go under ``folder``.
+    Checkpoints and logs go under ``folder``. ``labels`` (with inclusion
+    probabilities) is needed by ``calibration.prior=inclusion``, the
+    region's ``stacks`` by ``bbse``.
     """
     check_config(cfg)
     train, val = samples.part("train"), samples.part("val")
@@ -348,7 +382,83 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path) -> TrainedModel:
         metrics["test"] = score_samples(nets, cal, test, cfg.calibration)
     held, held_name = (test, "test") if len(test) else (val, "val")
     metrics["validation"] = reliability_record(nets, cal, held, held_name, cfg.calibration)
+    # The metrics above are of the sample-mix probabilities on stratified points; the card's prior applies from here on.
+    source = resolve_prior(cfg.calibration, cfg.region.labels)
+    q = target_prior(source, cfg, cal, samples, np.exp(val_lp), nets=nets, stacks=stacks, labels=labels)
+    if q is not None:
+        cal.target_prior = [float(v) for v in q]
+    cal.prior_source = source
+    record = {
+        **cal.correction(),
+        "target_prior": [round(v, 6) for v in cal.target_prior],
+        "sample_prior_groups": Calibration(train_prior=cal.train_prior).prior_groups(),
+        "metrics_prior": "sample",
+    }
+    metrics["prior"] = record
+    metrics["validation"]["prior"] = record
+    log.info("probabilities for the %s prior: %s", source, record["target_prior_groups"])
     return TrainedModel(nets, spec, cal, metrics, is_zero)
+
+
+def target_prior(
+    source: str, cfg: TrainConfig, cal: Calibration, samples: PatchSet, val_probs: np.ndarray, *, nets: list[ConvRecurrentNet], stacks: Sequence[TileStack] = (), labels: LabelSet | None = None
+) -> np.ndarray | None:
+    """The region's outcome prior (k,) for ``source`` (see :data:`PRIORS`), or None for ``sample``.
+
+    ``shares``: the region config's group shares, the conversion share
+    spread over the years like the training sample's; ``inclusion``: every
+    labelled point weighted by 1/π (Hájek); ``bbse``: black-box shift
+    estimation on label groups, with the validation split's confusion matrix
+    (``val_probs``, sample-mix probabilities (n_val, k)) and the mean
+    prediction on ``calibration.bbse_pixels`` random pixels of ``stacks``.
+    """
+    train_prior = np.asarray(cal.train_prior, dtype=np.float64)
+    k = len(train_prior)
+    if source == "sample":
+        return None
+    if source == "shares":
+        return calibration.prior_from_shares(population_shares(cfg.region.labels) or {}, train_prior)
+    if source == "inclusion":
+        if labels is None or "inclusion" not in labels.points:
+            raise ConfigError("calibration.prior: 'inclusion' needs labels read with region.labels.inclusion_column")
+        pts = labels.points
+        targets = samples.outcomes.encode(pts["label"].tolist(), pts["onset_year"].tolist())
+        return calibration.population_prior(targets, pts["inclusion"].to_numpy(), k)
+    if source == "bbse":
+        if not stacks:
+            raise ConfigError("calibration.prior: 'bbse' needs the region's tiles to draw unlabelled pixels from")
+        pixels = unlabelled_probs(nets, cal, stacks, cfg, n=cfg.calibration.bbse_pixels, seed=cfg.training.seed)
+        return calibration.bbse_prior(val_probs, samples.part("val").target, pixels, train_prior, groups=calibration.outcome_groups(k))
+    raise ConfigError(f"calibration.prior: {source!r} is not one of {list(PRIORS)}")
+
+
+def unlabelled_probs(nets: list[ConvRecurrentNet], cal: Calibration, stacks: Sequence[TileStack], cfg: TrainConfig, *, n: int, seed: int, chunk: int = 1000) -> np.ndarray:
+    """Sample-mix probabilities (m, k) of up to ``n`` pixels drawn at random (seeded, with replacement) across the tiles, in proportion to their areas.
+
+    Read in chunks of ``chunk`` pixels like training patches, so memory stays
+    at one chunk's neighbourhoods; pixels with no clear date are left out.
+    """
+    rng = np.random.default_rng(seed)
+    sizes = np.array([s.grid.height * s.grid.width for s in stacks], dtype=np.float64)
+    counts = rng.multinomial(n, sizes / sizes.sum())
+    k = cfg.patches.neighbourhood
+    out = []
+    for stack, m in zip(stacks, counts, strict=True):
+        flat = np.sort(rng.integers(0, stack.grid.height * stack.grid.width, int(m)))
+        rows, cols = flat // stack.grid.width, flat % stack.grid.width
+        for i in range(0, len(flat), chunk):
+            refl, valid = read_patches(stack, rows[i : i + chunk], cols[i : i + chunk], k)
+            seen = valid[:, :, k // 2, k // 2].any(1)
+            if not seen.any():
+                continue
+            x = torch.from_numpy(np.ascontiguousarray(features(refl[seen], cfg.region.bands, cfg.patches.indices)))
+            v = torch.from_numpy(np.ascontiguousarray(valid[seen]))
+            with torch.inference_mode():
+                z = torch.stack([net.eval()(x, v) for net in nets])
+            out.append(np.exp(calibrated_log_probs(z, cal).numpy()))
+    if not out:
+        raise ConfigError("calibration.prior: 'bbse' found no clear pixel among those drawn; raise calibration.bbse_pixels")
+    return np.concatenate(out)
 
 
 def score_samples(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchSet, cc: CalibrationConfig) -> dict[str, Any]:
@@ -418,7 +528,9 @@ def load_region_samples(cfg: TrainConfig) -> tuple[list[TileStack], LabelSet, Pa
     if not cfg.region.labels.path:
         raise ConfigError(f"region {cfg.region.name!r}: labels.path is not set; training needs labelled points")
     stacks = open_region(cfg.region)
-    labels = read_labels(cfg.region.labels.path, grids={s.name: s.grid for s in stacks}, years=[int(y) for y in stacks[0].years], csv_crs=cfg.region.labels.crs)
+    labels = read_labels(
+        cfg.region.labels.path, grids={s.name: s.grid for s in stacks}, years=[int(y) for y in stacks[0].years], csv_crs=cfg.region.labels.crs, inclusion_column=cfg.region.labels.inclusion_column
+    )
     samples = build_patches(stacks, labels, bands=cfg.region.bands, index_names=cfg.patches.indices, k=cfg.patches.neighbourhood, block=cfg.split.block, shares=cfg.split.shares, seed=cfg.split.seed)
     return stacks, labels, samples
 
@@ -456,7 +568,7 @@ def run(cfg: TrainConfig, resolved_config: str | None = None) -> Path:
     elif cfg.trainer.devices > 1:
         # Processes on one machine share its cores (see DEVELOPERS.md).
         torch.set_num_threads(max(1, (os.cpu_count() or 1) // cfg.trainer.devices))
-    _, labels, samples = load_region_samples(cfg)
+    stacks, labels, samples = load_region_samples(cfg)
     final = Path(cfg.out_dir) / cfg.run_name
     work = final.with_name(final.name + ".partial")
     # Processes started by DDP re-run this script (LOCAL_RANK / NODE_RANK > 0):
@@ -465,7 +577,7 @@ def run(cfg: TrainConfig, resolved_config: str | None = None) -> Path:
     if rank == 0 and work.exists():
         shutil.rmtree(work)
     work.mkdir(parents=True, exist_ok=True)
-    trained = fit(samples, cfg, work)
+    trained = fit(samples, cfg, work, stacks=stacks, labels=labels)
     if not trained.is_global_zero:
         return final
     split_counts = {name: int((samples.split == i).sum()) for i, name in enumerate(SPLITS)}

@@ -11,6 +11,10 @@ Accepted files:
 Labels are one of :data:`LABEL_NAMES`. ``onset_year`` (the calendar year in
 which forest was cleared for the plantation) is required for ``conversion``,
 must lie inside the imagery's years, and is ignored for the other labels.
+
+Where the region config names an ``inclusion_column``, that column (or
+attribute) holds each point's inclusion probability π in (0, 1] under the
+sampling design; it is kept as the points' ``inclusion`` column.
 """
 
 from __future__ import annotations
@@ -43,8 +47,9 @@ class LabelSet:
             ``code`` (int, see :data:`LABEL_CODES`), ``onset_year`` (int,
             0 unless ``label == "conversion"``), ``tile`` (tile name),
             ``row``/``col`` (pixel indices in that tile), ``x``/``y``
-            (coordinates in the imagery CRS) and ``source`` (the file's line
-            or feature number, for messages).
+            (coordinates in the imagery CRS), ``source`` (the file's line
+            or feature number, for messages) and, when an inclusion column
+            was read, ``inclusion`` (float64 π in (0, 1]).
         fingerprint: SHA-256 of the sorted (tile, row, col, label, onset)
             records: two label sets with the same content share it.
         path: the file read.
@@ -60,8 +65,8 @@ class LabelSet:
         return {n: int(c.get(n, 0)) for n in LABEL_NAMES}
 
 
-def read_table(path: Path, csv_crs: str | None) -> tuple[pd.DataFrame, CRS, str]:
-    """Raw table with x, y, label, onset_year and the unit of its row numbers."""
+def read_table(path: Path, csv_crs: str | None, extra: Sequence[str] = ()) -> tuple[pd.DataFrame, CRS, str]:
+    """Raw table with x, y, label, onset_year (and the ``extra`` columns) and the unit of its row numbers."""
     if not path.exists():
         raise InputNotFoundError(f"{Path(path).absolute()}: labels file does not exist")
     suffix = path.suffix.lower()
@@ -75,9 +80,9 @@ def read_table(path: Path, csv_crs: str | None) -> tuple[pd.DataFrame, CRS, str]
         except (pd.errors.ParserError, UnicodeDecodeError) as exc:
             raise LabelError(f"{path}: cannot parse as CSV ({str(exc).splitlines()[0]})") from None
         table.columns = [str(c).strip() for c in table.columns]
-        missing = [c for c in ("x", "y", "label", "onset_year") if c not in table.columns]
+        missing = [c for c in ("x", "y", "label", "onset_year", *extra) if c not in table.columns]
         if missing:
-            raise LabelError(f"{path}: missing column(s) {missing}; expected x, y, label, onset_year")
+            raise LabelError(f"{path}: missing column(s) {missing}; expected x, y, label, onset_year{''.join(', ' + c for c in extra)}")
         # Line numbers as a text editor shows them: the header is line 1.
         table["source"] = np.arange(len(table)) + 2
         for col in ("x", "y"):
@@ -103,9 +108,9 @@ def read_table(path: Path, csv_crs: str | None) -> tuple[pd.DataFrame, CRS, str]
         if meta["crs"] is None:
             raise LabelError(f"{path}: the file has no CRS; assign one when exporting it")
         names = list(meta["fields"])
-        missing = [c for c in ("label", "onset_year") if c not in names]
+        missing = [c for c in ("label", "onset_year", *extra) if c not in names]
         if missing:
-            raise LabelError(f"{path}: missing attribute(s) {missing}; expected label, onset_year")
+            raise LabelError(f"{path}: missing attribute(s) {missing}; expected label, onset_year{''.join(', ' + c for c in extra)}")
         pts = shapely.from_wkb(geom)
         kinds = shapely.get_type_id(pts)
         if len(pts) and (kinds != shapely.GeometryType.POINT).any():
@@ -118,13 +123,14 @@ def read_table(path: Path, csv_crs: str | None) -> tuple[pd.DataFrame, CRS, str]
                 "label": fields[names.index("label")],
                 "onset_year": fields[names.index("onset_year")],
                 "source": np.arange(len(pts)) + 1,
+                **{c: fields[names.index(c)] for c in extra},
             }
         )
         return table, CRS.from_user_input(meta["crs"]), "feature"
     raise LabelError(f"{path}: unsupported labels format {suffix!r}; use .csv, .gpkg or .geojson")
 
 
-def read_labels(path: str | Path, *, grids: dict[str, Grid], years: Sequence[int], csv_crs: str | None = "EPSG:4326") -> LabelSet:
+def read_labels(path: str | Path, *, grids: dict[str, Grid], years: Sequence[int], csv_crs: str | None = "EPSG:4326", inclusion_column: str | None = None) -> LabelSet:
     """Read, check and place reference points on the imagery.
 
     Args:
@@ -133,6 +139,8 @@ def read_labels(path: str | Path, *, grids: dict[str, Grid], years: Sequence[int
         years: the calendar years the imagery covers; conversion onsets must
             lie among them.
         csv_crs: CRS of a CSV's x/y columns.
+        inclusion_column: column (attribute) holding each point's inclusion
+            probability π in (0, 1]; None = none read.
 
     Returns:
         A :class:`LabelSet`. Points repeated with identical values are kept once.
@@ -140,13 +148,25 @@ def read_labels(path: str | Path, *, grids: dict[str, Grid], years: Sequence[int
     Raises:
         LabelError: empty file, missing columns, unknown label, missing or
             out-of-range onset year, no CRS, a point outside every tile, or
-            the same pixel labelled twice with different values. The message
+            the same pixel labelled twice with different values, a missing
+            inclusion column or a π not in (0, 1]. The message
             names the file and line (CSV) or feature (vector) number.
     """
     path = Path(path)
-    table, crs, unit = read_table(path, csv_crs)
+    extra = (inclusion_column,) if inclusion_column else ()
+    table, crs, unit = read_table(path, csv_crs, extra)
     if table.empty:
         raise LabelError(f"{path}: the labels file has no rows")
+    if inclusion_column:
+        pi = pd.to_numeric(table[inclusion_column], errors="coerce").to_numpy(dtype=np.float64)
+        # π = 0 means the point could not have been drawn; π > 1 is not a probability.
+        bad = ~np.isfinite(pi) | (pi <= 0) | (pi > 1)
+        if bad.any():
+            i = int(np.flatnonzero(bad)[0])
+            raise LabelError(
+                f"{path}: {unit} {table['source'].iloc[i]}: inclusion probability {table[inclusion_column].iloc[i]!r} (column {inclusion_column!r}) is not a number in (0, 1] "
+                f"({int(bad.sum())} bad); fix the sampling design's probabilities or set region.labels.inclusion_column=null"
+            )
 
     labels = table["label"].astype(str).str.strip()
     unknown = ~labels.isin(LABEL_NAMES)
@@ -201,6 +221,8 @@ def read_labels(path: str | Path, *, grids: dict[str, Grid], years: Sequence[int
             "source": table["source"].to_numpy(),
         }
     )
+    if inclusion_column:
+        points["inclusion"] = pi
     key = ["tile", "row", "col"]
     dup = points.duplicated(key, keep=False)
     if dup.any():
