@@ -12,7 +12,21 @@ from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
 
-from plantation.errors import FileFormatError
+from plantation.errors import FileFormatError, InputNotFoundError
+
+
+def locate(path: str | Path, name: str, *, missing: str) -> Path:
+    """The record file: ``path`` itself, or ``path/name`` when ``path`` is a folder.
+
+    Raises:
+        InputNotFoundError: there is no such file; the message gives the absolute path tried, then ``missing`` (what to do).
+    """
+    p = Path(path)
+    if p.is_dir():
+        p = p / name
+    if not p.is_file():
+        raise InputNotFoundError(f"{p.absolute()}: {name} not found; {missing}")
+    return p
 
 
 def load_object(path: Path, *, what: str, again: str) -> dict[str, Any]:

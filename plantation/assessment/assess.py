@@ -32,7 +32,7 @@ from plantation.errors import ConfigError, FileFormatError, InputNotFoundError, 
 from plantation.imagery.config import RegionConfig
 from plantation.mapping.folder import open_map, sha256_of
 from plantation.model.card import CARD, WEIGHTS, read_card, read_validation, resolve_model
-from plantation.records import check_shapes, load_object
+from plantation.records import check_shapes, load_object, locate
 from plantation.reference.labels import LABEL_NAMES
 
 FORMAT = "plantation-assessment/1"
@@ -376,11 +376,7 @@ def read_assessment(path: str | Path) -> dict[str, Any]:
         FileFormatError: it is not valid JSON, not an assessment (its ``kind``),
             or a section has the wrong shape; one line naming the file.
     """
-    p = Path(path)
-    if p.is_dir():
-        p = p / ASSESSMENT_NAME
-    if not p.is_file():
-        raise InputNotFoundError(f"{p.absolute()}: assessment.json not found; run `plantation assess` to write it")
+    p = locate(path, ASSESSMENT_NAME, missing="run `plantation assess` to write it")
     again = "write it again with `plantation assess`"
     doc = load_object(p, what="an assessment", again=again)
     if doc.get("kind") != FORMAT:

@@ -50,7 +50,7 @@ from plantation.errors import ConfigError, FileFormatError, InputNotFoundError, 
 from plantation.imagery.config import RegionConfig
 from plantation.imagery.region import Grid
 from plantation.mapping.folder import MappedRegion, MapTile, open_map, sha256_of
-from plantation.records import load_object
+from plantation.records import load_object, locate
 from plantation.reference.labels import LABEL_CODES, LABEL_NAMES
 
 #: Version 2 keeps each point's bookkeeping (``points``) here instead of on the sheet.
@@ -488,11 +488,7 @@ def read_design(path: str | Path) -> dict[str, Any]:
             sheet and has no ``points``), or an entry is malformed; one line
             naming the file and the entry.
     """
-    p = Path(path)
-    if p.is_dir():
-        p = p / DESIGN_NAME
-    if not p.is_file():
-        raise InputNotFoundError(f"{p.absolute()}: design.json not found (`plantation sample` writes it beside samples.csv; or set design=<its path>)")
+    p = locate(path, DESIGN_NAME, missing="`plantation sample` writes it beside samples.csv; or set design=<its path>")
     redraw = "draw the sample again with `plantation sample`"
     doc = load_object(p, what="a sample design", again=f"restore the design.json written with the sample, or {redraw}")
     kind = doc.get("kind")

@@ -29,7 +29,6 @@ machines and runs (times, rates, memory).
 
 from __future__ import annotations
 
-import json
 import os
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
@@ -39,6 +38,7 @@ from typing import Any
 
 from plantation.errors import InputNotFoundError, PlantationError
 from plantation.imagery.config import RegionConfig
+from plantation.records import load_object
 
 #: The command that regenerates the blocks, quoted in every block's source line.
 COMMAND = "plantation readme-figures"
@@ -418,14 +418,7 @@ class Block:
 
 
 def _load(path: Path, writer: str) -> dict[str, Any]:
-    try:
-        doc = json.loads(path.read_text(encoding="utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        why = f"{exc.msg}, line {exc.lineno}" if isinstance(exc, json.JSONDecodeError) else "not UTF-8 text"
-        raise PlantationError(f"{path}: not valid JSON ({why}); write it again with `{writer}`") from None
-    if not isinstance(doc, dict):
-        raise PlantationError(f"{path}: holds a JSON {type(doc).__name__}, not an object; write it again with `{writer}`")
-    return doc
+    return load_object(path, what="an object", again=f"write it again with `{writer}`")
 
 
 def blocks(cfg: ReadmeConfig) -> list[Block]:

@@ -64,7 +64,7 @@ from pyproj import CRS, Geod, Transformer
 from plantation.errors import ConfigError, FileFormatError, InputNotFoundError, PlantationError
 from plantation.imagery.config import RegionConfig
 from plantation.mapping.folder import BAND, NO_CORRECTION, NODATA, NOTICE, MapTile, file_digest, open_map
-from plantation.records import check_shapes, load_object
+from plantation.records import check_shapes, load_object, locate
 from plantation.reference.labels import LABEL_CODES
 
 KIND = "plantation-plots/1"
@@ -667,11 +667,7 @@ def read_plots_json(path: str | Path) -> dict[str, Any]:
         FileFormatError: it is not valid JSON, not a plot check (its ``kind``), or
             a section has the wrong shape; one line naming the file.
     """
-    p = Path(path)
-    if p.is_dir():
-        p = p / PLOTS_JSON
-    if not p.is_file():
-        raise InputNotFoundError(f"{p.absolute()}: plots.json not found; run `plantation farmplots` to write it")
+    p = locate(path, PLOTS_JSON, missing="run `plantation farmplots` to write it")
     again = "write it again with `plantation farmplots`"
     doc = load_object(p, what="a plot check", again=again)
     if doc.get("kind") != KIND:
