@@ -765,6 +765,25 @@ def render(starter: Starter, dest_folder: str | Path) -> str:
     out += [f"  path: {_scalar(_rel(r.labels.path, base) if r.labels.path else None)}"]
     out += _comment(["CRS of a CSV's x/y columns (x = longitude, y = latitude for EPSG:4326).", *n.get("labels.crs", [])], 2)
     out += [f"  crs: {_scalar(r.labels.crs)}"]
+    out += _comment(
+        [
+            "Share of the region's area in each label group, where known from elsewhere (a published statistic, an earlier assessment): all four summing to 1, or all null.",
+            "CHECK: reference samples over-sample change; without these (or inclusion_column, or calibration.prior=bbse at training) "
+            "the probabilities refer to the sample's class mix, not the region's.",
+        ],
+        2,
+    )
+    out += ["  population_shares:"]
+    groups = (
+        ("stable_forest", "Natural forest standing through the whole series."),
+        ("conversion", "Forest converted to tree-crop plantation within the series."),
+        ("old_plantation", "Plantation already before the series."),
+        ("other", "Other land or disturbance."),
+    )
+    for group, what in groups:
+        out += _comment(what, 4) + [f"    {group}: null"]
+    out += _comment("Column of the labels file with each point's inclusion probability in (0, 1] under the sampling design; null: not recorded.", 2)
+    out += ["  inclusion_column: null"]
     out += _comment("Spatial chunk in pixels for lazy reading; bounds the memory of each task.")
     out += [f"chunk: {r.chunk}", ""]
     text = "\n".join(out)
