@@ -90,6 +90,10 @@ def test_benchmark_end_to_end_writes_every_method_and_figure(tmp_path):
         assert set(m["per_class_f1"]) == {"stable_forest", "conversion", "old_plantation", "other"}
         assert {"logging", "fire_regrowth", "cleared_for_crops"} <= set(m["false_conversion_rate"])
         assert m["seeds"] == [0] and m["spread"]["year_exact"] == [m["year_exact"], m["year_exact"]]
+        if name != "breakpoint":
+            assert m["prior"]["source"] == "bbse" and 0 < m["prior"]["conversion_share"] < 1
+            assert {"ece", "ece_after_cutoff", "mean_p_conversion", "forest_plot_after_share"} <= set(m["before_recalibration"]) & set(m["sample_prior"])
+            assert m["recalibration"]["n"] > 0 and 0.3 <= m["interval_mass"] <= 0.99
     # The model is trained afresh and still beats a coin: a wrong scorer or a shuffled map would not.
     assert region["methods"]["model"]["conversion_f1"] > 0.5
     assert json.loads((tmp_path / "acc.json").read_text()) == json.loads(json.dumps(report))

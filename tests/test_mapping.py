@@ -291,6 +291,6 @@ def test_bad_requests_are_refused_with_the_culprit_named(region, model_dir, tmp_
 
 
 def test_settings_key_ignores_how_but_not_what():
-    a = Settings(min_clear=4, cutoff_year=2020, interval_level=0.8, window=128, pixel_batch=1024, threads=2, quicklook=True)
+    a = Settings(min_clear=4, cutoff_year=2020, interval_level=0.8, interval_mass=0.8, window=128, pixel_batch=1024, threads=2, quicklook=True)
     assert a.content_key() == replace(a, window=64, threads=1).content_key()
     assert a.content_key() != replace(a, cutoff_year=2019).content_key()

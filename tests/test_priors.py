@@ -69,10 +69,11 @@ def test_bad_population_shares_are_refused(shares, message):
 
 
 def test_prior_choice_auto_and_refusals():
-    assert resolve_prior(CalibrationConfig(), LabelsConfig()) == "sample"
+    assert resolve_prior(CalibrationConfig(), LabelsConfig()) == "bbse"
     assert resolve_prior(CalibrationConfig(), LabelsConfig(inclusion_column="pi")) == "inclusion"
     assert resolve_prior(CalibrationConfig(), LabelsConfig(population_shares=PopulationShares(**SHARES), inclusion_column="pi")) == "shares"
     assert resolve_prior(CalibrationConfig(prior="bbse"), LabelsConfig(population_shares=PopulationShares(**SHARES))) == "bbse"
+    assert resolve_prior(CalibrationConfig(prior="sample"), LabelsConfig(inclusion_column="pi")) == "sample"
     with pytest.raises(ConfigError, match="calibration.prior: 'posterior' is not one of"):
         resolve_prior(CalibrationConfig(prior="posterior"), LabelsConfig())
     with pytest.raises(ConfigError, match="needs region.labels.population_shares"):
@@ -203,7 +204,7 @@ def _save(folder: Path, cal: Calibration) -> Path:
 def _map(model: Path, region: RegionConfig, dest: Path) -> tuple[np.ndarray, dict[str, str]]:
     art = artefact.load(model)
     stack = open_region(region)[0]
-    map_tile(stack, art, Settings(min_clear=1, cutoff_year=2015, interval_level=0.8, window=8, pixel_batch=64, threads=1, quicklook=False), dest, region=region)
+    map_tile(stack, art, Settings(min_clear=1, cutoff_year=2015, interval_level=0.8, interval_mass=0.8, window=8, pixel_batch=64, threads=1, quicklook=False), dest, region=region)
     with rasterio.open(dest) as src:
         return src.read(), src.tags()
 

@@ -29,7 +29,9 @@ def test_scores_of_six_pixels():
     sc = map_scores(s, true_label, true_year)
     assert sc["year_exact"] == pytest.approx(1 / 3, abs=1e-4)
     assert sc["year_within1"] == pytest.approx(2 / 3, abs=1e-4)
-    assert sc["interval80_coverage"] == pytest.approx(1 / 3, abs=1e-4)
+    # two conversions mapped as conversion, one of them inside its interval; three true conversions in all
+    assert sc["interval80_coverage"] == pytest.approx(1 / 2, abs=1e-4)
+    assert sc["interval80_coverage_all_conversions"] == pytest.approx(1 / 3, abs=1e-4)
     assert sc["year_mae"] == pytest.approx(0.5)
     # conversion vs not: TP 2, FP 1, FN 1 → F1 = 2·2 / (2·2 + 1 + 1) = 2/3
     assert sc["conversion_f1"] == pytest.approx(2 / 3, abs=1e-4)

@@ -8,11 +8,25 @@ clouds) wall to wall and scores each map against that region's complete
 truth rasters (:mod:`plantation.benchmarks.scores`). Figures are medians over
 the seeds, with their spread.
 
-The reference sample is stratified, so every method's probabilities reflect
-the sample's outcome frequencies, not the map's. With ``prior_adjust`` the
-model's and the trees' probabilities are re-weighted to the held-out
-region's frequencies estimated from its unlabelled pixels by EM (Saerens et
-al. 2002, see :mod:`plantation.model.calibration`); the truth is never used.
+The reference sample over-samples conversion, so a method's probabilities
+reflect the sample's outcome frequencies unless corrected. Every method with
+probabilities goes through the chain a user runs, the same way for each:
+
+1. the prior correction of the training config (``calibration.prior``; by
+   default black-box shift estimation on the training region's unlabelled
+   pixels), the network's inside training, the baselines' here with their
+   own validation probabilities;
+2. the year interval's mass recalibrated on the validation split so that it
+   holds the nominal share of true years;
+3. a simulated assessment: a stratified random sample of the held-out map
+   (strata: the mapped classes, conversions split at the cutoff), labelled
+   from the truth, and the design-weighted logistic recalibration of
+   p_conversion and p_after_cutoff that ``plantation recalibrate`` fits.
+
+The figures at the top of each method are of the map after all three; the
+ones before step 3, and with the sample's mix (no correction), are kept
+beside them. The truth is used only to label the assessment sample and to
+score.
 """
 
 from __future__ import annotations
@@ -38,11 +52,11 @@ from plantation.errors import ConfigError
 from plantation.imagery.config import LabelsConfig, RegionConfig, TileConfig
 from plantation.imagery.region import TileStack, open_region
 from plantation.model import artefact as art_io
-from plantation.model.calibration import adjust_priors, expected_calibration_error
+from plantation.model.calibration import apply_recalibration, bbse_prior, expected_calibration_error, fit_recalibration, outcome_groups, reweight
 from plantation.model.inference import predict_tile
-from plantation.model.outcomes import Outcomes, summarise
+from plantation.model.outcomes import Outcomes, Summary, mass_for_coverage, summarise
 from plantation.model.patches import PatchSet, features, year_of
-from plantation.model.training import TrainConfig, fit, load_region_samples, model_card
+from plantation.model.training import TrainConfig, fit, interval_curve, load_region_samples, model_card, resolve_prior
 from plantation.simulation.landscape import Landscape, build_landscape
 from plantation.simulation.scenario import EVENTS, SimulationConfig, dates_of, decimal_year
 from plantation.simulation.writer import tile_names, write_region
@@ -72,6 +86,18 @@ class SemiRealBench:
 
 
 @dataclass
+class AssessmentSim:
+    """The simulated assessment sample each map is recalibrated from."""
+
+    #: Points in all.
+    n: int = 900
+    #: Points at least in each stratum (all of a smaller stratum).
+    min_per_stratum: int = 100
+    #: Seed of the draw (added to the training seed).
+    seed: int = 515
+
+
+@dataclass
 class ComparisonConfig(TrainConfig):
     """Schema of ``configs/benchmark_accuracy.yaml``: the training config plus the held-out region.
 
@@ -89,7 +115,7 @@ class ComparisonConfig(TrainConfig):
     #: Side of the square plots (pixels) of untouched forest for forest_plot_after_share.
     plot_px: int = 10
     eval_dir: str = "bench/cache/eval_region"
-    prior_adjust: bool = False
+    assessment: AssessmentSim = field(default_factory=AssessmentSim)
     window: int = 96
     out: str = "bench/results/accuracy.json"
     progress: bool = True
@@ -221,6 +247,90 @@ def _scores(summ: Any, truth: dict[str, np.ndarray], outcomes: Outcomes, cfg: Co
     return sc
 
 
+def assessment_strata(summ: Summary, cutoff_year: int) -> np.ndarray:
+    """Stratum of each pixel (flattened): its mapped class code, with conversions after ``cutoff_year`` apart (code 5)."""
+    lab = np.asarray(summ.label).ravel().astype(np.int64)
+    after = (lab == 2) & (np.asarray(summ.year).ravel() > cutoff_year)
+    return np.where(after, 5, lab)
+
+
+def draw_assessment(strata: np.ndarray, n: int, min_per_stratum: int, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+    """A stratified random sample without replacement: (pixel indices, design weights 1/π).
+
+    Each stratum gets ``min_per_stratum`` points (all of a smaller one); the
+    rest of ``n`` is shared in proportion to the strata's sizes, as the
+    common compromise between proportional and equal allocation (Olofsson
+    et al. 2014, section 5.1.4).
+    """
+    codes, sizes = np.unique(strata, return_counts=True)
+    base = np.minimum(sizes, min_per_stratum)
+    spare = max(n - int(base.sum()), 0)
+    extra = np.floor(spare * sizes / sizes.sum()).astype(np.int64)
+    alloc = np.minimum(base + extra, sizes)
+    idx, wts = [], []
+    for c, size, k in zip(codes, sizes, alloc, strict=True):
+        members = np.flatnonzero(strata == c)
+        pick = rng.choice(members, size=int(k), replace=False)
+        idx.append(pick)
+        wts.append(np.full(len(pick), size / k))
+    return np.concatenate(idx), np.concatenate(wts)
+
+
+def recalibrated(summ: Summary, truth: dict[str, np.ndarray], cfg: ComparisonConfig, seed: int) -> tuple[Summary, dict[str, Any]]:
+    """``summ`` with p_conversion and p_after_cutoff recalibrated from a simulated assessment sample of the map, and what was fitted.
+
+    The sample is labelled from the truth, as interpreters would label it;
+    the fit is :func:`plantation.model.calibration.fit_recalibration`, the
+    one ``plantation recalibrate`` applies to written maps.
+    """
+    a = cfg.assessment
+    strata = assessment_strata(summ, cfg.calibration.cutoff_year)
+    idx, w = draw_assessment(strata, a.n, a.min_per_stratum, np.random.default_rng(a.seed + seed))
+    conv = truth["label"] == 2
+    after = conv & (truth["year"] > cfg.calibration.cutoff_year)
+    p_conv = np.asarray(summ.p_conversion, dtype=np.float64).ravel()
+    p_after = np.asarray(summ.p_after_cutoff, dtype=np.float64).ravel()
+    fitted: dict[str, Any] = {"n": len(idx), "strata": {str(int(c)): int((strata[idx] == c).sum()) for c in np.unique(strata)}}
+    out = {}
+    for name, p, y in (("p_conversion", p_conv, conv), ("p_after_cutoff", p_after, after)):
+        if y[idx].min() == y[idx].max():
+            # One outcome only in the sample: nothing to fit, keep the probabilities.
+            out[name], fitted[name] = p, None
+            continue
+        coef = fit_recalibration(p[idx], y[idx], w)
+        out[name] = apply_recalibration(p, coef)
+        fitted[name] = [round(coef[0], 4), round(coef[1], 4)]
+    shape = np.asarray(summ.p_conversion).shape
+    return replace(summ, p_conversion=out["p_conversion"].reshape(shape).astype(np.float32), p_after_cutoff=out["p_after_cutoff"].reshape(shape).astype(np.float32)), fitted
+
+
+def baseline_prior(source: str, network_prior: np.ndarray, train_prior: np.ndarray, val_probs: np.ndarray, val_target: np.ndarray, pixel_probs: np.ndarray) -> np.ndarray:
+    """A baseline's target prior by the network's ``source``: BBSE with the baseline's own probabilities, else the network's (shares and inclusion do not depend on the classifier)."""
+    if source == "bbse":
+        return bbse_prior(val_probs, val_target, pixel_probs, train_prior, groups=outcome_groups(len(train_prior)))
+    if source == "sample":
+        return train_prior
+    return network_prior
+
+
+def training_pixels(stacks: list[TileStack], bands: list[str], index_names: list[str], n: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
+    """Series of up to ``n`` random pixels of the training region with at least one clear date: ((m, time, channel), (m, time))."""
+    rng = np.random.default_rng(seed)
+    xs, vs = [], []
+    sizes = np.array([s.grid.height * s.grid.width for s in stacks], dtype=np.float64)
+    for st, m in zip(stacks, rng.multinomial(n, sizes / sizes.sum()), strict=True):
+        x, v = tile_series(st, bands, index_names)
+        pick = rng.choice(len(x), size=min(int(m), len(x)), replace=False)
+        keep = pick[v[pick].any(1)]
+        xs.append(x[keep])
+        vs.append(v[keep])
+    return np.concatenate(xs), np.concatenate(vs)
+
+
+def _headline(sc: dict[str, Any]) -> dict[str, Any]:
+    return {k: sc[k] for k in ("ece", "ece_after_cutoff", "mean_p_conversion", "forest_plot_after_share")}
+
+
 @dataclass
 class HeldOut:
     """One benchmark region: the training config (its region and labels) and the held-out region scored wall to wall."""
@@ -254,7 +364,7 @@ def semi_real_held_out(cfg: ComparisonConfig) -> HeldOut:
 def evaluate_seed(cfg: ComparisonConfig, held: HeldOut, seed: int) -> tuple[dict[str, dict[str, Any]], dict[str, Any]]:
     """Train every method with one training seed, map the held-out region, score each: ({method: scores}, region facts)."""
     tc = replace(held.train, training=replace(held.train.training, seed=seed))
-    _, labels, samples = load_region_samples(tc)
+    train_stacks, labels, samples = load_region_samples(tc)
     outcomes: Outcomes = samples.outcomes
     train, val = samples.part("train"), samples.part("val")
     date_year = year_of(samples.dates) - year_of(samples.dates).min()
@@ -262,7 +372,7 @@ def evaluate_seed(cfg: ComparisonConfig, held: HeldOut, seed: int) -> tuple[dict
 
     with tempfile.TemporaryDirectory(prefix="plantation-bench-") as tmp:
         t0 = time.perf_counter()
-        trained = fit(samples, tc, Path(tmp))
+        trained = fit(samples, tc, Path(tmp), stacks=train_stacks, labels=labels)
         model_seconds = time.perf_counter() - t0
         art_io.save(Path(tmp) / "model", model_card(tc, samples, trained, labels), trained.members)
         artefact = art_io.load(Path(tmp) / "model")
@@ -284,6 +394,25 @@ def evaluate_seed(cfg: ComparisonConfig, held: HeldOut, seed: int) -> tuple[dict
     nbr, static = BreakRule.series(xs, vs, date_year, ny, samples.channels)
     rule = BreakRule().fit(nbr, static, train.target)
     rule_seconds = time.perf_counter() - t0
+
+    # The network's corrections come with its card; the baselines get the same ones from their own probabilities.
+    cal = artefact.card.calibration
+    source = resolve_prior(tc.calibration, tc.region.labels)
+    train_prior = np.asarray(cal.train_prior, dtype=np.float64)
+    level = cfg.calibration.interval_level
+    priors = {"model": np.asarray(cal.prior(), dtype=np.float64)}
+    masses = {"model": cal.interval_mass(level)}
+    val_probs = {
+        "trees": trees.predict_proba(annual_features(xv, vv, date_year, ny, samples.channels)),
+        "random_forest": forest.predict_proba(AnnualForest.features(xv, vv, date_year, ny, samples.channels)),
+    }
+    pixel_probs: dict[str, np.ndarray] = {}
+    if source == "bbse":
+        px, pv = training_pixels(train_stacks, list(tc.region.bands), list(cfg.patches.indices), tc.calibration.bbse_pixels, seed)
+        pixel_probs = {"trees": trees.predict_proba(annual_features(px, pv, date_year, ny, samples.channels)), "random_forest": forest.predict_proba(AnnualForest.features(px, pv, date_year, ny, samples.channels))}
+    for name, pv_ in val_probs.items():
+        priors[name] = baseline_prior(source, priors["model"], train_prior, pv_, val.target, pixel_probs.get(name, pv_))
+        masses[name] = mass_for_coverage(*interval_curve(reweight(pv_, train_prior, priors[name]), val.target, outcomes), level)
 
     region = held.region
     stacks = open_region(region)
@@ -316,24 +445,26 @@ def evaluate_seed(cfg: ComparisonConfig, held: HeldOut, seed: int) -> tuple[dict
         parts["forest_plots"].append(untouched_forest_plots(cls.ravel(), event.ravel(), cls.shape, cfg.plot_px))
     truth = {k: np.concatenate(v) for k, v in parts.items()}
     n_conv = max(int((truth["label"] == 2).sum()), 1)
-    train_prior = np.asarray(artefact.card.calibration.train_prior)
     seconds = {"model": model_seconds, "random_forest": forest_seconds, "trees": trees_seconds, "breakpoint": rule_seconds}
     results: dict[str, dict[str, Any]] = {}
     for name in methods:
         p = np.concatenate(probs[name])
-        extra: dict[str, Any] = {}
-        has_probability = name != "breakpoint"
-        if has_probability:
-            # Report the other choice of prior handling beside the chosen one.
-            p_adj, est = adjust_priors(p, train_prior)
-            other = summarise(p if cfg.prior_adjust else p_adj, outcomes.years, cutoff_year=cfg.calibration.cutoff_year, level=cfg.calibration.interval_level)
-            extra["ece_without_prior_adjust" if cfg.prior_adjust else "ece_with_prior_adjust"] = map_scores(other, truth["label"], truth["year"])["ece"]
-            extra["em_estimated_conversion_share"] = round(float(est[3:].sum()), 4)
-            if cfg.prior_adjust:
-                p = p_adj
-        summ = summarise(p, outcomes.years, cutoff_year=cfg.calibration.cutoff_year, level=cfg.calibration.interval_level)
-        sc = _scores(summ, truth, outcomes, cfg, has_probability=has_probability)
-        sc.update(extra)
+        if name == "breakpoint":
+            summ = summarise(p, outcomes.years, cutoff_year=cfg.calibration.cutoff_year, level=level)
+            sc = _scores(summ, truth, outcomes, cfg, has_probability=False)
+        else:
+            # The network's probabilities already carry its prior; undo it for the sample-mix figures.
+            p_sample = reweight(p, priors["model"], train_prior) if name == "model" else p
+            p_region = p if name == "model" else reweight(p, train_prior, priors[name])
+            summ = summarise(p_region, outcomes.years, cutoff_year=cfg.calibration.cutoff_year, level=masses[name])
+            final, fitted = recalibrated(summ, truth, cfg, seed)
+            sc = _scores(final, truth, outcomes, cfg, has_probability=True)
+            sc["before_recalibration"] = _headline(_scores(summ, truth, outcomes, cfg, has_probability=True))
+            as_sample = summarise(p_sample, outcomes.years, cutoff_year=cfg.calibration.cutoff_year, level=masses[name])
+            sc["sample_prior"] = _headline(_scores(as_sample, truth, outcomes, cfg, has_probability=True))
+            sc["recalibration"] = fitted
+            sc["prior"] = {"source": source, "conversion_share": round(float(priors[name][3:].sum()), 4), "sample_conversion_share": round(float(train_prior[3:].sum()), 4)}
+            sc["interval_mass"] = round(masses[name], 2)
         sc["train_seconds"] = round(seconds[name], 1)
         sc["map_seconds"] = round(map_seconds[name], 1)
         sc["n_train_labels"] = len(train)
@@ -391,7 +522,7 @@ def run(cfg: ComparisonConfig) -> dict[str, Any]:
     report = {
         "regions": regions,
         "seeds": list(cfg.seeds),
-        "prior_adjust": cfg.prior_adjust,
+        "assessment": asdict(cfg.assessment),
         "threads": torch.get_num_threads(),
     }
     out = Path(cfg.out)

@@ -45,9 +45,12 @@ def map_scores(summary: Summary, true_label: np.ndarray, true_year: np.ndarray, 
         F1 of conversion vs. not; ``macro_f1``: mean F1 over the four labels;
         ``year_mae``: mean absolute year error over true conversions mapped as
         conversion; ``ece``: expected calibration error of p_conversion, 10
-        bins; ``interval80_coverage``: share of true conversions whose year
-        lies in the mapped interval (a pixel not mapped as conversion has no
-        interval and counts as not covered).
+        bins; ``interval80_coverage``: share of true conversions mapped as
+        conversion whose year lies in the mapped interval (the interval is
+        of the year given conversion, so a missed conversion is a class
+        error, counted in ``year_exact``, not here);
+        ``interval80_coverage_all_conversions``: the same over all true
+        conversions, a pixel not mapped as conversion counting as not covered.
     """
     lab = np.asarray(true_label).ravel()
     yr = np.asarray(true_year).ravel()
@@ -64,6 +67,7 @@ def map_scores(summary: Summary, true_label: np.ndarray, true_year: np.ndarray, 
         "year_mae": float(np.abs(py[hit].astype(np.int64) - yr[hit]).mean()) if hit.any() else None,
         "ece": float(expected_calibration_error(np.asarray(summary.p_conversion).ravel(), conv)),
         "interval80_coverage": None,
+        "interval80_coverage_all_conversions": None,
         "n_pixels": int(lab.size),
         "n_true_conversions": int(conv.sum()),
     }
@@ -75,7 +79,9 @@ def map_scores(summary: Summary, true_label: np.ndarray, true_year: np.ndarray, 
     if has_interval:
         lo = np.asarray(summary.year_low).ravel()
         hi = np.asarray(summary.year_high).ravel()
-        out["interval80_coverage"] = float((hit & (lo <= yr) & (yr <= hi)).sum() / n_conv)
+        inside = hit & (lo <= yr) & (yr <= hi)
+        out["interval80_coverage"] = float(inside.sum() / max(int(hit.sum()), 1))
+        out["interval80_coverage_all_conversions"] = float(inside.sum() / n_conv)
     if not has_probability:
         out["ece_note"] = "0/1 outputs: ECE is the error of a probability that is always 0 or 1"
     return {k: (round(v, 4) if isinstance(v, float) else v) for k, v in out.items()}

@@ -171,7 +171,7 @@ def rss_child(region_json: str, model_dir: str, window: int, pixel_batch: int, d
     art = load(model_dir)
     stack = open_tile(region.tiles[0], region)
     t0 = time.perf_counter()
-    map_tile(stack, art, Settings(4, art.card.cutoff_year, 0.8, window, pixel_batch, 0, False), Path(dest), region=region)
+    map_tile(stack, art, Settings(4, art.card.cutoff_year, 0.8, art.card.calibration.interval_mass(0.8), window, pixel_batch, 0, False), Path(dest), region=region)
     return {"peak_rss_mb": round(peak_rss_mb(), 1), "seconds": round(time.perf_counter() - t0, 2), "pixels": stack.grid.height * stack.grid.width}
 
 
@@ -220,7 +220,7 @@ def run(cfg: SpeedConfig) -> dict[str, Any]:
     inputs.clear()
 
     # End to end: GeoTIFF in, COG out, through the mapping pipeline.
-    settings = Settings(4, art.card.cutoff_year, art.card.interval_level, cfg.window, cfg.pixel_batch, 0, False)
+    settings = Settings(4, art.card.cutoff_year, art.card.interval_level, art.card.calibration.interval_mass(art.card.interval_level), cfg.window, cfg.pixel_batch, 0, False)
     with tempfile.TemporaryDirectory(prefix="plantation-speed-") as tmp:
 
         def end_to_end() -> None:

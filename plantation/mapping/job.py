@@ -118,10 +118,12 @@ def plan(cfg: MapConfig) -> tuple[list[TileJob], list[TileResult], Artefact, Set
     art = load(model_dir)
     digest = file_digest([model_dir / "model.json", model_dir / "model.safetensors"])
     workers = cfg.engine.workers
+    level = cfg.interval_level if cfg.interval_level is not None else art.card.interval_level
     settings = Settings(
         min_clear=cfg.min_clear,
         cutoff_year=cfg.cutoff_year if cfg.cutoff_year is not None else art.card.cutoff_year,
-        interval_level=cfg.interval_level if cfg.interval_level is not None else art.card.interval_level,
+        interval_level=level,
+        interval_mass=art.card.calibration.interval_mass(level),
         window=cfg.window,
         pixel_batch=cfg.pixel_batch,
         threads=_threads_per_worker(cfg, workers) if (workers or cfg.engine.threads) else 0,

@@ -50,6 +50,8 @@ class Settings:
     min_clear: int
     cutoff_year: int
     interval_level: float
+    #: Year-interval mass asked for so that intervals hold ``interval_level`` of true years (the model's held-out measurement).
+    interval_mass: float
     window: int
     pixel_batch: int
     threads: int
@@ -57,7 +59,7 @@ class Settings:
 
     def content_key(self) -> dict[str, Any]:
         # Window, batch and threads change float rounding at most, not what the map says.
-        return {"min_clear": self.min_clear, "cutoff_year": self.cutoff_year, "interval_level": self.interval_level, "format": FORMAT}
+        return {"min_clear": self.min_clear, "cutoff_year": self.cutoff_year, "interval_level": self.interval_level, "interval_mass": self.interval_mass, "format": FORMAT}
 
 
 @dataclass
@@ -187,7 +189,7 @@ def map_tile(
     def write(dst: Any, win: tuple[int, int, int, int], probs: np.ndarray, epi: np.ndarray, clear: np.ndarray) -> int:
         nonlocal mapped, after
         r0, c0, h, w = win
-        layers = encode_layers(probs, epi, clear, years, cutoff_year=settings.cutoff_year, level=settings.interval_level, min_clear=settings.min_clear)
+        layers = encode_layers(probs, epi, clear, years, cutoff_year=settings.cutoff_year, level=settings.interval_mass, min_clear=settings.min_clear)
         dst.write(layers, window=rasterio.windows.Window(c0, r0, w, h))
         ok = layers[0] != NODATA
         mapped += int(ok.sum())
@@ -210,6 +212,8 @@ def map_tile(
                 class_codes="1 stable natural forest; 2 converted to tree-crop plantation; 3 plantation before the series; 4 other land or disturbance",
                 cutoff_year=str(settings.cutoff_year),
                 interval_level=str(settings.interval_level),
+                # The mass the intervals hold in the model's distribution, recalibrated so their coverage on held-out data is interval_level.
+                interval_mass=str(settings.interval_mass),
                 min_clear_dates=str(settings.min_clear),
                 model_region=art.card.region,
                 producer=f"plantation {__version__}",

@@ -20,6 +20,7 @@ from typing import Any
 
 from plantation.errors import FileFormatError, InputNotFoundError
 from plantation.model.calibration import GROUP_NAMES, outcome_groups
+from plantation.model.outcomes import mass_for_coverage
 
 FORMAT = "plantation-model/1"
 CARD = "model.json"
@@ -60,6 +61,16 @@ class Calibration:
     #: points' inclusion probabilities) or "bbse" (black-box shift estimation
     #: on the region's unlabelled pixels).
     prior_source: str = "sample"
+    #: Interval masses and the share of held-out conversions (validation
+    #: split, mapped as conversion) whose true year each one's interval held;
+    #: empty: not measured (cards written before it existed), the interval
+    #: then holds the nominal level of mass.
+    interval_masses: list[float] = field(default_factory=list)
+    interval_coverage: list[float] = field(default_factory=list)
+
+    def interval_mass(self, level: float) -> float:
+        """The year-interval mass to ask for so that the interval holds ``level`` of true years on held-out data (``level`` itself where not measured)."""
+        return mass_for_coverage(self.interval_masses, self.interval_coverage, level)
 
     def prior(self) -> list[float]:
         """The outcome frequencies the calibrated probabilities refer to: ``target_prior``, else ``train_prior``."""

@@ -79,7 +79,7 @@ class CalibrationConfig:
     #: sample's), ``shares`` (region.labels.population_shares), ``inclusion``
     #: (Hájek estimate from region.labels.inclusion_column), ``bbse``
     #: (estimated from the region's unlabelled pixels) or ``auto`` (shares if
-    #: given, else inclusion if given, else sample).
+    #: given, else inclusion if given, else bbse).
     prior: str = "auto"
     #: Unlabelled pixels drawn (seeded, across tiles) for ``prior=bbse``.
     bbse_pixels: int = 20000

@@ -55,7 +55,7 @@ from plantation.model.artefact import save as save_artefact
 from plantation.model.card import Calibration, ModelCard, write_validation
 from plantation.model.config import CalibrationConfig, NetworkConfig, PatchConfig, SplitConfig, TrainerConfig, TrainingConfig
 from plantation.model.network import ConvRecurrentNet
-from plantation.model.outcomes import summarise
+from plantation.model.outcomes import MASS_GRID, N_STATIC, Outcomes, group_probabilities, interval_coverage_curve, summarise
 from plantation.model.patches import SPLITS, PatchSet, build_patches, day_of_year_fraction, features, read_patches, year_of
 from plantation.reference.labels import LABEL_CODES, LabelSet, read_labels
 
@@ -106,7 +106,13 @@ def check_config(cfg: TrainConfig) -> None:
 
 
 def resolve_prior(cc: CalibrationConfig, lc: LabelsConfig) -> str:
-    """The prior source ``calibration.prior`` stands for: ``auto`` becomes shares, else inclusion, else sample, by what the region's labels config gives.
+    """The prior source ``calibration.prior`` stands for: ``auto`` becomes shares, else inclusion, by what the region's labels config gives, else bbse.
+
+    Without either, ``auto`` estimates the region's mix from its own pixels
+    (``bbse``) rather than keeping the sample's: reference samples are
+    rarely drawn in proportion to area, and a sample's mix in every pixel's
+    probability is the error that hurts most (forest given conversion
+    probability it does not have).
 
     Raises:
         ConfigError: an unknown value, or ``shares`` / ``inclusion`` without
@@ -114,7 +120,7 @@ def resolve_prior(cc: CalibrationConfig, lc: LabelsConfig) -> str:
     """
     p = cc.prior
     if p == "auto":
-        return "shares" if population_shares(lc) else "inclusion" if lc.inclusion_column else "sample"
+        return "shares" if population_shares(lc) else "inclusion" if lc.inclusion_column else "bbse"
     if p not in PRIORS:
         raise ConfigError(f"calibration.prior: {p!r} is not one of {['auto', *PRIORS]}")
     if p == "shares" and not population_shares(lc):
@@ -388,6 +394,9 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
     if q is not None:
         cal.target_prior = [float(v) for v in q]
     cal.prior_source = source
+    # Recalibrate the interval's level on the validation split, with the region-mix probabilities the maps carry.
+    cal.interval_masses, cal.interval_coverage = interval_curve(np.exp(calibrated_log_probs(val_logits, cal).numpy()), val.target, samples.outcomes)
+    metrics["interval_mass"] = {"nominal": cfg.calibration.interval_level, "mass": cal.interval_mass(cfg.calibration.interval_level)}
     record = {
         **cal.correction(),
         "target_prior": [round(v, 6) for v in cal.target_prior],
@@ -398,6 +407,18 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
     metrics["validation"]["prior"] = record
     log.info("probabilities for the %s prior: %s", source, record["target_prior_groups"])
     return TrainedModel(nets, spec, cal, metrics, is_zero)
+
+
+def interval_curve(probs: np.ndarray, targets: np.ndarray, outcomes: Outcomes) -> tuple[list[float], list[float]]:
+    """(masses, coverage) of the year interval on labelled points: true conversions mapped as conversion (see :func:`interval_coverage_curve`); empty when there are none."""
+    true_label = outcomes.label_code(targets)
+    summ_label = group_probabilities(probs).argmax(-1) + 1
+    hit = (true_label == LABEL_CODES["conversion"]) & (summ_label == LABEL_CODES["conversion"])
+    if not hit.any():
+        return [], []
+    years_idx = np.asarray(targets)[hit] - N_STATIC
+    cover = interval_coverage_curve(probs[hit][:, N_STATIC:], years_idx)
+    return list(MASS_GRID), [round(c, 4) for c in cover]
 
 
 def target_prior(
