@@ -71,7 +71,7 @@ def test_no_import_circle():
         for n in sorted(g.get(m, ())):
             n = n if n in g else n.rsplit(".", 1)[0]
             if state.get(n) == 1:
-                pytest.fail("import circle: " + " → ".join(stack[stack.index(n):] + [n]))
+                pytest.fail("import circle: " + " → ".join(stack[stack.index(n) :] + [n]))
             if n in g and not state.get(n):
                 visit(n)
         stack.pop()

@@ -238,10 +238,7 @@ class Design:
         lines = [f"{'stratum':<22}{'pixels':>12}{'area ha':>14}{'weight':>9}{'U assumed':>11}{'points':>8}"]
         for s in self.strata:
             lines.append(f"{s.name:<22}{s.pixels:>12,}{s.area_ha:>14,.1f}{s.weight:>9.4f}{s.assumed_users_accuracy:>11.2f}{s.n:>8}")
-        lines.append(
-            f"total {self.n_total} points (Cochran's n for the target SE: {self.n_cochran}); "
-            f"expected SE of overall accuracy if the assumed accuracies hold: {self.expected_overall_se:.4f}"
-        )
+        lines.append(f"total {self.n_total} points (Cochran's n for the target SE: {self.n_cochran}); expected SE of overall accuracy if the assumed accuracies hold: {self.expected_overall_se:.4f}")
         return lines
 
 

@@ -409,7 +409,10 @@ def evaluate_seed(cfg: ComparisonConfig, held: HeldOut, seed: int) -> tuple[dict
     pixel_probs: dict[str, np.ndarray] = {}
     if source == "bbse":
         px, pv = training_pixels(train_stacks, list(tc.region.bands), list(cfg.patches.indices), tc.calibration.bbse_pixels, seed)
-        pixel_probs = {"trees": trees.predict_proba(annual_features(px, pv, date_year, ny, samples.channels)), "random_forest": forest.predict_proba(AnnualForest.features(px, pv, date_year, ny, samples.channels))}
+        pixel_probs = {
+            "trees": trees.predict_proba(annual_features(px, pv, date_year, ny, samples.channels)),
+            "random_forest": forest.predict_proba(AnnualForest.features(px, pv, date_year, ny, samples.channels)),
+        }
     for name, pv_ in val_probs.items():
         priors[name] = baseline_prior(source, priors["model"], train_prior, pv_, val.target, pixel_probs.get(name, pv_))
         masses[name] = mass_for_coverage(*interval_curve(reweight(pv_, train_prior, priors[name]), val.target, outcomes), level)

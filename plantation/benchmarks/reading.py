@@ -96,7 +96,6 @@ def read_windows(folder: str, bands: int, window: int, nodata: int, proc_change:
     }
 
 
-
 def run(cfg: ReadConfig) -> dict[str, Any]:
     """Simulate (or reuse) the region, read it in a fresh process, write and return the result."""
     sim = cfg.sim
@@ -146,4 +145,3 @@ def run(cfg: ReadConfig) -> dict[str, Any]:
     tmp.write_text(json.dumps(result, indent=1) + "\n")
     tmp.rename(out)
     return result
-

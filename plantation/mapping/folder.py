@@ -117,7 +117,6 @@ class TileResult:
     probability_correction: dict[str, Any] | None = None
 
 
-
 def file_digest(paths: Sequence[Path]) -> str:
     """sha256 over the bytes of files, in order."""
     h = hashlib.sha256()
@@ -126,7 +125,6 @@ def file_digest(paths: Sequence[Path]) -> str:
             for block in iter(lambda f=f: f.read(1 << 20), b""):
                 h.update(block)
     return h.hexdigest()
-
 
 
 def write_cog(src: Path, dest: Path) -> None:
@@ -255,9 +253,6 @@ class Manifest:
         tmp = self.path.with_name(self.path.name + ".partial")
         tmp.write_text(json.dumps({"format": FORMAT, "producer": f"plantation {__version__}", "tiles": self.tiles}, indent=1, sort_keys=True))
         os.replace(tmp, self.path)
-
-
-
 
 
 @dataclass

@@ -57,7 +57,6 @@ class MapConfig:
     engine: EngineConfig = field(default_factory=EngineConfig)
 
 
-
 def check_config(cfg: MapConfig) -> None:
     """Reject values no mapping could use, naming the key."""
     if cfg.window < 16 or cfg.window % 16:
@@ -69,7 +68,6 @@ def check_config(cfg: MapConfig) -> None:
         raise ConfigError(f"interval_level: {cfg.interval_level!r} must be in (0, 1) or null")
     if cfg.engine.workers < 0 or cfg.engine.threads < 0:
         raise ConfigError("engine.workers and engine.threads must be 0 or more")
-
 
 
 @dataclass

@@ -75,7 +75,6 @@ class TileJob:
     key: str
 
 
-
 def input_signature(stack: TileStack, tile: TileConfig) -> list[list[Any]]:
     """Name, size and modification time of every input file of a tile."""
     files = [Path(f) for f in stack.reader.files] if stack.reader is not None else [Path(tile.path)]
@@ -290,5 +289,3 @@ def map_tile_task(job: TileJob, on_window: Callable[[int], None] | None = None) 
         model_sha256=job.model_digest,
         probability_correction=art.card.calibration.correction(),
     )
-
-

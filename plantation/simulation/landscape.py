@@ -535,5 +535,3 @@ class Simulator:
         cls = class_of_code[kind]
         onset = np.where(cls == LABEL_CODES["conversion"], yr, 0)
         return np.stack([cls, onset, kind, yr, pid]).astype(np.int32)
-
-
