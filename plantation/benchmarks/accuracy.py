@@ -32,6 +32,7 @@ score.
 from __future__ import annotations
 
 import json
+import logging
 import os
 import shutil
 import tempfile
@@ -60,6 +61,8 @@ from plantation.model.training import TrainConfig, fit, interval_curve, load_reg
 from plantation.simulation.landscape import Landscape, build_landscape
 from plantation.simulation.scenario import EVENTS, SimulationConfig, dates_of, decimal_year
 from plantation.simulation.writer import tile_names, write_region
+
+log = logging.getLogger(__name__)
 
 
 @dataclass
@@ -515,7 +518,23 @@ def run(cfg: ComparisonConfig) -> dict[str, Any]:
     regions = {}
     for name in cfg.regions:
         held = builders[name](cfg)
-        per_seed = [evaluate_seed(cfg, held, seed) for seed in cfg.seeds]
+        per_seed = []
+        for seed in cfg.seeds:
+            per_seed.append(evaluate_seed(cfg, held, seed))
+            m = per_seed[-1][0]["model"]
+            # One line per finished seed, so a long run shows where it stands.
+            log.info(
+                "%s seed %d: model year_exact %.3f, ece %.3f, ece_after_cutoff %.3f, mean p_conversion %.3f (true %.3f), forest plots %.3f, interval coverage %.3f",
+                name,
+                seed,
+                m["year_exact"],
+                m["ece"],
+                m["ece_after_cutoff"],
+                m["mean_p_conversion"],
+                m["true_conversion_share"],
+                m["forest_plot_after_share"] or 0.0,
+                m["interval80_coverage"],
+            )
         methods = {}
         for m in per_seed[0][0]:
             runs = [r[m] for r, _ in per_seed]
