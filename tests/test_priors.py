@@ -242,6 +242,18 @@ def test_card_round_trips_the_prior_fields(tmp_path):
     assert asdict(artefact.load(folder).card.calibration) == asdict(cal)
 
 
+def test_card_round_trips_the_interval_curve_and_old_cards_keep_the_nominal_level(tmp_path):
+    cal = _cal(interval_masses=[0.6, 0.7, 0.8, 0.9], interval_coverage=[0.71, 0.79, 0.86, 0.93])
+    card = artefact.load(_save(tmp_path / "m", cal)).card
+    assert card.calibration.interval_coverage == [0.71, 0.79, 0.86, 0.93]
+    assert card.calibration.interval_mass(0.8) == 0.7
+    old = _save(tmp_path / "old", _cal())
+    raw = json.loads((old / "model.json").read_text())
+    del raw["calibration"]["interval_masses"], raw["calibration"]["interval_coverage"]
+    (old / "model.json").write_text(json.dumps(raw))
+    assert artefact.load(old).card.calibration.interval_mass(0.8) == 0.8
+
+
 # --------------------------------------------------------------------------- a whole run
 
 

@@ -342,3 +342,68 @@ def test_command_recalibrates_and_refuses_in_one_line(labelled, tmp_path: Path) 
     again = subprocess.run([COMMAND, "recalibrate", f"map={out}", f"samples={sheet}"], cwd=ROOT, capture_output=True, text=True, timeout=300)
     lines = again.stderr.strip().splitlines()
     assert again.returncode == 1 and len(lines) == 1 and lines[0].startswith("error: ") and "already carries a correction" in lines[0], again.stderr
+
+
+# ------------------------------------------------------------------ (e) in place equals from the start
+
+
+def _mapped(model: Path, region: Any, out: Path, **kw: Any) -> Path:
+    from plantation.mapping.job import MapConfig
+    from plantation.mapping.job import run as map_region
+
+    map_region(MapConfig(region=region, model=str(model), out_dir=str(out), window=16, min_clear=1, progress=False, quicklook=False, **kw))
+    return out
+
+
+def test_a_map_recalibrated_in_place_equals_one_mapped_with_the_correction_from_the_start(tmp_path: Path, make_region) -> None:
+    """A logistic recalibration acts on p_conversion and p_after_cutoff alone, so a written map can take it without the network.
+
+    The other bands are where the correction does not reach (NOT_CORRECTED):
+    they must be byte-for-byte what the network wrote, in both maps.
+    """
+    from plantation.assessment.recalibrate import write_corrected
+    from tests.test_priors import _cal, _save
+
+    rng = np.random.default_rng(5)
+    values = (np.array([300, 500, 250, 3500, 1800, 700], np.int16)[None, :, None, None] + rng.integers(-250, 250, (5, 6, 24, 24))).astype(np.int16)
+    region = make_region(values=values)
+    model = _save(tmp_path / "model", _cal())
+    first = _mapped(model, region, tmp_path / "first")
+    original = {t.name: _read(t.path)[0] for t in open_map(first).tiles}
+    correction = {"method": METHOD, "coef_conversion": [-1.2, 0.8], "coef_after_cutoff": [-0.4, 1.3], "n": 321, "date": "2026-01-01T00:00:00+00:00", "not_corrected": NOT_CORRECTED}
+    write_corrected(open_map(first), first, correction)
+
+    fresh = _mapped(model, region, tmp_path / "fresh", recalibration=str(first))
+    a, b = open_map(first), open_map(fresh)
+    assert [t.name for t in a.tiles] == [t.name for t in b.tiles]
+    for ta, tb in zip(a.tiles, b.tiles, strict=True):
+        got_a, meta_a = _read(ta.path)
+        got_b, meta_b = _read(tb.path)
+        np.testing.assert_array_equal(got_a, got_b)
+        assert json.loads(meta_a["tags"][CORRECTION_TAG]) == json.loads(meta_b["tags"][CORRECTION_TAG])
+        assert ta.correction == tb.correction and tb.correction[RECALIBRATION]["coef_conversion"] == [-1.2, 0.8]
+        before = original[ta.name]
+        ok = before[4] != NODATA
+        # The correction did something: p_conversion moved, every other band as the network wrote it.
+        assert ok.any() and (got_b[4][ok] != before[4][ok]).mean() > 0.5
+        np.testing.assert_array_equal(np.delete(got_b, [4, 5], axis=0), np.delete(before, [4, 5], axis=0))
+    # Mapping again with the correction resumes nothing from a map without it.
+    assert b.correction[RECALIBRATION] == correction
+
+
+def test_mapping_with_a_recalibration_refuses_a_map_without_one_and_another_models(tmp_path: Path, make_region) -> None:
+    from tests.test_priors import _cal, _save
+
+    region = make_region()
+    model = _save(tmp_path / "model", _cal())
+    plain = _mapped(model, region, tmp_path / "plain")
+    with pytest.raises(PlantationError, match="carries no recalibration"):
+        _mapped(model, region, tmp_path / "x", recalibration=str(plain))
+    from plantation.assessment.recalibrate import write_corrected
+
+    write_corrected(open_map(plain), plain, {"method": METHOD, "coef_conversion": [0.0, 1.0], "coef_after_cutoff": [0.0, 1.0], "n": 2})
+    other = _save(tmp_path / "other", _cal(temperature=2.0))
+    with pytest.raises(PlantationError, match="mapped by another model"):
+        _mapped(other, region, tmp_path / "y", recalibration=str(plain))
+    with pytest.raises(PlantationError, match="has cutoff year 2015, this map 2016"):
+        _mapped(model, region, tmp_path / "z", recalibration=str(plain), cutoff_year=2016)

@@ -46,7 +46,7 @@ from plantation.assessment.assess import check_sample, read_sample_table
 from plantation.assessment.design import DESIGN_NAME, read_design
 from plantation.errors import ConfigError, PlantationError
 from plantation.imagery.config import RegionConfig
-from plantation.mapping.folder import BAND, CORRECTION_TAG, MANIFEST, NODATA, RECALIBRATION, MappedRegion, describe_correction, open_map, read_manifest, sha256_of, write_cog
+from plantation.mapping.folder import BAND, CORRECTION_TAG, MANIFEST, NODATA, RECALIBRATION, MappedRegion, describe_correction, open_map, read_manifest, recalibrate_stored, sha256_of, write_cog
 from plantation.model.calibration import apply_recalibration, expected_calibration_error, fit_recalibration
 
 METHOD = "design-weighted logistic recalibration"
@@ -164,12 +164,7 @@ def _fit(band: str, p: np.ndarray, y: np.ndarray, w: np.ndarray, samples: Path, 
     return Fit(band, (a, b), expected_calibration_error(p, y, bins, weight=w), expected_calibration_error(after, y, bins, weight=w), float((w * y).sum() / w.sum()))
 
 
-def _encode(p: np.ndarray, scale: float, offset: float) -> np.ndarray:
-    lo, hi = round((0.0 - offset) / scale), round((1.0 - offset) / scale)
-    return np.clip(np.rint((p - offset) / scale), lo, hi).astype(np.int16)
-
-
-def rewrite_tile(src_path: Path, dest: Path, coef_conv: tuple[float, float], coef_after: tuple[float, float], tag: str, *, window: int) -> int:
+def rewrite_tile(src_path: Path, dest: Path, recalibration: dict[str, Any], tag: str, *, window: int) -> int:
     """Write a copy of tile ``src_path`` as a COG at ``dest`` with bands 5 and 6 recalibrated, window by window.
 
     Returns the number of pixels where p_after_cutoff was capped at p_conversion by more than :data:`CAP_NOTED`.
@@ -198,19 +193,15 @@ def rewrite_tile(src_path: Path, dest: Path, coef_conv: tuple[float, float], coe
                     dst.set_band_description(i, src.descriptions[i - 1] or "")
                     dst.update_tags(i, **src.tags(i))
                 dst.scales, dst.offsets = sc, off
-                dst.update_tags(**src.tags(), **{CORRECTION_TAG: tag})
+                dst.update_tags(**{**src.tags(), CORRECTION_TAG: tag})
                 for r0 in range(0, src.height, window):
                     for c0 in range(0, src.width, window):
                         win = rasterio.windows.Window(c0, r0, min(window, src.width - c0), min(window, src.height - r0))
                         data = src.read(window=win)
                         ok = (data[ic] != NODATA) & (data[ia] != NODATA)
-                        pc = apply_recalibration(data[ic][ok] * sc[ic] + off[ic], coef_conv)
-                        pa = apply_recalibration(data[ia][ok] * sc[ia] + off[ia], coef_after)
-                        ec = _encode(pc, sc[ic], off[ic])
                         # Counted where the cap lowers p_after_cutoff by more than CAP_NOTED (tiny probabilities cross often, harmlessly).
-                        capped += int((pa - pc > CAP_NOTED).sum())
-                        data[ic][ok] = ec
-                        data[ia][ok] = _encode(np.minimum(pa, pc), sc[ia], off[ia])
+                        data[ic][ok], data[ia][ok], n = recalibrate_stored(data[ic][ok], data[ia][ok], (sc[ic], sc[ia]), (off[ic], off[ia]), recalibration, noted=CAP_NOTED)
+                        capped += n
                         dst.write(data, window=win)
         write_cog(raw, dest)
     finally:
@@ -289,8 +280,6 @@ def write_corrected(mapped: MappedRegion, out: Path, correction: dict[str, Any],
     raw = read_manifest(src_dir)
     if raw is None:  # open_map read it a moment ago
         raise PlantationError(f"{src_dir / MANIFEST}: disappeared while recalibrating")
-    coef_c = tuple(correction["coef_conversion"])
-    coef_a = tuple(correction["coef_after_cutoff"])
     staged: dict[Path, Path] = {}
     extras: list[Path] = []
     kept: dict[Path, Path] = {}
@@ -303,7 +292,7 @@ def write_corrected(mapped: MappedRegion, out: Path, correction: dict[str, Any],
             new = out / f".{final.name}.recalibrated.tif"
             staged[new] = final
             merged = {**(tile.correction or {}), RECALIBRATION: correction}
-            capped += rewrite_tile(tile.path, new, coef_c, coef_a, json.dumps(merged, sort_keys=True), window=window)
+            capped += rewrite_tile(tile.path, new, correction, json.dumps(merged, sort_keys=True), window=window)
             e["sha256"] = sha256_of(new)
             e[CORRECTION_TAG] = merged
         man_new = out / f".{MANIFEST}.partial"

@@ -49,12 +49,14 @@ from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import rasterio
 import rasterio.shutil
 
 from plantation import __version__
 from plantation.errors import FileFormatError, InputNotFoundError, PlantationError, RegionError
 from plantation.imagery.region import Grid
+from plantation.model.calibration import apply_recalibration
 from plantation.records import load_object
 
 FORMAT = "plantation-map/1"
@@ -113,8 +115,6 @@ class TileResult:
     model_sha256: str = ""
     #: The probability correction the tile carries (:data:`CORRECTION_TAG`); None for maps made before it was recorded.
     probability_correction: dict[str, Any] | None = None
-    #: The probability correction applied after mapping (:data:`CORRECTION_TAG`); None: as the model gave them.
-    probability_correction: dict[str, Any] | None = None
 
 
 def file_digest(paths: Sequence[Path]) -> str:
@@ -164,6 +164,39 @@ def describe_correction(correction: dict[str, Any] | None) -> str:
         date = str(recal.get("date", "?"))[:10]
         parts.append(f"then {recal.get('method', 'recalibrated')} from a probability sample of {n} points ({date}); class, onset year and its interval are as the model gave them")
     return "; ".join(parts)
+
+
+def encode_probability(p: np.ndarray, scale: float, offset: float) -> np.ndarray:
+    """Probabilities as stored int16 values (p = stored × scale + offset), clipped to the codes of [0, 1]."""
+    lo, hi = round((0.0 - offset) / scale), round((1.0 - offset) / scale)
+    return np.clip(np.rint((np.asarray(p, dtype=np.float64) - offset) / scale), lo, hi).astype(np.int16)
+
+
+def recalibrate_stored(
+    conv: np.ndarray, after: np.ndarray, scales: tuple[float, float], offsets: tuple[float, float], recalibration: dict[str, Any], *, noted: float = 0.01
+) -> tuple[np.ndarray, np.ndarray, int]:
+    """Stored p_conversion and p_after_cutoff values (int16, valid pixels only) with a :data:`RECALIBRATION` applied.
+
+    The correction acts on the probabilities as stored (decoded, corrected,
+    encoded again), so a map recalibrated after it was written and one
+    mapped with the correction from the start hold the same values.
+    p_after_cutoff is capped at p_conversion where the two fits cross (a
+    conversion after the cutoff is a conversion).
+
+    Args:
+        conv, after: stored values of bands p_conversion and p_after_cutoff.
+        scales, offsets: the two bands' scale and offset.
+        recalibration: a record with ``coef_conversion`` and
+            ``coef_after_cutoff``, each [a, b] of p' = sigmoid(a + b·logit p).
+        noted: a cap lowering p_after_cutoff by more than this is counted.
+
+    Returns:
+        (p_conversion, p_after_cutoff) stored, and the pixels capped by more than ``noted``.
+    """
+    pc = apply_recalibration(conv * scales[0] + offsets[0], tuple(recalibration["coef_conversion"]))
+    pa = apply_recalibration(after * scales[1] + offsets[1], tuple(recalibration["coef_after_cutoff"]))
+    capped = int((pa - pc > noted).sum())
+    return encode_probability(pc, scales[0], offsets[0]), encode_probability(np.minimum(pa, pc), scales[1], offsets[1]), capped
 
 
 def read_correction(tags: dict[str, str], where: str | Path) -> dict[str, Any] | None:

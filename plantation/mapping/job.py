@@ -16,10 +16,10 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
-from plantation.errors import ConfigError
+from plantation.errors import ConfigError, PlantationError
 from plantation.imagery.config import RegionConfig
 from plantation.imagery.region import open_region, open_tile
-from plantation.mapping.folder import NOTICE, Manifest, TileResult, file_digest
+from plantation.mapping.folder import NOTICE, RECALIBRATION, Manifest, TileResult, file_digest, open_map
 from plantation.mapping.tiles import Settings, TileJob, input_signature, map_tile_task, tile_key
 from plantation.model.artefact import Artefact, load
 from plantation.model.card import resolve_model
@@ -51,6 +51,8 @@ class MapConfig:
     min_clear: int = 4
     cutoff_year: int | None = None
     interval_level: float | None = None
+    #: A map folder corrected by ``plantation recalibrate`` whose correction every tile takes as it is mapped (None: none).
+    recalibration: str | None = None
     resume: bool = True
     quicklook: bool = True
     progress: bool = True
@@ -109,6 +111,27 @@ def _threads_per_worker(cfg: MapConfig, workers: int) -> int:
     return max(1, cores // max(workers, 1))
 
 
+def recalibration_of(folder: str, model_digest: str, cutoff_year: int) -> str:
+    """The recalibration record (JSON text) of a map corrected by ``plantation recalibrate``, checked to fit this model and cutoff.
+
+    A recalibration is fitted to one model's probabilities and one cutoff
+    year: applied to another's it would be a correction of something else.
+
+    Raises:
+        PlantationError: the folder is not a map, carries no recalibration,
+            or was made by another model or with another cutoff year.
+    """
+    mapped = open_map(folder)
+    tile = next((t for t in mapped.tiles if t.correction and RECALIBRATION in t.correction), None)
+    if tile is None:
+        raise PlantationError(f"recalibration: {mapped.folder} carries no recalibration; give a map corrected by `plantation recalibrate`")
+    if mapped.model_sha256 and mapped.model_sha256 != model_digest:
+        raise PlantationError(f"recalibration: {mapped.folder} was mapped by another model (sha256 {mapped.model_sha256[:12]}…); its correction fits that model's probabilities only")
+    if mapped.cutoff_year != cutoff_year:
+        raise PlantationError(f"recalibration: {mapped.folder} has cutoff year {mapped.cutoff_year}, this map {cutoff_year}; p_after_cutoff was recalibrated for that cutoff")
+    return json.dumps(tile.correction[RECALIBRATION], sort_keys=True)
+
+
 def plan(cfg: MapConfig) -> tuple[list[TileJob], list[TileResult], Artefact, Settings]:
     """Check the model against every tile and split the tiles into jobs to run and finished results."""
     check_config(cfg)
@@ -126,6 +149,7 @@ def plan(cfg: MapConfig) -> tuple[list[TileJob], list[TileResult], Artefact, Set
         pixel_batch=cfg.pixel_batch,
         threads=_threads_per_worker(cfg, workers) if (workers or cfg.engine.threads) else 0,
         quicklook=cfg.quicklook,
+        recalibration=recalibration_of(cfg.recalibration, digest, cfg.cutoff_year if cfg.cutoff_year is not None else art.card.cutoff_year) if cfg.recalibration else "",
     )
     region = cfg.region
     tiles = region.tiles

@@ -30,7 +30,7 @@ import torch
 from plantation import __version__
 from plantation.imagery.config import RegionConfig, TileConfig
 from plantation.imagery.region import TileStack, open_tile
-from plantation.mapping.folder import BAND, FORMAT, LAYERS, NODATA, NOTICE, SCALE, TileResult, file_digest, write_cog
+from plantation.mapping.folder import BAND, FORMAT, LAYERS, NODATA, NOTICE, RECALIBRATION, SCALE, TileResult, file_digest, recalibrate_stored, write_cog
 from plantation.mapping.quicklook import quicklook
 from plantation.mapping.styles import class_style, onset_style, write_style
 from plantation.model.artefact import Artefact, load
@@ -56,10 +56,23 @@ class Settings:
     pixel_batch: int
     threads: int
     quicklook: bool
+    #: A recalibration record (JSON text, see :func:`plantation.mapping.folder.recalibrate_stored`) applied to the probability bands as they are written; empty: none.
+    recalibration: str = ""
 
     def content_key(self) -> dict[str, Any]:
         # Window, batch and threads change float rounding at most, not what the map says.
-        return {"min_clear": self.min_clear, "cutoff_year": self.cutoff_year, "interval_level": self.interval_level, "interval_mass": self.interval_mass, "format": FORMAT}
+        key = {"min_clear": self.min_clear, "cutoff_year": self.cutoff_year, "interval_level": self.interval_level, "interval_mass": self.interval_mass, "format": FORMAT}
+        if self.recalibration:
+            rec = json.loads(self.recalibration)
+            key["recalibration"] = [rec["coef_conversion"], rec["coef_after_cutoff"]]
+        return key
+
+    def correction(self, art: Artefact) -> dict[str, Any]:
+        """The probability correction tiles mapped with these settings carry: the model's prior, and the recalibration if any."""
+        out: dict[str, Any] = dict(art.card.calibration.correction())
+        if self.recalibration:
+            out[RECALIBRATION] = json.loads(self.recalibration)
+        return out
 
 
 @dataclass
@@ -111,11 +124,15 @@ def window_probabilities(art: Artefact, x: torch.Tensor, valid: torch.Tensor, pi
     return probs.numpy(), np.asarray(epi, np.float32)
 
 
-def encode_layers(probs: np.ndarray, epistemic: np.ndarray, clear: np.ndarray, years: Sequence[int], *, cutoff_year: int, level: float, min_clear: int) -> np.ndarray:
+def encode_layers(
+    probs: np.ndarray, epistemic: np.ndarray, clear: np.ndarray, years: Sequence[int], *, cutoff_year: int, level: float, min_clear: int, recalibration: dict[str, Any] | None = None
+) -> np.ndarray:
     """The int16 layers (band, h, w) of :data:`LAYERS` for probabilities (h, w, outcomes).
 
     Pixels with fewer than ``min_clear`` clear dates get :data:`NODATA` in
-    every band but ``clear_dates``.
+    every band but ``clear_dates``. A ``recalibration`` record is applied to
+    the stored p_conversion and p_after_cutoff exactly as ``plantation
+    recalibrate`` applies it to a written map.
     """
     s = summarise(probs, years, cutoff_year=cutoff_year, level=level)
     h, w = clear.shape
@@ -128,6 +145,8 @@ def encode_layers(probs: np.ndarray, epistemic: np.ndarray, clear: np.ndarray, y
     out[5] = np.rint(s.p_after_cutoff / SCALE)
     out[6] = np.rint(np.clip(epistemic, 0, 32767 * SCALE) / SCALE)
     out[7] = clear
+    if recalibration is not None:
+        out[4], out[5], _ = recalibrate_stored(out[4], out[5], (SCALE, SCALE), (0.0, 0.0), recalibration)
     out[:7, clear < min_clear] = NODATA
     return out
 
@@ -180,6 +199,8 @@ def map_tile(
     by_year = np.zeros(len(years))
     after = 0.0
 
+    recal = json.loads(settings.recalibration) if settings.recalibration else None
+
     def read(win: tuple[int, int, int, int]) -> tuple[torch.Tensor, torch.Tensor]:
         r0, c0, h, w = win
         refl, valid = read_window(stack, r0, c0, h, w, halo)
@@ -188,7 +209,7 @@ def map_tile(
     def write(dst: Any, win: tuple[int, int, int, int], probs: np.ndarray, epi: np.ndarray, clear: np.ndarray) -> int:
         nonlocal mapped, after
         r0, c0, h, w = win
-        layers = encode_layers(probs, epi, clear, years, cutoff_year=settings.cutoff_year, level=settings.interval_mass, min_clear=settings.min_clear)
+        layers = encode_layers(probs, epi, clear, years, cutoff_year=settings.cutoff_year, level=settings.interval_mass, min_clear=settings.min_clear, recalibration=recal)
         dst.write(layers, window=rasterio.windows.Window(c0, r0, w, h))
         ok = layers[0] != NODATA
         mapped += int(ok.sum())
@@ -217,7 +238,7 @@ def map_tile(
                 model_region=art.card.region,
                 producer=f"plantation {__version__}",
                 # Which class mix the probabilities are for ("sample": the reference sample's, not the region's).
-                probability_correction=json.dumps(art.card.calibration.correction(), separators=(",", ":")),
+                probability_correction=json.dumps(settings.correction(art), sort_keys=True),
             )
             ahead: deque[Future] = deque(reader.submit(read, w) for w in wins[:2])
             behind: deque[Future] = deque()
@@ -287,5 +308,5 @@ def map_tile_task(job: TileJob, on_window: Callable[[int], None] | None = None) 
         finished=time.strftime("%Y-%m-%dT%H:%M:%S%z"),
         model=job.model_dir,
         model_sha256=job.model_digest,
-        probability_correction=art.card.calibration.correction(),
+        probability_correction=job.settings.correction(art),
     )
