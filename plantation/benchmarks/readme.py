@@ -316,6 +316,7 @@ def _lookup(res: dict[str, Any], key: str) -> Any:
         v = v.get(part) if isinstance(v, dict) else None
     return v
 
+
 #: The methods of the accuracy benchmark, in column order.
 METHODS = ("model", "random_forest", "trees", "breakpoint")
 
