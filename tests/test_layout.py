@@ -21,6 +21,7 @@ TORCH_FREE = [
     "plantation.mapping.styles",
     "plantation.mapping.quicklook",
     "plantation.model.card",
+    "plantation.benchmarks.plotcheck",
     "plantation.assessment.design",
     "plantation.assessment.estimators",
     "plantation.assessment.assess",

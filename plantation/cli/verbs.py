@@ -156,6 +156,14 @@ def benchmark_read(cfg: DictConfig) -> None:
     _write_json(res, rc.result)
 
 
+def benchmark_plots(cfg: DictConfig) -> None:
+    from plantation.benchmarks.plotcheck import PlotCheckConfig, run, summary_lines
+
+    pc = to_object(cfg, PlotCheckConfig)
+    print("\n".join(summary_lines(run(pc))))
+    print(f"written to {pc.result}")
+
+
 def readme_figures(cfg: DictConfig) -> None:
     from plantation.benchmarks.readme import ReadmeConfig, run
 
@@ -176,6 +184,7 @@ VERBS: dict[str, Verb] = {
         Verb("benchmark-accuracy", "benchmark_accuracy", "compare the model with the baselines on a held-out simulated region", benchmark_accuracy),
         Verb("benchmark-speed", "benchmark_speed", "time and measure the memory of mapping, side by side with the baselines", benchmark_speed),
         Verb("benchmark-read", "benchmark_read", "peak memory of reading a large stack window by window", benchmark_read),
+        Verb("benchmark-plots", "benchmark_plots", "check the farm-plot verdicts against the simulated region's truth", benchmark_plots),
         Verb("readme-figures", "readme_figures", "rewrite the README's figure tables from the JSON the jobs wrote (check=true: only check)", readme_figures),
     )
 }
