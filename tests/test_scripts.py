@@ -82,8 +82,12 @@ def test_map_script_on_the_toy_region(tmp_path):
     assert "overall accuracy" in res.stdout and "simulated truth" in res.stdout
     doc = json.loads((out / "assessment.json").read_text())
     assert doc["validation"]["split"] == "test" and doc["provenance"]["model"]["sha256"]
+    res = run("recalibrate", f"map={maps}", f"samples={out / 'samples.gpkg'}")
+    assert res.returncode == 0, res.stderr
+    assert "p_conversion" in res.stdout and "corrected map written in place" in res.stdout
     res = run("farmplots", f"map={maps}", f"out_dir={out}", "progress=false")
     assert res.returncode == 0, res.stderr
+    assert "design-weighted logistic recalibration" in res.stdout
     plots = json.loads((out / "plots.json").read_text())
     # Only t01 was mapped: the demo plots over t02 are listed as outside the map, not dropped.
     assert len(plots["plots"]) == 40 and 0 < plots["counts"]["problem"] < 40
