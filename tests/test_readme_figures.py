@@ -13,6 +13,7 @@ from plantation.benchmarks.readme import (
     block_span,
     demo_assessment_block,
     demo_plots_block,
+    demo_plots_truth_block,
     demo_timing_block,
     mapping_speed_block,
     markdown_table,
@@ -23,7 +24,7 @@ from plantation.benchmarks.readme import (
 from plantation.errors import PlantationError
 from plantation.imagery.config import RegionConfig
 
-NAMES = ("demo-assessment", "demo-plots", "read-memory", "mapping-speed", "demo-timing", "accuracy-benchmark")
+NAMES = ("demo-assessment", "demo-plots", "demo-plots-truth", "read-memory", "mapping-speed", "demo-timing", "accuracy-benchmark")
 
 
 def est(estimate: float, lo: float, hi: float, **extra: float) -> dict[str, float]:
@@ -226,6 +227,21 @@ def config(tmp_path: Path, *, check: bool = False) -> ReadmeConfig:
         results_dir=str(tmp_path / "results"),
         check=check,
     )
+
+
+def test_plots_truth_block_tabulates_categories_by_verdict_and_names_the_plots_missing_a_target():
+    counts = {
+        "untouched": {"low_evidence": 4, "review": 0, "strong_evidence": 0, "not_measured": 0},
+        "minor_after": {"low_evidence": 0, "review": 0, "strong_evidence": 0, "not_measured": 0},
+        "converted_after": {"low_evidence": 2, "review": 2, "strong_evidence": 9, "not_measured": 0},
+    }
+    doc = {"counts": counts, "cutoff_year": 2020, "untouched_above_low_evidence": [], "converted_after_at_low_evidence": ["P15", "P39"]}
+    body = demo_plots_truth_block(doc, source="f.json")
+    assert row(body, "true category") == "| true category | `low_evidence` | `review` | `strong_evidence` |"
+    assert row(body, "`untouched`") == "| `untouched` | 4 | 0 | 0 |"
+    assert row(body, "`converted_after`") == "| `converted_after` | 2 | 2 | 9 |"
+    assert "`minor_after`" not in body  # a category with no plot is left out
+    assert "no untouched plot above `low_evidence`: met" in body and "at `low_evidence`: missed (P15, P39)" in body
 
 
 def test_run_fills_blocks_with_json_and_leaves_the_others(tmp_path):
