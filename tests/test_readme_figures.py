@@ -167,6 +167,10 @@ def test_mapping_speed_block_targets():
     big = mapping_speed_block(SPEED | {"peak_rss_mb_4096": 2100.0, "rss_ratio": 1.1}, source="s.json")
     assert row(big, rss).endswith("memory missed |")
     assert "dated 2026-12-01, one run on 2 torch threads" in body
+    # A result written before the forest was timed has no forest row; one with it says how the model compares.
+    assert "tuned random forest" not in body
+    forest = mapping_speed_block(SPEED | {"forest_px_per_s": 2500.0, "model_vs_forest": 0.732}, source="s.json")
+    assert row(forest, "tuned random forest, same tile (read, yearly medians and minima, predict)").endswith("| 2,500 px/s: the model runs at **0.73×** its speed | ≥ 1×: missed |")
 
 
 def test_accuracy_block_bold_best_and_gaps():

@@ -70,6 +70,8 @@ TARGET_PIPELINE = 0.7
 TARGET_FULLCONV = 10.0
 #: Mapping speed: the model at least this share of the trees baseline's speed ("within 3×").
 TARGET_VS_TREES = 1 / 3
+#: Mapping speed: the model at least as fast as the tuned random forest.
+TARGET_VS_FOREST = 1.0
 #: Mapping memory: peak RSS of the largest tile over the smallest one, and its ceiling in MB.
 TARGET_RSS_RATIO = 1.2
 TARGET_RSS_MB = 2000.0
@@ -291,6 +293,14 @@ def mapping_speed_block(doc: dict[str, Any], *, source: str) -> str:
             f"within {1 / TARGET_VS_TREES:g}×: {_met(doc['model_vs_trees'] >= TARGET_VS_TREES)}",
         ],
     ]
+    if "forest_px_per_s" in doc:
+        rows.append(
+            [
+                "tuned random forest, same tile (read, yearly medians and minima, predict)",
+                f"{_fmt(doc['forest_px_per_s'], ',.0f')} px/s: the model runs at **{_fmt(doc['model_vs_forest'], '.2f')}×** its speed",
+                f"≥ {TARGET_VS_FOREST:g}×: {_met(doc['model_vs_forest'] >= TARGET_VS_FOREST)}",
+            ]
+        )
     if len(sizes) > 1 and "rss_ratio" in doc:
         peaks = [doc[f"peak_rss_mb_{s}"] for s in sizes]
         ratio_ok, mb_ok = doc["rss_ratio"] <= TARGET_RSS_RATIO, max(peaks) < TARGET_RSS_MB

@@ -6,7 +6,9 @@
   own matrix products, which run as ``addmm`` on packed sequences);
 * one toy tile from GeoTIFF in to COG out (end to end) against the model
   alone on pre-read windows (the pipeline's overhead);
-* the naive patch-by-patch path and the trees baseline on the same tile;
+* the naive patch-by-patch path, the trees baseline and the tuned random
+  forest of the accuracy benchmark on the same tile (reading and features
+  included);
 * peak resident memory of a fresh process mapping a 1024² and a 4096²
   simulated tile (a one-member network of the default size on four dates,
   random weights: memory depends on shapes, not on what was learnt).
@@ -27,8 +29,8 @@ from typing import Any
 import numpy as np
 import torch
 
-from plantation.benchmarks.accuracy import centre_series, tile_series
-from plantation.benchmarks.baselines import AnnualTrees, annual_features
+from plantation.benchmarks.accuracy import ForestGrid, centre_series, tile_series
+from plantation.benchmarks.baselines import AnnualForest, AnnualTrees, annual_features
 from plantation.benchmarks.reading import peak_rss_mb
 from plantation.config import to_object
 from plantation.errors import ConfigError
@@ -60,6 +62,8 @@ class SpeedConfig:
     cache_dir: str = "bench/cache/speed"
     gdal_cache_mb: int = 128
     rss_sim: SimulationConfig = field(default_factory=SimulationConfig)
+    #: The random forest's tuning grid (the accuracy benchmark's); the tuned forest maps the tile.
+    forest: ForestGrid = field(default_factory=ForestGrid)
     out: str = "bench/results/speed.json"
 
 
@@ -263,6 +267,22 @@ def run(cfg: SpeedConfig) -> dict[str, Any]:
     sec = _median_seconds(trees_map, cfg.repeats)
     res["trees_px_per_s"] = round(n_px / sec, 1)
     res["model_vs_trees"] = round(res["end_to_end_px_per_s"] / res["trees_px_per_s"], 3)
+
+    # The tuned random forest of the accuracy benchmark mapping the same tile (reading, yearly medians and minima, prediction), on the same threads.
+    val = samples.part("val")
+    xv, vv = centre_series(val)
+    g = cfg.forest
+    forest = AnnualForest(n_estimators=tuple(g.n_estimators), max_depth=tuple(None if d == 0 else d for d in g.max_depth), max_features=tuple(g.max_features), n_jobs=torch.get_num_threads())
+    forest.fit(AnnualForest.features(xs, vs, date_year, ny, samples.channels), train.target, samples.outcomes.size, val=(AnnualForest.features(xv, vv, date_year, ny, samples.channels), val.target))
+
+    def forest_map() -> None:
+        xt, vt = tile_series(open_tile(tile_cfg, cfg.region), list(cfg.region.bands), list(art.card.indices))
+        forest.predict_proba(AnnualForest.features(xt, vt, date_year, ny, samples.channels))
+
+    sec = _median_seconds(forest_map, cfg.repeats)
+    res["forest_px_per_s"] = round(n_px / sec, 1)
+    res["model_vs_forest"] = round(res["end_to_end_px_per_s"] / res["forest_px_per_s"], 3)
+    res["forest_params"] = {k: str(v) for k, v in (forest.params_ or {}).items()}
 
     # Peak memory of fresh processes mapping large simulated tiles.
     cache = Path(cfg.cache_dir)
