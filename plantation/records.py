@@ -1,4 +1,4 @@
-"""Reading the JSON records this tool writes (model card, map manifest, sample design, assessment, plot results).
+"""Reading and writing the JSON records this tool writes (model card, map manifest, sample design, assessment, plot and benchmark results).
 
 Each record's own module reads and writes it; these helpers give them one
 way to refuse a damaged file: a :class:`~plantation.errors.FileFormatError`
@@ -8,6 +8,7 @@ in one line naming the file, what is wrong and how to get a good one back.
 from __future__ import annotations
 
 import json
+import os
 from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
@@ -68,3 +69,16 @@ def check_shapes(path: Path, doc: dict[str, Any], *, objects: Iterable[str] = ()
         for i, entry in enumerate(doc.get(k) or [], start=1):
             if not isinstance(entry, dict):
                 raise FileFormatError(f"{path}: {k} entry {i} is a JSON {type(entry).__name__}, expected an object; the file was edited or damaged, {again}")
+
+
+def write_object(doc: dict[str, Any], dest: str | Path, *, indent: int = 1) -> Path:
+    """Write ``doc`` as JSON (UTF-8) to ``dest`` through ``<dest>.partial`` and a rename: a failed write leaves no finished-looking file."""
+    out = Path(dest)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.with_name(out.name + ".partial")
+    try:
+        tmp.write_text(json.dumps(doc, indent=indent, ensure_ascii=False) + "\n", encoding="utf-8")
+        os.replace(tmp, out)
+    finally:
+        tmp.unlink(missing_ok=True)
+    return out

@@ -19,8 +19,8 @@ from affine import Affine
 from pyproj import CRS as ProjCRS
 from pyproj import Transformer
 
-from plantation.benchmarks import plotcheck
-from plantation.benchmarks.plotcheck import PlotCheckConfig, categorise, compare, pixel_area_m2, plot_truths, run, summarise
+from plantation import records
+from plantation.benchmarks.plotcheck import PlotCheckConfig, categorise, compare, pixel_area_m2, plot_truths, run, truth_of
 from plantation.cli import main
 from plantation.errors import InputNotFoundError, PlantationError
 from plantation.farmplots.cutoff import KIND, PlotRow, VerdictConfig, _record, read_plots, read_plots_json, write_outputs
@@ -154,11 +154,11 @@ def test_pixel_area_from_the_transform_in_a_projected_crs_only():
 def test_categories_at_the_review_area_boundary():
     cls, onset, event = np.array([2, 2, 1]), np.array([2021, 2022, 0]), np.array([2, 2, 0])
     area = np.full(3, 900.0)
-    at = summarise(cls, onset, event, area, cutoff_year=CUTOFF, review_min_ha=0.18)
+    at = truth_of(cls, onset, event, area, cutoff_year=CUTOFF, review_min_ha=0.18)
     assert at.after_ha == pytest.approx(2 * PIXEL_HA) and at.category == "converted_after" and at.area_px == 3
-    assert summarise(cls, onset, event, area, cutoff_year=CUTOFF, review_min_ha=0.19).category == "minor_after"
+    assert truth_of(cls, onset, event, area, cutoff_year=CUTOFF, review_min_ha=0.19).category == "minor_after"
     # Onset in the cutoff year itself is before the cutoff.
-    assert summarise(cls, np.array([2020, 2019, 0]), event, area, cutoff_year=CUTOFF, review_min_ha=0.1).category == "converted_before_only"
+    assert truth_of(cls, np.array([2020, 2019, 0]), event, area, cutoff_year=CUTOFF, review_min_ha=0.1).category == "converted_before_only"
     kw = {"after_ha": 0.0, "review_min_ha": 0.1}
     assert categorise(area_px=0, any_conversion=False, any_event=False, **kw) == "no_truth"
     assert categorise(area_px=5, any_conversion=False, any_event=True, **kw) == "other_disturbance"
@@ -247,7 +247,7 @@ def test_a_failed_write_leaves_the_previous_result_and_no_partial(bench, monkeyp
     def broken(src, dst):
         raise OSError("disk full")
 
-    monkeypatch.setattr(plotcheck.os, "replace", broken)
+    monkeypatch.setattr(records.os, "replace", broken)
     with pytest.raises(OSError, match="disk full"):
         run(bench)
     assert out.read_text() == '{"old": true}\n'

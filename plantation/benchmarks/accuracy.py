@@ -32,7 +32,6 @@ score.
 from __future__ import annotations
 
 import json
-import logging
 import os
 import shutil
 import tempfile
@@ -58,11 +57,10 @@ from plantation.model.inference import predict_tile
 from plantation.model.outcomes import Outcomes, Summary, mass_for_coverage, summarise
 from plantation.model.patches import PatchSet, features, year_of
 from plantation.model.training import TrainConfig, fit, interval_curve, load_region_samples, model_card, resolve_prior
+from plantation.records import write_object
 from plantation.simulation.landscape import Landscape, build_landscape
 from plantation.simulation.scenario import EVENTS, SimulationConfig, dates_of, decimal_year
 from plantation.simulation.writer import tile_names, write_region
-
-log = logging.getLogger(__name__)
 
 
 @dataclass
@@ -72,6 +70,11 @@ class ForestGrid:
     n_estimators: list[int] = field(default_factory=lambda: [100, 300])
     max_depth: list[int] = field(default_factory=lambda: [8, 16, 0])
     max_features: list[float] = field(default_factory=lambda: [0.1, 0.3])
+
+    def forest(self, seed: int = 0, n_jobs: int = 1) -> AnnualForest:
+        """An untrained :class:`AnnualForest` that tunes over this grid."""
+        depths = tuple(None if d == 0 else d for d in self.max_depth)
+        return AnnualForest(n_estimators=tuple(self.n_estimators), max_depth=depths, max_features=tuple(self.max_features), seed=seed, n_jobs=n_jobs)
 
 
 @dataclass
@@ -284,7 +287,10 @@ def recalibrated(summ: Summary, truth: dict[str, np.ndarray], cfg: ComparisonCon
 
     The sample is labelled from the truth, as interpreters would label it;
     the fit is :func:`plantation.model.calibration.fit_recalibration`, the
-    one ``plantation recalibrate`` applies to written maps.
+    one ``plantation recalibrate`` applies to written maps. Unlike a written
+    map (:func:`plantation.mapping.folder.recalibrate_stored`), p_after_cutoff
+    is not capped at p_conversion here, and the probabilities are not
+    rounded to the map's int16 codes.
     """
     a = cfg.assessment
     strata = assessment_strata(summ, cfg.calibration.cutoff_year)
@@ -388,9 +394,7 @@ def evaluate_seed(cfg: ComparisonConfig, held: HeldOut, seed: int) -> tuple[dict
     trees = AnnualTrees(seed=seed).fit(annual_features(xs, vs, date_year, ny, samples.channels), train.target, outcomes.size)
     trees_seconds = time.perf_counter() - t0
     t0 = time.perf_counter()
-    grid = cfg.forest
-    depths = tuple(None if d == 0 else d for d in grid.max_depth)
-    forest = AnnualForest(n_estimators=tuple(grid.n_estimators), max_depth=depths, max_features=tuple(grid.max_features), seed=seed, n_jobs=torch.get_num_threads())
+    forest = cfg.forest.forest(seed=seed, n_jobs=torch.get_num_threads())
     forest.fit(AnnualForest.features(xs, vs, date_year, ny, samples.channels), train.target, outcomes.size, val=(AnnualForest.features(xv, vv, date_year, ny, samples.channels), val.target))
     forest_seconds = time.perf_counter() - t0
     t0 = time.perf_counter()
@@ -518,23 +522,7 @@ def run(cfg: ComparisonConfig) -> dict[str, Any]:
     regions = {}
     for name in cfg.regions:
         held = builders[name](cfg)
-        per_seed = []
-        for seed in cfg.seeds:
-            per_seed.append(evaluate_seed(cfg, held, seed))
-            m = per_seed[-1][0]["model"]
-            # One line per finished seed, so a long run shows where it stands.
-            log.info(
-                "%s seed %d: model year_exact %.3f, ece %.3f, ece_after_cutoff %.3f, mean p_conversion %.3f (true %.3f), forest plots %.3f, interval coverage %.3f",
-                name,
-                seed,
-                m["year_exact"],
-                m["ece"],
-                m["ece_after_cutoff"],
-                m["mean_p_conversion"],
-                m["true_conversion_share"],
-                m["forest_plot_after_share"] or 0.0,
-                m["interval80_coverage"],
-            )
+        per_seed = [evaluate_seed(cfg, held, seed) for seed in cfg.seeds]
         methods = {}
         for m in per_seed[0][0]:
             runs = [r[m] for r, _ in per_seed]
@@ -547,9 +535,5 @@ def run(cfg: ComparisonConfig) -> dict[str, Any]:
         "assessment": asdict(cfg.assessment),
         "threads": torch.get_num_threads(),
     }
-    out = Path(cfg.out)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmpf = out.with_name(out.name + ".partial")
-    tmpf.write_text(json.dumps(report, indent=2) + "\n")
-    os.replace(tmpf, out)
+    write_object(report, cfg.out, indent=2)
     return report

@@ -31,15 +31,13 @@ only), reported in ha. A plot's category, the first that applies:
 The truth resolves years only: with a cutoff date inside a year, a
 conversion in that year counts as before the cutoff here.
 
-The issue's two targets: no ``untouched`` plot above ``low_evidence``, and no
+The two targets: no ``untouched`` plot above ``low_evidence``, and no
 ``converted_after`` plot at ``low_evidence``.
 """
 
 from __future__ import annotations
 
-import json
 import math
-import os
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -57,6 +55,7 @@ from plantation.errors import ConfigError, FileFormatError, InputNotFoundError, 
 from plantation.farmplots.cutoff import PLOTS_JSON, VERDICTS, PlotSet, check_plots, read_plots, read_plots_json, reproject
 from plantation.imagery.config import RegionConfig, TileConfig
 from plantation.mapping.folder import file_digest
+from plantation.records import write_object
 from plantation.reference.labels import LABEL_CODES
 from plantation.simulation.scenario import EVENTS
 
@@ -134,7 +133,7 @@ def categorise(*, area_px: int, after_ha: float, any_conversion: bool, any_event
     return "untouched"
 
 
-def summarise(cls: np.ndarray, onset: np.ndarray, event: np.ndarray, area_m2: np.ndarray, *, cutoff_year: int, review_min_ha: float) -> PlotTruth:
+def truth_of(cls: np.ndarray, onset: np.ndarray, event: np.ndarray, area_m2: np.ndarray, *, cutoff_year: int, review_min_ha: float) -> PlotTruth:
     """A plot's truth from its pixels (1-D arrays, one entry per pixel inside it).
 
     Args:
@@ -247,7 +246,7 @@ def plot_truths(plots: PlotSet, tiles: Sequence[TileConfig], *, cutoff_year: int
                 cls, onset, event = rd.pixels(g)
                 parts.append((cls, onset, event, np.full(cls.size, rd.area_m2)))
             cls, onset, event, area = (np.concatenate([p[j] for p in parts]) if parts else np.zeros(0) for j in range(4))
-            out[str(plots.ids[i])] = summarise(cls, onset, event, area, cutoff_year=cutoff_year, review_min_ha=review_min_ha)
+            out[str(plots.ids[i])] = truth_of(cls, onset, event, area, cutoff_year=cutoff_year, review_min_ha=review_min_ha)
         return out
     finally:
         for rd in readers:
@@ -315,19 +314,6 @@ def _number(doc: dict[str, Any], path: Path, *keys: str) -> Any:
     return node
 
 
-def write_json(doc: dict[str, Any], dest: str | Path) -> Path:
-    """Write ``doc`` as JSON to ``dest`` through ``<dest>.partial`` and a rename: a failed write leaves no finished-looking file."""
-    out = Path(dest)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = out.with_name(out.name + ".partial")
-    try:
-        tmp.write_text(json.dumps(doc, indent=1, ensure_ascii=False) + "\n")
-        os.replace(tmp, out)
-    finally:
-        tmp.unlink(missing_ok=True)
-    return out
-
-
 def run(cfg: PlotCheckConfig) -> dict[str, Any]:
     """Score the verdicts of ``cfg.plots_json`` against the region's truth, write ``cfg.result`` and return what it holds.
 
@@ -376,7 +362,7 @@ def run(cfg: PlotCheckConfig) -> dict[str, Any]:
         "converted_after_at_low_evidence": cmp.converted_after_at_low_evidence,
         "targets_met": cmp.targets_met,
     }
-    write_json(result, cfg.result)
+    write_object(result, cfg.result)
     return result
 
 

@@ -271,8 +271,7 @@ def run(cfg: SpeedConfig) -> dict[str, Any]:
     # The tuned random forest of the accuracy benchmark mapping the same tile (reading, yearly medians and minima, prediction), on the same threads.
     val = samples.part("val")
     xv, vv = centre_series(val)
-    g = cfg.forest
-    forest = AnnualForest(n_estimators=tuple(g.n_estimators), max_depth=tuple(None if d == 0 else d for d in g.max_depth), max_features=tuple(g.max_features), n_jobs=torch.get_num_threads())
+    forest = cfg.forest.forest(n_jobs=torch.get_num_threads())
     forest.fit(AnnualForest.features(xs, vs, date_year, ny, samples.channels), train.target, samples.outcomes.size, val=(AnnualForest.features(xv, vv, date_year, ny, samples.channels), val.target))
 
     def forest_map() -> None:

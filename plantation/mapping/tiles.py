@@ -62,16 +62,21 @@ class Settings:
     def content_key(self) -> dict[str, Any]:
         # Window, batch and threads change float rounding at most, not what the map says.
         key = {"min_clear": self.min_clear, "cutoff_year": self.cutoff_year, "interval_level": self.interval_level, "interval_mass": self.interval_mass, "format": FORMAT}
-        if self.recalibration:
-            rec = json.loads(self.recalibration)
+        rec = self.recalibration_record()
+        if rec is not None:
             key["recalibration"] = [rec["coef_conversion"], rec["coef_after_cutoff"]]
         return key
+
+    def recalibration_record(self) -> dict[str, Any] | None:
+        """The recalibration record as an object (None: none)."""
+        return json.loads(self.recalibration) if self.recalibration else None
 
     def correction(self, art: Artefact) -> dict[str, Any]:
         """The probability correction tiles mapped with these settings carry: the model's prior, and the recalibration if any."""
         out: dict[str, Any] = dict(art.card.calibration.correction())
-        if self.recalibration:
-            out[RECALIBRATION] = json.loads(self.recalibration)
+        rec = self.recalibration_record()
+        if rec is not None:
+            out[RECALIBRATION] = rec
         return out
 
 
@@ -199,7 +204,7 @@ def map_tile(
     by_year = np.zeros(len(years))
     after = 0.0
 
-    recal = json.loads(settings.recalibration) if settings.recalibration else None
+    recal = settings.recalibration_record()
 
     def read(win: tuple[int, int, int, int]) -> tuple[torch.Tensor, torch.Tensor]:
         r0, c0, h, w = win

@@ -397,7 +397,7 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
     cal.interval_masses, cal.interval_coverage = interval_curve(np.exp(calibrated_log_probs(val_logits, cal).numpy()), val.target, samples.outcomes)
     metrics["interval_mass"] = {"nominal": cfg.calibration.interval_level, "mass": cal.interval_mass(cfg.calibration.interval_level)}
     # Reliability of the sample-mix probabilities on the stratified held-out points, with the intervals the maps will carry.
-    metrics["validation"] = reliability_record(nets, replace(cal, target_prior=[]), held, held_name, cfg.calibration, masses=cal)
+    metrics["validation"] = reliability_record(nets, replace(cal, target_prior=[]), held, held_name, cfg.calibration)
     record = {
         **cal.correction(),
         "target_prior": [round(v, 6) for v in cal.target_prior],
@@ -512,7 +512,7 @@ def score_samples(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchSet, c
 COVERAGE_LEVELS = (0.5, 0.8, 0.9, 0.95)
 
 
-def reliability_record(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchSet, split: str, cc: CalibrationConfig, n_bins: int = 10, *, masses: Calibration | None = None) -> dict[str, Any]:
+def reliability_record(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchSet, split: str, cc: CalibrationConfig, n_bins: int = 10) -> dict[str, Any]:
     """How well the calibrated probabilities and intervals hold on held-out points (for the report).
 
     ``reliability``: per equal-width bin of p_conversion, the mean predicted
@@ -522,9 +522,9 @@ def reliability_record(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchS
     in the interval of that level (the interval is of the year given
     conversion, so misses of the class are not counted here), the interval
     asking each point's year distribution for ``mass``: the mass whose
-    coverage on the validation split was the level (``masses``' curve, else
-    ``cal``'s; see :func:`interval_curve`). On the test split that is a
-    check on data the curve was not fitted on. The sample is the stratified
+    coverage on the validation split was the level (``cal``'s curve, see
+    :func:`interval_curve`). On the test split that is a check on data the
+    curve was not fitted on. The sample is the stratified
     label sample, so these are not map accuracies.
     """
     probs = np.exp(calibrated_log_probs(member_logits(nets, s), cal).numpy())
@@ -543,7 +543,7 @@ def reliability_record(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchS
     hit = conv & (base.label == LABEL_CODES["conversion"])
     cover = []
     for level in COVERAGE_LEVELS:
-        mass = (masses or cal).interval_mass(level)
+        mass = cal.interval_mass(level)
         sm = summarise(probs, years, cutoff_year=cc.cutoff_year, level=mass)
         ok = hit & (sm.year_low <= true_year) & (true_year <= sm.year_high)
         cover.append({"level": level, "mass": mass, "coverage": round(float(ok.sum() / max(hit.sum(), 1)), 4), "n": int(hit.sum())})

@@ -465,7 +465,9 @@ def _validation_section(a: dict[str, Any] | None) -> str:
             f"<figure>{_img(figures.interval_coverage_plot(cov), 'Interval coverage')}"
             '<figcaption class="caption">For each nominal level, the share of held-out conversions whose true year lies inside the onset-year interval of that level. '
             "Below the dashed line the intervals are too narrow. Whole-year intervals cannot hold exactly any level, so each asks the pixel's year distribution for the mass "
-            "whose coverage on the validation split was nearest the level (the table's last column); this split was not used to choose it.</figcaption></figure>"
+            "whose coverage on the validation split was nearest the level (the table's last column)"
+            + ("; this split was not used to choose it" if v.get("split") == "test" else "")
+            + ".</figcaption></figure>"
         )
     rows = [[pct(c.get("level"), 0), pct(c.get("coverage")), esc(c.get("n", DASH)), pct(c.get("mass"), 0) if _finite(c.get("mass")) else DASH] for c in cov]
     table = (
