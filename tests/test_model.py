@@ -5,7 +5,6 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import torch
-from torch import nn
 
 from plantation.model.network import ConvRecurrentNet
 
@@ -16,7 +15,7 @@ DOY = [(i % 4) / 4 + 0.1 for i in range(T)]
 
 def _net(k: int = 3, hidden: int = 16) -> ConvRecurrentNet:
     torch.manual_seed(0)
-    return ConvRecurrentNet(5, DATE_YEAR, DOY, neighbourhood=k, conv_width=8, hidden=hidden, dropout=0.0).eval()
+    return ConvRecurrentNet(5, DATE_YEAR, DOY, neighbourhood=k, date_width=8, conv_width=8, hidden=hidden, dropout=0.0).eval()
 
 
 def _batch(b: int = 6, k: int = 3, seed: int = 1) -> tuple[torch.Tensor, torch.Tensor]:
@@ -61,36 +60,28 @@ def test_a_pixel_never_observed_still_gets_a_distribution():
     assert torch.isfinite(p).all() and torch.allclose(p.sum(-1), torch.ones(2))
 
 
-def test_masked_gru_matches_a_step_by_step_reference():
-    # The packed fused GRU must equal the obvious loop: update on observed
-    # dates, carry the state on unobserved ones, in both directions.
-    net = _net(hidden=8)
-    g = torch.Generator().manual_seed(4)
-    e = torch.randn(5, T, 8, generator=g)
-    obs = torch.rand(5, T, generator=g) > 0.5
-    obs[0] = False
-    obs[1] = True
-    fwd, bwd = net.masked_gru(e, obs)
-    gru = net.gru
-    cells = []
-    for sfx in ("", "_reverse"):
-        c = nn.GRUCell(8, 8)
-        c.load_state_dict({name: getattr(gru, f"{name}_l0{sfx}") for name in ("weight_ih", "weight_hh", "bias_ih", "bias_hh")})
-        cells.append(c)
-    m = obs.float().unsqueeze(-1)
+def test_yearly_summary_is_the_mean_and_max_of_observed_dates():
+    # Reference: the obvious per-pixel loop over each year's observed dates.
+    net = _net()
+    x, v = _batch(b=3)
+    v[0, 4:8] = False  # year 2 of pixel batch 0 never observed
     with torch.no_grad():
-        h = torch.zeros(5, 8)
-        ref_f = []
-        for i in range(T):
-            h = m[:, i] * cells[0](e[:, i], h) + (1 - m[:, i]) * h
-            ref_f.append(h)
-        h = torch.zeros(5, 8)
-        ref_b = [torch.zeros(0)] * T
-        for i in reversed(range(T)):
-            h = m[:, i] * cells[1](e[:, i], h) + (1 - m[:, i]) * h
-            ref_b[i] = h
-    torch.testing.assert_close(fwd, torch.stack(ref_f, 1), atol=1e-5, rtol=1e-5)
-    torch.testing.assert_close(bwd, torch.stack(ref_b, 1), atol=1e-5, rtol=1e-5)
+        s = net.summarise(x, v)
+        z = ((x - net.mean[:, None, None]) / net.std[:, None, None]).nan_to_num(0.0)
+        for b in range(3):
+            for i in range(3):
+                for j in range(3):
+                    for y in range(3):
+                        dates = [t for t in range(4 * y, 4 * y + 4) if v[b, t, i, j]]
+                        got = s[b, y, i, j]
+                        if not dates:
+                            assert torch.all(got == 0)
+                            continue
+                        e = torch.stack([net.date_embed(torch.cat([z[b, t, :, i, j], net.season[t]])) for t in dates])
+                        torch.testing.assert_close(got[:8], e.mean(0), atol=1e-5, rtol=1e-5)
+                        torch.testing.assert_close(got[8:16], e.amax(0), atol=1e-5, rtol=1e-5)
+                        torch.testing.assert_close(got[16:21], z[b, dates, :, i, j].mean(0), atol=1e-5, rtol=1e-5)
+                        assert float(got[21]) == pytest.approx(len(dates) / 4)
 
 
 @pytest.mark.parametrize("k", [1, 3, 5])
@@ -116,6 +107,8 @@ def test_bad_construction_is_refused():
         ConvRecurrentNet(5, DATE_YEAR, DOY, neighbourhood=4)
     with pytest.raises(ValueError, match="date_year"):
         ConvRecurrentNet(5, [1, 1, 2], [0.1, 0.5, 0.2])
+    with pytest.raises(ValueError, match="every year present"):
+        ConvRecurrentNet(5, [0, 0, 2], [0.1, 0.5, 0.2])
     with pytest.raises(ValueError, match="patches are"):
         _net(k=3)(*_batch(k=5))
 
@@ -125,6 +118,6 @@ def test_normalisation_statistics_are_used():
     x, v = _batch()
     v[:] = True
     x = x.nan_to_num(0.0)
-    shifted = ConvRecurrentNet(5, DATE_YEAR, DOY, neighbourhood=3, conv_width=8, hidden=16, dropout=0.0, mean=np.full(5, 2.0), std=np.full(5, 3.0)).eval()
+    shifted = ConvRecurrentNet(5, DATE_YEAR, DOY, neighbourhood=3, date_width=8, conv_width=8, hidden=16, dropout=0.0, mean=np.full(5, 2.0), std=np.full(5, 3.0)).eval()
     shifted.load_state_dict(net.state_dict() | {"mean": torch.full((5,), 2.0), "std": torch.full((5,), 3.0)})
     torch.testing.assert_close(shifted(x * 3 + 2, v), net(x, v), atol=1e-5, rtol=1e-5)

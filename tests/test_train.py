@@ -62,12 +62,12 @@ def test_bad_training_values_are_refused(change, message):
 
 @pytest.mark.slow
 def test_train_script_writes_a_complete_run(tmp_path):
-    res = train(tmp_path, "network.members=2", "training.max_epochs=3", "trainer.enable_progress_bar=false")
+    res = train(tmp_path, "network.members=2", "training.max_epochs=3", "distillation.pixels=1000", "distillation.max_epochs=8", "trainer.enable_progress_bar=false")
     assert res.returncode == 0, res.stderr[-3000:]
     run = tmp_path / "run"
     assert str(run) in res.stdout
     assert {p.name for p in run.iterdir()} >= {"config.yaml", "labels.json", "metrics.json", "checkpoints", "logs", "model"}
-    assert sorted(p.name for p in (run / "checkpoints").iterdir()) == ["member0.ckpt", "member1.ckpt"]
+    assert sorted(p.name for p in (run / "checkpoints").iterdir()) == ["distilled.ckpt", "member0.ckpt", "member1.ckpt"]
     labels = json.loads((run / "labels.json").read_text())
     assert len(labels["fingerprint"]) == 64 and labels["counts"]["conversion"] > 500
     assert labels["split"]["train"] > 1500 and labels["split"]["val"] > 150 and labels["split"]["test"] > 150
@@ -94,6 +94,16 @@ def test_train_script_writes_a_complete_run(tmp_path):
     assert tp.probs.shape == (20, 24, 15)
     np.testing.assert_allclose(tp.probs.sum(-1), 1.0, atol=1e-5)
     assert (tp.epistemic >= 0).all() and tp.epistemic.max() > 0
+    # The distilled network maps by default; it stays within its stated
+    # tolerance of the ensemble it replaces, on validation and on the map.
+    dist = m["distillation"]
+    assert dist["within_tolerance"] and art.distilled is not None and art.card.distilled == dist
+    tol = dist["tolerance"]["mean_tv_distance"]
+    assert dist["validation"]["mean_tv_distance"] <= tol and dist["validation"]["n"] == labels["split"]["val"]
+    every = predict_tile(art, corner, window=16, distilled=False)
+    assert 0.5 * np.abs(tp.probs - every.probs).sum(-1).mean() <= tol
+    assert not np.allclose(tp.probs, every.probs)
+    assert np.abs(tp.epistemic - every.epistemic).mean() < max(0.05, 0.5 * every.epistemic.mean())
 
 
 @pytest.mark.slow

@@ -383,7 +383,7 @@ def evaluate_seed(cfg: ComparisonConfig, held: HeldOut, seed: int) -> tuple[dict
         t0 = time.perf_counter()
         trained = fit(samples, tc, Path(tmp), stacks=train_stacks, labels=labels)
         model_seconds = time.perf_counter() - t0
-        art_io.save(Path(tmp) / "model", model_card(tc, samples, trained, labels), trained.members)
+        art_io.save(Path(tmp) / "model", model_card(tc, samples, trained, labels), trained.members, trained.distilled)
         artefact = art_io.load(Path(tmp) / "model")
         if cfg.model_dir:
             shutil.copytree(Path(tmp) / "model", Path(cfg.model_dir) / f"seed{seed}", dirs_exist_ok=True)
@@ -426,7 +426,9 @@ def evaluate_seed(cfg: ComparisonConfig, held: HeldOut, seed: int) -> tuple[dict
 
     region = held.region
     stacks = open_region(region)
-    methods = ("model", "random_forest", "trees", "breakpoint")
+    # With a distilled network the model maps with it (the default); the full ensemble is mapped too, to show what distilling costs.
+    methods = ("model", "random_forest", "trees", "breakpoint") + (("ensemble",) if artefact.distilled is not None else ())
+    priors["ensemble"], masses["ensemble"] = priors["model"], masses["model"]
     probs: dict[str, list[np.ndarray]] = {m: [] for m in methods}
     map_seconds = dict.fromkeys(methods, 0.0)
     parts: dict[str, list[np.ndarray]] = {k: [] for k in ("label", "year", "event", "event_year", "seen", "in_year", "forest_plots")}
@@ -437,6 +439,11 @@ def evaluate_seed(cfg: ComparisonConfig, held: HeldOut, seed: int) -> tuple[dict
         tp = predict_tile(artefact, st, window=cfg.window, progress=cfg.progress, scaling=region.scaling)
         map_seconds["model"] += time.perf_counter() - t0
         probs["model"].append(tp.probs.reshape(-1, outcomes.size))
+        if "ensemble" in methods:
+            t0 = time.perf_counter()
+            tp = predict_tile(artefact, st, window=cfg.window, progress=cfg.progress, scaling=region.scaling, distilled=False)
+            map_seconds["ensemble"] += time.perf_counter() - t0
+            probs["ensemble"].append(tp.probs.reshape(-1, outcomes.size))
         x, v = tile_series(st, list(region.bands), list(cfg.patches.indices))
         t0 = time.perf_counter()
         probs["trees"].append(trees.predict_proba(annual_features(x, v, date_year, ny, samples.channels)))
@@ -455,7 +462,7 @@ def evaluate_seed(cfg: ComparisonConfig, held: HeldOut, seed: int) -> tuple[dict
         parts["forest_plots"].append(untouched_forest_plots(cls.ravel(), event.ravel(), cls.shape, cfg.plot_px))
     truth = {k: np.concatenate(v) for k, v in parts.items()}
     n_conv = max(int((truth["label"] == 2).sum()), 1)
-    seconds = {"model": model_seconds, "random_forest": forest_seconds, "trees": trees_seconds, "breakpoint": rule_seconds}
+    seconds = {"model": model_seconds, "ensemble": model_seconds, "random_forest": forest_seconds, "trees": trees_seconds, "breakpoint": rule_seconds}
     results: dict[str, dict[str, Any]] = {}
     for name in methods:
         p = np.concatenate(probs[name])
@@ -464,8 +471,9 @@ def evaluate_seed(cfg: ComparisonConfig, held: HeldOut, seed: int) -> tuple[dict
             sc = _scores(summ, truth, outcomes, cfg, has_probability=False)
         else:
             # The network's probabilities already carry its prior; undo it for the sample-mix figures.
-            p_sample = reweight(p, priors["model"], train_prior) if name == "model" else p
-            p_region = p if name == "model" else reweight(p, train_prior, priors[name])
+            own = name in ("model", "ensemble")
+            p_sample = reweight(p, priors["model"], train_prior) if own else p
+            p_region = p if own else reweight(p, train_prior, priors[name])
             summ = summarise(p_region, outcomes.years, cutoff_year=cfg.calibration.cutoff_year, level=masses[name])
             final, fitted = recalibrated(summ, truth, cfg, seed)
             sc = _scores(final, truth, outcomes, cfg, has_probability=True)
@@ -479,6 +487,11 @@ def evaluate_seed(cfg: ComparisonConfig, held: HeldOut, seed: int) -> tuple[dict
         sc["map_seconds"] = round(map_seconds[name], 1)
         sc["n_train_labels"] = len(train)
         results[name] = sc
+    if "ensemble" in results:
+        ens = results.pop("ensemble")
+        results["model"]["ensemble"] = {k: ens[k] for k in (*ENSEMBLE_KEYS, "map_seconds")}
+        results["model"]["distillation"] = trained.metrics["distillation"]["validation"]
+    results["model"]["networks"] = "distilled" if artefact.distilled is not None else "ensemble"
     results["model"]["members"] = len(artefact.members)
     results["model"]["temperature"] = round(artefact.card.calibration.temperature, 4)
     results["model"]["test_split"] = trained.metrics.get("test")
@@ -501,6 +514,10 @@ def evaluate_seed(cfg: ComparisonConfig, held: HeldOut, seed: int) -> tuple[dict
         "labels_fingerprint": labels.fingerprint,
     }
     return results, facts
+
+
+#: Figures kept of the full ensemble beside the distilled network's.
+ENSEMBLE_KEYS = ("year_exact", "year_within1", "conversion_f1", "macro_f1", "ece", "interval80_coverage", "forest_plot_after_share", "per_class_f1")
 
 
 def run(cfg: ComparisonConfig) -> dict[str, Any]:

@@ -36,10 +36,12 @@ from plantation.config import to_object
 from plantation.errors import ConfigError
 from plantation.imagery.config import RegionConfig, TileConfig
 from plantation.imagery.region import open_tile
-from plantation.mapping.tiles import Settings, map_tile, window_probabilities
+from plantation.mapping.tiles import Settings, map_tile
 from plantation.model.artefact import Artefact, load, save
 from plantation.model.card import Calibration, ModelCard, resolve_model
-from plantation.model.inference import read_window, windows
+from plantation.model.config import NetworkConfig
+from plantation.model.distillation import start_from
+from plantation.model.inference import read_window, window_probabilities, windows
 from plantation.model.network import ConvRecurrentNet
 from plantation.model.patches import day_of_year_fraction, features, read_patches, year_of
 from plantation.model.training import TrainConfig, load_region_samples
@@ -64,6 +66,8 @@ class SpeedConfig:
     rss_sim: SimulationConfig = field(default_factory=SimulationConfig)
     #: The random forest's tuning grid (the accuracy benchmark's); the tuned forest maps the tile.
     forest: ForestGrid = field(default_factory=ForestGrid)
+    #: Days of year of the long series' composites: with the rss simulation's 12 years, 5 a year make 60 dates.
+    long_doys: list[int] = field(default_factory=lambda: [15, 88, 161, 234, 307])
     out: str = "bench/results/speed.json"
 
 
@@ -89,17 +93,22 @@ def _median_seconds(fn: Any, repeats: int) -> float:
     return float(np.median(ts))
 
 
+def runners(art: Artefact) -> list[ConvRecurrentNet]:
+    """The networks a map runs by default: the distilled one if the model has it, else every member."""
+    return [art.distilled] if art.distilled is not None else art.members
+
+
 def model_flops(art: Artefact, x: torch.Tensor, v: torch.Tensor, pixel_batch: int) -> int:
     from torch.utils.flop_counter import FlopCounterMode
 
     with torch.inference_mode(), FlopCounterMode(display=False) as fc:
-        for m in art.members:
+        for m in runners(art):
             m.forward_window(x, v, pixel_batch)
     return int(fc.get_total_flops())
 
 
-def random_model(folder: Path, dates: list[str], region: RegionConfig, members: int = 1) -> Path:
-    """A network of the default size for ``dates``, random weights, saved as an artefact."""
+def random_model(folder: Path, dates: list[str], region: RegionConfig, members: int = 1, distilled: bool = False) -> Path:
+    """A network of the default size for ``dates``, random weights, saved as an artefact (with a distilled network of random weights too, if asked)."""
     d = np.array(dates, dtype="datetime64[D]")
     yrs = year_of(d)
     spec = {
@@ -107,8 +116,10 @@ def random_model(folder: Path, dates: list[str], region: RegionConfig, members: 
         "date_year": (yrs - yrs.min()).tolist(),
         "day_of_year": day_of_year_fraction(d).tolist(),
         "neighbourhood": 5,
-        "conv_width": 32,
-        "hidden": 64,
+        "date_width": NetworkConfig.date_width,
+        "amplitude": NetworkConfig.amplitude,
+        "conv_width": NetworkConfig.conv_width,
+        "hidden": NetworkConfig.hidden,
         "dropout": 0.0,
     }
     nets = []
@@ -130,8 +141,9 @@ def random_model(folder: Path, dates: list[str], region: RegionConfig, members: 
         region=region.name,
         labels_fingerprint="none",
         package_version="bench",
+        distilled={"note": "random weights, for timing"} if distilled else {},
     )
-    return save(folder, card, nets)
+    return save(folder, card, nets, start_from(nets[0], spec).eval() if distilled else None)
 
 
 def make_rss_tiles(cfg: SpeedConfig, folder: Path) -> dict[int, Path]:
@@ -169,6 +181,16 @@ def make_rss_tiles(cfg: SpeedConfig, folder: Path) -> dict[int, Path]:
     return out
 
 
+def long_series_tile(cfg: SpeedConfig, folder: Path) -> Path:
+    """One simulated tile of the toy's size and years with ``cfg.long_doys`` composites a year (cached in ``folder``)."""
+    sim = replace(cfg.rss_sim, name="selvara_long", tiles_x=1, tiles_y=1, composite_doys=list(cfg.long_doys))
+    tile = folder / "long" / "t01" / "imagery"
+    n_dates = (sim.last_year - sim.first_year + 1) * len(cfg.long_doys)
+    if not tile.is_dir() or len(list(tile.glob("*.tif"))) < n_dates:
+        write_region(sim, folder / "long", progress=False)
+    return tile
+
+
 def rss_child(region_json: str, model_dir: str, window: int, pixel_batch: int, dest: str) -> dict[str, Any]:
     """Map one tile in this (fresh) process; return its peak RSS and time."""
     region = to_object(json.loads(region_json), RegionConfig)
@@ -203,13 +225,14 @@ def run(cfg: SpeedConfig) -> dict[str, Any]:
     x, v = torch.from_numpy(features(refl, art.card.bands, art.card.indices)), torch.from_numpy(valid)
     flops = model_flops(art, x, v, cfg.pixel_batch)
 
-    def members_only() -> None:
+    def networks_only() -> None:
         with torch.inference_mode():
-            for m in art.members:
+            for m in runners(art):
                 m.forward_window(x, v, cfg.pixel_batch)
 
-    sec = _median_seconds(members_only, cfg.repeats)
-    res["model_flops_per_px_date"] = round(flops / (w * w * len(art.card.dates) * len(art.members)))
+    sec = _median_seconds(networks_only, cfg.repeats)
+    res["networks"] = "distilled" if art.distilled is not None else "ensemble"
+    res["model_flops_per_px_date"] = round(flops / (w * w * len(art.card.dates) * len(runners(art))))
     res["model_gflops"] = round(flops / sec / 1e9, 2)
     res["roofline_ratio"] = round(res["model_gflops"] / res["gemm_gflops"], 3)
 
@@ -231,8 +254,27 @@ def run(cfg: SpeedConfig) -> dict[str, Any]:
             map_tile(open_tile(tile_cfg, cfg.region), art, settings, Path(tmp) / "tile.tif", region=cfg.region)
 
         sec = _median_seconds(end_to_end, cfg.repeats)
-    res["end_to_end_px_per_s"] = round(n_px / sec, 1)
+        res["end_to_end_px_per_s"] = round(n_px / sec, 1)
+        if art.distilled is not None:
+            # Every member instead, for what the distilled network saves.
+            every = replace(settings, distilled=False)
+            sec = _median_seconds(lambda: map_tile(open_tile(tile_cfg, cfg.region), art, every, Path(tmp) / "tile.tif", region=cfg.region), cfg.repeats)
+            res["ensemble_end_to_end_px_per_s"] = round(n_px / sec, 1)
     res["pipeline_ratio"] = round(res["end_to_end_px_per_s"] / res["model_only_px_per_s"], 3)
+
+    # A longer series (60 dates with the defaults): a model of the default size, random weights, with and without a distilled network.
+    long_dir = long_series_tile(cfg, Path(cfg.cache_dir))
+    long_region = replace(cfg.region, name="long", tiles=[TileConfig(name="t01", path=str(long_dir))])
+    long_stack = open_tile(long_region.tiles[0], long_region)
+    long_dates = [str(d) for d in long_stack.dates]
+    long_art = load(random_model(Path(cfg.cache_dir) / "long_model", long_dates, long_region, members=len(art.members), distilled=True))
+    long_settings = replace(settings, cutoff_year=long_art.card.cutoff_year)
+    n_long = long_stack.grid.height * long_stack.grid.width
+    with tempfile.TemporaryDirectory(prefix="plantation-speed-") as tmp:
+        for key, st in (("end_to_end_px_per_s_long", long_settings), ("ensemble_end_to_end_px_per_s_long", replace(long_settings, distilled=False))):
+            sec = _median_seconds(lambda st=st: map_tile(open_tile(long_region.tiles[0], long_region), long_art, st, Path(tmp) / "tile.tif", region=long_region), cfg.repeats)
+            res[key] = round(n_long / sec, 1)
+    res["long_dates"] = len(long_dates)
 
     # Naive patch by patch: each pixel's k x k patch through forward(), batched.
     rng = np.random.default_rng(0)
@@ -244,7 +286,7 @@ def run(cfg: SpeedConfig) -> dict[str, Any]:
     def patchwise() -> None:
         with torch.inference_mode():
             for i in range(0, len(idx), 256):
-                z = torch.stack([m(xp[i : i + 256], vp[i : i + 256]) for m in art.members])
+                z = torch.stack([m(xp[i : i + 256], vp[i : i + 256])[:, : m.n_outcomes] for m in runners(art)])
                 art.calibrated_log_probs(z).exp()
 
     sec = _median_seconds(patchwise, cfg.repeats)

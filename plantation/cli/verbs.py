@@ -50,6 +50,11 @@ def train(cfg: DictConfig) -> None:
     out = run(to_object(cfg, TrainConfig), resolved_config=_resolved(cfg))
     if os.environ.get("LOCAL_RANK", "0") == "0":  # processes started by DDP stay quiet
         print(f"model written to {out}/model (metrics in {out}/metrics.json)")
+        dist = json.loads((out / "metrics.json").read_text()).get("distillation")
+        if dist:
+            a = dist["validation"]
+            verdict = "kept: maps run it alone" if dist["within_tolerance"] else f"not kept (tolerance {dist['tolerance']['mean_tv_distance']}): maps run every member"
+            print(f"distilled network: mean distance to the ensemble {a['mean_tv_distance']} on validation, same most probable outcome {a['same_most_probable']:.1%}; {verdict}")
 
 
 def map_region(cfg: DictConfig) -> None:

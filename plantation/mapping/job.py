@@ -48,6 +48,7 @@ class MapConfig:
     tiles: list[str] | None = None
     window: int = 128
     pixel_batch: int = 1024
+    distilled: bool = True
     min_clear: int = 4
     cutoff_year: int | None = None
     interval_level: float | None = None
@@ -147,6 +148,7 @@ def plan(cfg: MapConfig) -> tuple[list[TileJob], list[TileResult], Artefact, Set
         interval_mass=art.card.calibration.interval_mass(level),
         window=cfg.window,
         pixel_batch=cfg.pixel_batch,
+        distilled=cfg.distilled,
         threads=_threads_per_worker(cfg, workers) if (workers or cfg.engine.threads) else 0,
         quicklook=cfg.quicklook,
         recalibration=recalibration_of(cfg.recalibration, digest, cfg.cutoff_year if cfg.cutoff_year is not None else art.card.cutoff_year) if cfg.recalibration else "",

@@ -34,8 +34,7 @@ from plantation.mapping.folder import BAND, FORMAT, LAYERS, NODATA, NOTICE, RECA
 from plantation.mapping.quicklook import quicklook
 from plantation.mapping.styles import class_style, onset_style, write_style
 from plantation.model.artefact import Artefact, load
-from plantation.model.calibration import mutual_information
-from plantation.model.inference import check_compatible, read_window, windows
+from plantation.model.inference import check_compatible, read_window, window_probabilities, windows
 from plantation.model.outcomes import summarise
 from plantation.model.patches import features
 from plantation.reference.labels import LABEL_CODES
@@ -58,6 +57,8 @@ class Settings:
     quicklook: bool
     #: A recalibration record (JSON text, see :func:`plantation.mapping.folder.recalibrate_stored`) applied to the probability bands as they are written; empty: none.
     recalibration: str = ""
+    #: Map with the model's distilled network when it has one (False: every ensemble member).
+    distilled: bool = True
 
     def content_key(self) -> dict[str, Any]:
         # Window, batch and threads change float rounding at most, not what the map says.
@@ -65,6 +66,8 @@ class Settings:
         rec = self.recalibration_record()
         if rec is not None:
             key["recalibration"] = [rec["coef_conversion"], rec["coef_after_cutoff"]]
+        if not self.distilled:
+            key["ensemble"] = True
         return key
 
     def recalibration_record(self) -> dict[str, Any] | None:
@@ -113,20 +116,6 @@ def tile_key(model_digest: str, settings: Settings, region: RegionConfig, signat
 
 
 # --------------------------------------------------------------------------- per-window math
-
-
-def window_probabilities(art: Artefact, x: torch.Tensor, valid: torch.Tensor, pixel_batch: int | None = None) -> tuple[np.ndarray, np.ndarray]:
-    """Calibrated probabilities (h, w, outcomes) and epistemic MI (h, w) of a window's interior pixels."""
-    with torch.inference_mode():
-        z = torch.stack([m.forward_window(x, valid, pixel_batch) for m in art.members])  # (m, h, w, o)
-        probs = art.calibrated_log_probs(z).exp()
-        if len(art.members) > 1:
-            # Disagreement between members, each calibrated like the mapped probabilities.
-            each = torch.stack([art.calibrated_log_probs(zm.unsqueeze(0)) for zm in z]).exp()
-            epi = mutual_information(each.numpy())
-        else:
-            epi = np.zeros(probs.shape[:-1], np.float32)
-    return probs.numpy(), np.asarray(epi, np.float32)
 
 
 def encode_layers(
@@ -241,6 +230,8 @@ def map_tile(
                 interval_mass=str(settings.interval_mass),
                 min_clear_dates=str(settings.min_clear),
                 model_region=art.card.region,
+                # Which network made the probabilities: the distilled one or every ensemble member.
+                model_networks="distilled" if settings.distilled and art.distilled is not None else f"ensemble of {len(art.members)}",
                 producer=f"plantation {__version__}",
                 # Which class mix the probabilities are for ("sample": the reference sample's, not the region's).
                 probability_correction=json.dumps(settings.correction(art), sort_keys=True),
@@ -251,7 +242,7 @@ def map_tile(
                 x, v = ahead.popleft().result()
                 if k + 2 < len(wins):
                     ahead.append(reader.submit(read, wins[k + 2]))
-                probs, epi = window_probabilities(art, x, v, settings.pixel_batch)
+                probs, epi = window_probabilities(art, x, v, settings.pixel_batch, distilled=settings.distilled)
                 clear = v[:, halo : v.shape[1] - halo, halo : v.shape[2] - halo].sum(0).numpy().astype(np.int16)
                 behind.append(writer.submit(write, dst, win, probs, epi, clear))
                 while len(behind) > 1:

@@ -3,7 +3,8 @@
 An artefact is two files side by side:
 
 * ``model.safetensors`` — the tensors of every ensemble member, keys
-  ``member<i>.<parameter name>``;
+  ``member<i>.<parameter name>``, and of the network distilled from them
+  when there is one, keys ``distilled.<parameter name>``;
 * ``model.json`` — everything needed to build the inputs and read the
   outputs: band roles, scaling rules, indices, dates and years, the network's
   constructor arguments (normalisation statistics included), the calibration
@@ -33,10 +34,11 @@ from plantation.model.network import ConvRecurrentNet
 
 @dataclass
 class Artefact:
-    """A loaded artefact: the card and one network per ensemble member (in eval mode)."""
+    """A loaded artefact: the card, one network per ensemble member and the distilled network if any (in eval mode)."""
 
     card: ModelCard
     members: list[ConvRecurrentNet]
+    distilled: ConvRecurrentNet | None = None
 
     def calibrated_log_probs(self, member_logits: torch.Tensor) -> torch.Tensor:
         """Calibrated log-probabilities (…, outcomes) from (members, …, outcomes) logits."""
@@ -71,11 +73,20 @@ def build_network(spec: dict[str, Any]) -> ConvRecurrentNet:
     return ConvRecurrentNet(**spec)
 
 
-def save(folder: str | Path, card: ModelCard, members: list[ConvRecurrentNet]) -> Path:
+def distilled_spec(card: ModelCard) -> dict[str, Any]:
+    """Constructor arguments of the distilled network: the members' plus its epistemic output."""
+    return {**card.network, "epistemic": True}
+
+
+def save(folder: str | Path, card: ModelCard, members: list[ConvRecurrentNet], distilled: ConvRecurrentNet | None = None) -> Path:
     """Write ``model.safetensors`` and ``model.json`` into ``folder`` (each atomically)."""
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
+    if (distilled is None) != (not card.distilled):
+        raise PlantationError("a distilled network and the card's distilled record go together")
     tensors = {f"member{i}.{k}": v.detach().contiguous().clone() for i, m in enumerate(members) for k, v in m.state_dict().items()}
+    if distilled is not None:
+        tensors |= {f"distilled.{k}": v.detach().contiguous().clone() for k, v in distilled.state_dict().items()}
     tmp = folder / (WEIGHTS + ".partial")
     save_file(tensors, str(tmp), metadata={"format": FORMAT})
     os.replace(tmp, folder / WEIGHTS)
@@ -100,15 +111,16 @@ def load(folder: str | Path) -> Artefact:
         tensors = load_file(str(weights))
     except Exception as exc:  # safetensors raises its own error type for a damaged file
         raise PlantationError(f"{weights}: cannot read the weights ({str(exc).splitlines()[0]})") from None
-    members = []
-    for i in range(card.members):
-        net = build_network(card.network)
-        prefix = f"member{i}."
+
+    def build(spec: dict[str, Any], prefix: str, name: str) -> ConvRecurrentNet:
+        net = build_network(spec)
         state = {k[len(prefix) :]: v for k, v in tensors.items() if k.startswith(prefix)}
         try:
             net.load_state_dict(state)
         except RuntimeError as exc:
-            raise PlantationError(f"{weights}: member {i} does not match {meta.name} ({str(exc).splitlines()[0]})") from None
-        net.eval()
-        members.append(net)
-    return Artefact(card, members)
+            raise PlantationError(f"{weights}: {name} does not match {meta.name} ({str(exc).splitlines()[0]})") from None
+        return net.eval()
+
+    members = [build(card.network, f"member{i}.", f"member {i}") for i in range(card.members)]
+    distilled = build(distilled_spec(card), "distilled.", "the distilled network") if card.distilled else None
+    return Artefact(card, members, distilled)

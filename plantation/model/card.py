@@ -22,7 +22,7 @@ from plantation.errors import FileFormatError, InputNotFoundError
 from plantation.model.calibration import GROUP_NAMES, outcome_groups
 from plantation.model.outcomes import mass_for_coverage
 
-FORMAT = "plantation-model/1"
+FORMAT = "plantation-model/2"
 CARD = "model.json"
 WEIGHTS = "model.safetensors"
 VALIDATION = "validation.json"
@@ -106,6 +106,10 @@ class ModelCard:
     region: str
     labels_fingerprint: str
     package_version: str
+    #: The network distilled from the ensemble (empty: none): how it was
+    #: trained and how closely it follows the ensemble on the validation
+    #: split (see :mod:`plantation.model.distillation`).
+    distilled: dict[str, Any] = field(default_factory=dict)
     format: str = FORMAT
 
 

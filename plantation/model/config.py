@@ -30,6 +30,8 @@ class SplitConfig:
 class NetworkConfig:
     """Network size and ensemble."""
 
+    date_width: int = 16
+    amplitude: bool = True
     conv_width: int = 32
     hidden: int = 64
     dropout: float = 0.1
@@ -83,3 +85,16 @@ class CalibrationConfig:
     prior: str = "auto"
     #: Unlabelled pixels drawn (seeded, across tiles) for ``prior=bbse``.
     bbse_pixels: int = 20000
+
+
+@dataclass
+class DistillationConfig:
+    """One network distilled from the ensemble (see :mod:`plantation.model.distillation`)."""
+
+    enabled: bool = True
+    pixels: int = 4000
+    max_epochs: int = 12
+    patience: int = 3
+    lr: float = 2e-3
+    epistemic_weight: float = 1.0
+    tolerance: float = 0.05

@@ -19,6 +19,7 @@ from plantation.imagery.config import ScalingRule
 from plantation.imagery.region import TileStack
 from plantation.model.artefact import Artefact
 from plantation.model.calibration import mutual_information
+from plantation.model.network import split_epistemic
 from plantation.model.patches import features
 
 
@@ -82,10 +83,11 @@ def read_window(stack: TileStack, r0: int, c0: int, h: int, w: int, halo: int) -
     return refl, valid
 
 
-def predict_tile(art: Artefact, stack: TileStack, *, window: int = 128, progress: bool = False, scaling: Sequence[ScalingRule] | None = None) -> TileProbabilities:
+def predict_tile(art: Artefact, stack: TileStack, *, window: int = 128, progress: bool = False, scaling: Sequence[ScalingRule] | None = None, distilled: bool = True) -> TileProbabilities:
     """Calibrated outcome probabilities for every pixel of ``stack``.
 
     ``scaling``: the region's scaling rules, checked against the model's.
+    ``distilled``: see :func:`window_probabilities`.
     Memory per window is about time × channels × (window + 2·halo)² × 4 bytes
     for the inputs plus the GRU states of window² pixels.
     """
@@ -106,13 +108,32 @@ def predict_tile(art: Artefact, stack: TileStack, *, window: int = 128, progress
         refl, valid = read_window(stack, r0, c0, h, w, halo)
         x = torch.from_numpy(features(refl, art.card.bands, art.card.indices))
         v = torch.from_numpy(valid)
-        with torch.inference_mode():
-            z = torch.stack([m.forward_window(x, v) for m in art.members])  # (m, h, w, o)
-            lp = art.calibrated_log_probs(z)
-        probs[r0 : r0 + h, c0 : c0 + w] = lp.exp().numpy()
+        probs[r0 : r0 + h, c0 : c0 + w], epi[r0 : r0 + h, c0 : c0 + w] = window_probabilities(art, x, v, distilled=distilled)
+        clear[r0 : r0 + h, c0 : c0 + w] = valid[:, halo : halo + h, halo : halo + w].sum(0)
+    return TileProbabilities(probs, epi, clear)
+
+
+def window_probabilities(art: Artefact, x: torch.Tensor, valid: torch.Tensor, pixel_batch: int | None = None, *, distilled: bool = True) -> tuple[np.ndarray, np.ndarray]:
+    """Calibrated probabilities (h, w, outcomes) and epistemic MI (h, w, nats) of a window's interior pixels.
+
+    ``x``: features (time, channel, h + 2·halo, w + 2·halo); ``valid``:
+    (time, h + 2·halo, w + 2·halo). With ``distilled`` and a model that has
+    a distilled network, that one network gives both (a third of the work
+    of three members); otherwise every member runs and the epistemic term is
+    the mutual information between the outcome and the member, each member
+    calibrated like the mapped probabilities (0 for a single member).
+    """
+    with torch.inference_mode():
+        if distilled and art.distilled is not None:
+            z, e = split_epistemic(art.distilled.forward_window(x, valid, pixel_batch), art.distilled.n_outcomes)
+            probs = art.calibrated_log_probs(z.unsqueeze(0)).exp()
+            return probs.numpy(), e.numpy().astype(np.float32)
+        z = torch.stack([m.forward_window(x, valid, pixel_batch) for m in art.members])  # (m, h, w, o)
+        probs = art.calibrated_log_probs(z).exp()
         if len(art.members) > 1:
             # Disagreement between members, each calibrated like the mapped probabilities.
             each = torch.stack([art.calibrated_log_probs(zm.unsqueeze(0)) for zm in z]).exp()
-            epi[r0 : r0 + h, c0 : c0 + w] = mutual_information(each.numpy())
-        clear[r0 : r0 + h, c0 : c0 + w] = valid[:, halo : halo + h, halo : halo + w].sum(0)
-    return TileProbabilities(probs, epi, clear)
+            epi = mutual_information(each.numpy())
+        else:
+            epi = np.zeros(probs.shape[:-1], np.float32)
+    return probs.numpy(), np.asarray(epi, np.float32)

@@ -34,7 +34,7 @@ import os
 import shutil
 import time
 import warnings
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Any
@@ -53,7 +53,8 @@ from plantation.model import calibration
 from plantation.model.artefact import calibrated_log_probs
 from plantation.model.artefact import save as save_artefact
 from plantation.model.card import Calibration, ModelCard, write_validation
-from plantation.model.config import CalibrationConfig, NetworkConfig, PatchConfig, SplitConfig, TrainerConfig, TrainingConfig
+from plantation.model.config import CalibrationConfig, DistillationConfig, NetworkConfig, PatchConfig, SplitConfig, TrainerConfig, TrainingConfig
+from plantation.model.distillation import DistillationTask, agreement
 from plantation.model.network import ConvRecurrentNet
 from plantation.model.outcomes import MASS_GRID, N_STATIC, Outcomes, group_probabilities, interval_coverage_curve, summarise
 from plantation.model.patches import SPLITS, PatchSet, build_patches, day_of_year_fraction, features, read_patches, year_of
@@ -76,6 +77,7 @@ class TrainConfig:
     training: TrainingConfig = field(default_factory=TrainingConfig)
     trainer: TrainerConfig = field(default_factory=TrainerConfig)
     calibration: CalibrationConfig = field(default_factory=CalibrationConfig)
+    distillation: DistillationConfig = field(default_factory=DistillationConfig)
     out_dir: str = "outputs/train"
     run_name: str = "run"
 
@@ -91,7 +93,20 @@ def check_config(cfg: TrainConfig) -> None:
         raise ConfigError(f"training.gce_q: {t.gce_q!r} must be in (0, 1]")
     if not 0 <= t.date_dropout < 1:
         raise ConfigError(f"training.date_dropout: {t.date_dropout!r} must be in [0, 1)")
-    for key, val in (("training.max_epochs", t.max_epochs), ("training.batch_size", t.batch_size), ("network.members", cfg.network.members), ("network.hidden", cfg.network.hidden)):
+    d = cfg.distillation
+    for key, val in (("distillation.max_epochs", d.max_epochs), ("distillation.patience", d.patience)):
+        if val < 1:
+            raise ConfigError(f"{key}: {val!r} must be at least 1")
+    if d.pixels < 0 or d.lr <= 0 or d.epistemic_weight < 0 or d.tolerance <= 0:
+        raise ConfigError(f"distillation: pixels ({d.pixels}) and epistemic_weight ({d.epistemic_weight}) must be at least 0, lr ({d.lr}) and tolerance ({d.tolerance}) above 0")
+    for key, val in (
+        ("training.max_epochs", t.max_epochs),
+        ("training.batch_size", t.batch_size),
+        ("network.members", cfg.network.members),
+        ("network.hidden", cfg.network.hidden),
+        ("network.date_width", cfg.network.date_width),
+        ("network.conv_width", cfg.network.conv_width),
+    ):
         if val < 1:
             raise ConfigError(f"{key}: {val!r} must be at least 1")
     if not 0 < cfg.calibration.interval_level < 1:
@@ -260,6 +275,8 @@ def network_spec(samples: PatchSet, cfg: TrainConfig) -> dict[str, Any]:
         "date_year": (years - years.min()).tolist(),
         "day_of_year": [float(v) for v in day_of_year_fraction(samples.dates)],
         "neighbourhood": cfg.patches.neighbourhood,
+        "date_width": cfg.network.date_width,
+        "amplitude": cfg.network.amplitude,
         "conv_width": cfg.network.conv_width,
         "hidden": cfg.network.hidden,
         "dropout": cfg.network.dropout,
@@ -279,15 +296,15 @@ def member_logits(nets: list[ConvRecurrentNet], s: PatchSet, batch: int = 512) -
     return torch.stack(out)
 
 
-def make_trainer(cfg: TrainerConfig, max_epochs: int, patience: int, folder: Path, member: int) -> L.Trainer:
+def make_trainer(cfg: TrainerConfig, max_epochs: int, patience: int, folder: Path, name: str) -> L.Trainer:
     """A Lightning trainer with early stopping and a best-validation checkpoint."""
     from lightning.pytorch.callbacks import EarlyStopping, ModelCheckpoint
     from lightning.pytorch.loggers import CSVLogger
 
     # Lightning's start-up notes (no GPU, logger tips) are noise on a CPU tool.
-    for name in ("lightning.pytorch", "lightning.fabric"):
-        logging.getLogger(name).setLevel(logging.WARNING)
-    ckpt = ModelCheckpoint(dirpath=folder / "checkpoints", filename=f"member{member}", monitor="val_loss", mode="min", save_top_k=1, enable_version_counter=False)
+    for logger in ("lightning.pytorch", "lightning.fabric"):
+        logging.getLogger(logger).setLevel(logging.WARNING)
+    ckpt = ModelCheckpoint(dirpath=folder / "checkpoints", filename=name, monitor="val_loss", mode="min", save_top_k=1, enable_version_counter=False)
     strategy: Any = cfg.strategy
     if strategy == "ddp":
         from lightning.pytorch.strategies import DDPStrategy
@@ -301,7 +318,7 @@ def make_trainer(cfg: TrainerConfig, max_epochs: int, patience: int, folder: Pat
         precision=cfg.precision,  # type: ignore[arg-type]
         max_epochs=max_epochs,
         callbacks=[ckpt, EarlyStopping(monitor="val_loss", mode="min", patience=patience)],
-        logger=CSVLogger(folder, name="logs", version=f"member{member}"),
+        logger=CSVLogger(folder, name="logs", version=name),
         enable_progress_bar=cfg.enable_progress_bar,
         enable_model_summary=False,
         log_every_n_steps=cfg.log_every_n_steps,
@@ -319,6 +336,8 @@ class TrainedModel:
     calibration: Calibration
     metrics: dict[str, Any]
     is_global_zero: bool = True
+    #: The network distilled from the members (None: not asked for, a single member, or outside the tolerance).
+    distilled: ConvRecurrentNet | None = None
 
 
 def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[TileStack] = (), labels: LabelSet | None = None) -> TrainedModel:
@@ -347,7 +366,7 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
         task = ConversionTask(
             spec, loss_weights=weights.tolist(), lr=t.lr, weight_decay=t.weight_decay, loss=t.loss, gce_q=t.gce_q, augment=t.augment, date_dropout=t.date_dropout, max_epochs=t.max_epochs
         )
-        trainer = make_trainer(cfg.trainer, cfg.training.max_epochs, cfg.training.patience, folder, m)
+        trainer = make_trainer(cfg.trainer, cfg.training.max_epochs, cfg.training.patience, folder, f"member{m}")
         with warnings.catch_warnings():
             # One small in-memory dataset: Lightning's advice to add loader workers does not apply.
             warnings.filterwarnings("ignore", message=".*does not have many workers.*")
@@ -407,7 +426,11 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
     metrics["prior"] = record
     metrics["validation"]["prior"] = record
     log.info("probabilities for the %s prior: %s", source, record["target_prior_groups"])
-    return TrainedModel(nets, spec, cal, metrics, is_zero)
+    student = None
+    if cfg.distillation.enabled and len(nets) > 1:
+        # After the calibration: the distilled epistemic term is that of the calibrated members.
+        student, metrics["distillation"] = distil(nets, cal, spec, samples, cfg, folder, stacks)
+    return TrainedModel(nets, spec, cal, metrics, is_zero, student)
 
 
 def interval_curve(probs: np.ndarray, targets: np.ndarray, outcomes: Outcomes) -> tuple[list[float], list[float]]:
@@ -454,33 +477,73 @@ def target_prior(
     raise ConfigError(f"calibration.prior: {source!r} is not one of {list(PRIORS)}")
 
 
-def unlabelled_probs(nets: list[ConvRecurrentNet], cal: Calibration, stacks: Sequence[TileStack], cfg: TrainConfig, *, n: int, seed: int, chunk: int = 1000) -> np.ndarray:
-    """Sample-mix probabilities (m, k) of up to ``n`` pixels drawn at random (seeded, with replacement) across the tiles, in proportion to their areas.
+def unlabelled_patches(stacks: Sequence[TileStack], cfg: TrainConfig, *, n: int, seed: int, chunk: int = 1000) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+    """Features (m, time, channel, k, k) and validity of up to ``n`` pixels drawn at random (seeded, with replacement) across the tiles, in proportion to their areas.
 
-    Read in chunks of ``chunk`` pixels like training patches, so memory stays
-    at one chunk's neighbourhoods; pixels with no clear date are left out.
+    Yielded in chunks of at most ``chunk`` pixels, read like training
+    patches; pixels with no clear date are left out.
     """
     rng = np.random.default_rng(seed)
     sizes = np.array([s.grid.height * s.grid.width for s in stacks], dtype=np.float64)
     counts = rng.multinomial(n, sizes / sizes.sum())
     k = cfg.patches.neighbourhood
-    out = []
     for stack, m in zip(stacks, counts, strict=True):
         flat = np.sort(rng.integers(0, stack.grid.height * stack.grid.width, int(m)))
         rows, cols = flat // stack.grid.width, flat % stack.grid.width
         for i in range(0, len(flat), chunk):
             refl, valid = read_patches(stack, rows[i : i + chunk], cols[i : i + chunk], k)
             seen = valid[:, :, k // 2, k // 2].any(1)
-            if not seen.any():
-                continue
-            x = torch.from_numpy(np.ascontiguousarray(features(refl[seen], cfg.region.bands, cfg.patches.indices)))
-            v = torch.from_numpy(np.ascontiguousarray(valid[seen]))
-            with torch.inference_mode():
-                z = torch.stack([net.eval()(x, v) for net in nets])
-            out.append(np.exp(calibrated_log_probs(z, cal).numpy()))
+            if seen.any():
+                yield np.ascontiguousarray(features(refl[seen], cfg.region.bands, cfg.patches.indices)), np.ascontiguousarray(valid[seen])
+
+
+def unlabelled_probs(nets: list[ConvRecurrentNet], cal: Calibration, stacks: Sequence[TileStack], cfg: TrainConfig, *, n: int, seed: int, chunk: int = 1000) -> np.ndarray:
+    """Sample-mix probabilities (m, k) of the pixels of :func:`unlabelled_patches` (memory: one chunk's neighbourhoods)."""
+    out = []
+    for x, v in unlabelled_patches(stacks, cfg, n=n, seed=seed, chunk=chunk):
+        with torch.inference_mode():
+            z = torch.stack([net.eval()(torch.from_numpy(x), torch.from_numpy(v)) for net in nets])
+        out.append(np.exp(calibrated_log_probs(z, cal).numpy()))
     if not out:
         raise ConfigError("calibration.prior: 'bbse' found no clear pixel among those drawn; raise calibration.bbse_pixels")
     return np.concatenate(out)
+
+
+def distil(
+    nets: list[ConvRecurrentNet], cal: Calibration, spec: dict[str, Any], samples: PatchSet, cfg: TrainConfig, folder: Path, stacks: Sequence[TileStack]
+) -> tuple[ConvRecurrentNet | None, dict[str, Any]]:
+    """The network distilled from ``nets`` (None when it misses the tolerance) and its record for the card."""
+    dc = cfg.distillation
+    train, val = samples.part("train"), samples.part("val")
+    xs, vs = [train.x], [train.valid]
+    if stacks and dc.pixels > 0:
+        for x, v in unlabelled_patches(stacks, cfg, n=dc.pixels, seed=cfg.training.seed + 7919):
+            xs.append(x)
+            vs.append(v)
+    data = TensorDataset(torch.from_numpy(np.concatenate(xs)), torch.from_numpy(np.concatenate(vs)))
+    held = TensorDataset(torch.from_numpy(val.x), torch.from_numpy(val.valid))
+    L.seed_everything(cfg.training.seed * 1000 + 999, workers=True, verbose=False)
+    start = time.perf_counter()
+    task = DistillationTask(nets, cal, spec, lr=dc.lr, epistemic_weight=dc.epistemic_weight, max_epochs=dc.max_epochs, date_dropout=cfg.training.date_dropout)
+    trainer = make_trainer(cfg.trainer, dc.max_epochs, dc.patience, folder, "distilled")
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message=".*does not have many workers.*")
+        warnings.filterwarnings("ignore", message=".*treespec, LeafSpec.*")
+        warnings.filterwarnings("ignore", message=".*exists and is not empty.*")
+        trainer.fit(task, DataLoader(data, batch_size=max(cfg.training.batch_size, 128), shuffle=True, drop_last=True), DataLoader(held, batch_size=256))
+    best = trainer.checkpoint_callback.best_model_path if trainer.checkpoint_callback else ""
+    if best and Path(best).is_file():
+        task.load_state_dict(torch.load(best, map_location="cpu", weights_only=True)["state_dict"])
+    net = task.net.eval()
+    record: dict[str, Any] = {
+        "inputs": {"training_patches": len(train), "unlabelled_pixels": len(data) - len(train)},
+        "epochs": int(trainer.current_epoch),
+        "seconds": round(time.perf_counter() - start, 1),
+        "tolerance": {"mean_tv_distance": dc.tolerance},
+        "validation": agreement(nets, net, cal, torch.from_numpy(val.x), torch.from_numpy(val.valid)),
+    }
+    record["within_tolerance"] = record["validation"]["mean_tv_distance"] <= dc.tolerance
+    return (net if record["within_tolerance"] else None), record
 
 
 def score_samples(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchSet, cc: CalibrationConfig) -> dict[str, Any]:
@@ -577,6 +640,7 @@ def model_card(cfg: TrainConfig, samples: PatchSet, trained: TrainedModel, label
         region=cfg.region.name,
         labels_fingerprint=labels.fingerprint,
         package_version=__version__,
+        distilled=trained.metrics["distillation"] if trained.distilled is not None else {},
     )
 
 
@@ -613,7 +677,7 @@ def run(cfg: TrainConfig, resolved_config: str | None = None) -> Path:
     (work / "metrics.json").write_text(json.dumps(trained.metrics, indent=2))
     if resolved_config is not None:
         (work / "config.yaml").write_text(resolved_config)
-    save_artefact(work / "model", model_card(cfg, samples, trained, labels), trained.members)
+    save_artefact(work / "model", model_card(cfg, samples, trained, labels), trained.members, trained.distilled)
     # Beside the artefact, so that a map's assessment can show how the model's probabilities held up.
     write_validation(work / "model", trained.metrics["validation"])
     # Swap in the new run; the old one goes only once the new one is in place.
