@@ -191,14 +191,42 @@ def long_series_tile(cfg: SpeedConfig, folder: Path) -> Path:
     return tile
 
 
+def _status_mb(field: str) -> float | None:
+    """A memory figure of this process from /proc (VmRSS: now, VmHWM: peak), MB; None off Linux."""
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith(field + ":"):
+                return int(line.split()[1]) / 1024
+    except OSError:
+        pass
+    return None
+
+
 def rss_child(region_json: str, model_dir: str, window: int, pixel_batch: int, dest: str) -> dict[str, Any]:
-    """Map one tile in this (fresh) process; return its peak RSS and time."""
+    """Map one tile in this (fresh) process; return its peak RSS and time, and where the peak was reached.
+
+    The trace: peak RSS before mapping (libraries and model loaded), after
+    the first window, after the last window (the raw GeoTIFF written, before
+    the COG conversion), and at the end (COG written).
+    """
     region = to_object(json.loads(region_json), RegionConfig)
     art = load(model_dir)
     stack = open_tile(region.tiles[0], region)
+    trace: dict[str, float | None] = {"loaded": _status_mb("VmHWM")}
+    seen = [0]
+
+    def on_window(_: int) -> None:
+        seen[0] += 1
+        if seen[0] == 1:
+            trace["first_window"] = _status_mb("VmHWM")
+        trace["last_window"] = _status_mb("VmHWM")
+
     t0 = time.perf_counter()
-    map_tile(stack, art, Settings(4, art.card.cutoff_year, 0.8, art.card.calibration.interval_mass(0.8), window, pixel_batch, 0, False), Path(dest), region=region)
-    return {"peak_rss_mb": round(peak_rss_mb(), 1), "seconds": round(time.perf_counter() - t0, 2), "pixels": stack.grid.height * stack.grid.width}
+    map_tile(stack, art, Settings(4, art.card.cutoff_year, 0.8, art.card.calibration.interval_mass(0.8), window, pixel_batch, 0, False), Path(dest), region=region, on_window=on_window)
+    trace["cog_written"] = _status_mb("VmHWM")
+    seconds = round(time.perf_counter() - t0, 2)
+    peaks = {k: round(v, 1) if v else v for k, v in trace.items()}
+    return {"peak_rss_mb": round(peak_rss_mb(), 1), "seconds": seconds, "pixels": stack.grid.height * stack.grid.width, "peak_trace_mb": peaks}
 
 
 def run(cfg: SpeedConfig) -> dict[str, Any]:
@@ -345,6 +373,7 @@ def run(cfg: SpeedConfig) -> dict[str, Any]:
                 raise RuntimeError(f"memory run for {size}² failed: {proc.stderr.strip().splitlines()[-1] if proc.stderr.strip() else proc.returncode}")
             child = json.loads(proc.stdout.strip().splitlines()[-1])
         res[f"peak_rss_mb_{size}"] = child["peak_rss_mb"]
+        rss[f"peak_trace_mb_{size}"] = child["peak_trace_mb"]
         rss[f"seconds_{size}"] = child["seconds"]
         rss[f"px_per_s_{size}"] = round(child["pixels"] / child["seconds"], 1)
     sizes = sorted(cfg.rss_sizes)

@@ -25,7 +25,7 @@ band   description     content
                        model card or config); 0 where no conversion
 5      p_conversion    probability of conversion in any year (× 1e-4)
 6      p_after_cutoff  probability of conversion after the cutoff year (× 1e-4)
-7      epistemic       ensemble disagreement, mutual information in nats (× 1e-4)
+7      epistemic       ensemble disagreement, mutual information in nats (× 1e-4; the distilled network's estimate of it, by default)
 8      clear_dates     dates on which the pixel was observed (never nodata)
 =====  ==============  =====================================================
 

@@ -27,7 +27,6 @@ from __future__ import annotations
 
 from typing import Any
 
-import lightning as L
 import numpy as np
 import torch
 
@@ -36,6 +35,7 @@ from plantation.model.calibration import mutual_information
 from plantation.model.card import Calibration
 from plantation.model.network import ConvRecurrentNet, split_epistemic
 from plantation.model.outcomes import N_STATIC
+from plantation.model.task import SeriesTask
 
 
 def ensemble_targets(members: list[ConvRecurrentNet], cal: Calibration, x: torch.Tensor, valid: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
@@ -62,7 +62,7 @@ def start_from(member: ConvRecurrentNet, spec: dict[str, Any]) -> ConvRecurrentN
     return net
 
 
-class DistillationTask(L.LightningModule):
+class DistillationTask(SeriesTask):
     """Trains :attr:`net` to stand in for ``members`` (frozen, in eval mode)."""
 
     def __init__(self, members: list[ConvRecurrentNet], cal: Calibration, spec: dict[str, Any], *, lr: float, epistemic_weight: float, max_epochs: int, date_dropout: float) -> None:
@@ -73,20 +73,13 @@ class DistillationTask(L.LightningModule):
         self.cal = cal
         self.lr, self.epistemic_weight, self.max_epochs, self.date_dropout = lr, epistemic_weight, max_epochs, date_dropout
 
-    def _augment(self, x: torch.Tensor, valid: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-        k = int(torch.randint(0, 4, ()).item())
-        x, valid = torch.rot90(x, k, (-2, -1)), torch.rot90(valid, k, (-2, -1))
-        if torch.rand(()) < 0.5:
-            x, valid = x.flip(-1), valid.flip(-1)
-        if self.date_dropout > 0:
-            keep = torch.rand(valid.shape[:2], device=valid.device) >= self.date_dropout
-            valid = valid & keep[:, :, None, None]
-        return x, valid
+    def settings(self) -> tuple[float, float, int, float]:
+        return self.lr, 1e-4, self.max_epochs, self.date_dropout
 
-    def _step(self, batch: tuple[torch.Tensor, ...], stage: str) -> torch.Tensor:
+    def step(self, batch: tuple[torch.Tensor, ...], stage: str) -> torch.Tensor:
         x, valid = batch
         if stage == "train":
-            x, valid = self._augment(x, valid)
+            x, valid = self.augment(x, valid)
         target_lp, target_mi = ensemble_targets(self.members, self.cal, x, valid)
         z, mi = split_epistemic(self.net(x, valid), self.net.n_outcomes)
         kl = (target_lp.exp() * (target_lp - torch.log_softmax(z, -1))).sum(-1).mean()
@@ -94,17 +87,6 @@ class DistillationTask(L.LightningModule):
         loss = kl + self.epistemic_weight * err
         self.log(f"{stage}_loss", loss, prog_bar=True, on_epoch=True, on_step=False, batch_size=len(x), sync_dist=True)
         return loss
-
-    def training_step(self, batch: tuple[torch.Tensor, ...], batch_idx: int) -> torch.Tensor:
-        return self._step(batch, "train")
-
-    def validation_step(self, batch: tuple[torch.Tensor, ...], batch_idx: int) -> torch.Tensor:
-        return self._step(batch, "val")
-
-    def configure_optimizers(self) -> Any:
-        opt = torch.optim.AdamW(self.net.parameters(), lr=self.lr, weight_decay=1e-4)
-        sched = torch.optim.lr_scheduler.CosineAnnealingLR(opt, T_max=max(1, self.max_epochs))
-        return {"optimizer": opt, "lr_scheduler": sched}
 
 
 def agreement(members: list[ConvRecurrentNet], net: ConvRecurrentNet, cal: Calibration, x: torch.Tensor, valid: torch.Tensor, batch: int = 512) -> dict[str, float]:

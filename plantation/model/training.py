@@ -58,6 +58,7 @@ from plantation.model.distillation import DistillationTask, agreement
 from plantation.model.network import ConvRecurrentNet
 from plantation.model.outcomes import MASS_GRID, N_STATIC, Outcomes, group_probabilities, interval_coverage_curve, summarise
 from plantation.model.patches import SPLITS, PatchSet, build_patches, day_of_year_fraction, features, read_patches, year_of
+from plantation.model.task import SeriesTask
 from plantation.reference.labels import LABEL_CODES, LabelSet, read_labels
 
 log = logging.getLogger(__name__)
@@ -168,7 +169,7 @@ def feature_statistics(samples: PatchSet) -> tuple[np.ndarray, np.ndarray]:
     return mean, np.where(std > 1e-6, std, 1.0)
 
 
-class ConversionTask(L.LightningModule):
+class ConversionTask(SeriesTask):
     """Loss, optimiser and augmentation around a :class:`ConvRecurrentNet`.
 
     Built from plain values (``net`` holds the network's constructor
@@ -196,19 +197,9 @@ class ConversionTask(L.LightningModule):
     def forward(self, x: torch.Tensor, valid: torch.Tensor) -> torch.Tensor:
         return self.net(x, valid)
 
-    def _augment(self, x: torch.Tensor, valid: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-        # The landscape has no preferred orientation: rotate and mirror whole
-        # neighbourhoods. Hiding extra dates imitates a cloudier year.
-        k = int(torch.randint(0, 4, ()).item())
-        x = torch.rot90(x, k, (-2, -1))
-        valid = torch.rot90(valid, k, (-2, -1))
-        if torch.rand(()) < 0.5:
-            x, valid = x.flip(-1), valid.flip(-1)
-        p = self.hparams["date_dropout"]
-        if p > 0:
-            keep = torch.rand(valid.shape[:2], device=valid.device) >= p
-            valid = valid & keep[:, :, None, None]
-        return x, valid
+    def settings(self) -> tuple[float, float, int, float]:
+        h = self.hparams
+        return h["lr"], h["weight_decay"], h["max_epochs"], h["date_dropout"]
 
     def _loss(self, logits: torch.Tensor, y: torch.Tensor) -> torch.Tensor:
         w = self.loss_weights[y]
@@ -220,27 +211,16 @@ class ConversionTask(L.LightningModule):
             per = nn.functional.cross_entropy(logits, y, reduction="none")
         return (w * per).sum() / w.sum()
 
-    def _step(self, batch: tuple[torch.Tensor, ...], stage: str) -> torch.Tensor:
+    def step(self, batch: tuple[torch.Tensor, ...], stage: str) -> torch.Tensor:
         x, valid, y = batch
         if stage == "train" and self.hparams["augment"]:
-            x, valid = self._augment(x, valid)
+            x, valid = self.augment(x, valid)
         logits = self.net(x, valid)
         loss = self._loss(logits, y)
         acc = (logits.argmax(-1) == y).float().mean()
         self.log(f"{stage}_loss", loss, prog_bar=True, on_epoch=True, on_step=False, batch_size=len(y), sync_dist=True)
         self.log(f"{stage}_acc", acc, prog_bar=stage == "val", on_epoch=True, on_step=False, batch_size=len(y), sync_dist=True)
         return loss
-
-    def training_step(self, batch: tuple[torch.Tensor, ...], batch_idx: int) -> torch.Tensor:
-        return self._step(batch, "train")
-
-    def validation_step(self, batch: tuple[torch.Tensor, ...], batch_idx: int) -> torch.Tensor:
-        return self._step(batch, "val")
-
-    def configure_optimizers(self) -> Any:
-        opt = torch.optim.AdamW(self.parameters(), lr=self.hparams["lr"], weight_decay=self.hparams["weight_decay"])
-        sched = torch.optim.lr_scheduler.CosineAnnealingLR(opt, T_max=max(1, self.hparams["max_epochs"]))
-        return {"optimizer": opt, "lr_scheduler": sched}
 
 
 class SampleDataModule(L.LightningDataModule):

@@ -281,7 +281,8 @@ def _map_section(map_dir: Path | None, years_hint: Sequence[int], cutoff_hint: i
         f'<figcaption class="caption">Uncertainty, three ways. First: how many years the {esc(lvl)} interval of the onset year spans, on converted pixels '
         "(green: the year is pinned to one year; red: the imagery leaves several years open). "
         "Second: p_conversion, the calibrated probability that the pixel was converted in any year of the series; it says how strongly the imagery points to a conversion, not that one happened. "
-        "Third: epistemic uncertainty, the disagreement between the ensemble's members (mutual information, nats; the scale stops at the 99th percentile); "
+        "Third: epistemic uncertainty, the disagreement between the ensemble's members (mutual information, nats, as the distilled network estimates it "
+        "unless the map was made with every member; the scale stops at the 99th percentile); "
         "where it is high the model has seen little like the pixel in training, and its probabilities deserve less trust.</figcaption></figure>"
     )
     return head + body + "</section>", region
