@@ -9,6 +9,7 @@ import pytest
 
 from plantation.benchmarks.readme import (
     ReadmeConfig,
+    ablation_block,
     accuracy_block,
     block_span,
     demo_assessment_block,
@@ -24,7 +25,7 @@ from plantation.benchmarks.readme import (
 from plantation.errors import PlantationError
 from plantation.imagery.config import RegionConfig
 
-NAMES = ("demo-assessment", "demo-plots", "demo-plots-truth", "read-memory", "mapping-speed", "demo-timing", "accuracy-benchmark")
+NAMES = ("demo-assessment", "demo-plots", "demo-plots-truth", "read-memory", "mapping-speed", "demo-timing", "accuracy-benchmark", "network-ablation")
 
 
 def est(estimate: float, lo: float, hi: float, **extra: float) -> dict[str, float]:
@@ -314,3 +315,31 @@ def test_accuracy_block_reads_per_region_medians_with_their_range():
     assert "**simulated** (true conversion share 0.150, observable ceiling 0.900)" in text
     assert "| `year_exact` (true conversions mapped to the right year) | **0.700** (0.680–0.720) | 0.500 |" in text
     assert "medians over training seeds [0, 1, 2]" in text
+
+
+def test_accuracy_block_shows_the_ensemble_beside_the_distilled_network_and_the_lead_over_the_forest():
+    base = {"year_exact": 0.7, "year_within1": 0.8, "conversion_f1": 0.85, "macro_f1": 0.9, "ece": 0.01, "train_seconds": 10.0, "map_seconds": 5.0}
+    ens = {k: v for k, v in base.items() if k != "train_seconds"} | {"year_exact": 0.71}
+    model = base | {"ensemble": ens, "by_seed": [{"ensemble": ens | {"year_exact": 0.69}}, {"ensemble": ens}], "per_class_f1": {"old_plantation": 0.9}}
+    forest = base | {"year_exact": 0.6, "conversion_f1": 0.84, "macro_f1": 0.8}
+    doc = {"regions": {"semi_real": {"eval_region": {"true_conversion_share": 0.1}, "observable_ceiling": 0.85, "methods": {"model": model, "random_forest": forest}}}, "seeds": [0, 1], "threads": 2}
+    text = accuracy_block(doc, source="a.json")
+    assert "| metric | model (distilled) | model (ensemble) | random_forest | target |" in text
+    assert "| `year_exact` (true conversions mapped to the right year) | 0.700 | **0.710** (0.690–0.710) | 0.600 | ≥ 0.85 |" in text
+    # 0.10 / 0.01 / 0.10 ahead: conversion_f1 misses its +0.02.
+    assert "| +0.100/+0.010/+0.100 | | | ≥ +0.06 / +0.02 / +0.02: missed |" in text
+    # 0.8 / 0.85 = 0.941 of the ceiling.
+    assert "| `year_within1` over the observable ceiling | 0.941 | 0.941 | 0.941 | ≥ 0.98: missed |" in text
+
+
+def test_ablation_block_puts_each_design_side_by_side():
+    def doc(year_exact: float, **model: object) -> dict:
+        m = {"year_exact": year_exact, "map_seconds": 60.0, "spread": {"year_exact": [year_exact - 0.01, year_exact + 0.01]}} | model
+        return {"regions": {"semi_real": {"methods": {"model": m}}}, "seeds": [0, 1, 2]}
+
+    current = doc(0.7, ensemble={"year_exact": 0.71, "map_seconds": 20.0}, by_seed=[{"ensemble": {"year_exact": 0.71}}], train_seconds=1.0)
+    text = ablation_block([doc(0.6), doc(0.65), current], sources=["a.json", "b.json", "c.json"])
+    assert "| metric | one GRU step per date (earlier design) | per year, no feature ranges | per year (default), ensemble | per year (default), distilled |" in text
+    assert "| `year_exact` | 0.600 (0.590–0.610) | 0.650 (0.640–0.660) | 0.710 | 0.700 (0.690–0.710) |" in text
+    assert "| seconds to map the held-out region | 60 | 60 | 20 | 60 |" in text
+    assert "`a.json`, `b.json`, `c.json`" in text
