@@ -171,7 +171,12 @@ def test_mapping_speed_block_targets():
     # A result written before the forest was timed has no forest row; one with it says how the model compares.
     assert "tuned random forest" not in body
     forest = mapping_speed_block(SPEED | {"forest_px_per_s": 2500.0, "model_vs_forest": 0.732}, source="s.json")
-    assert row(forest, "tuned random forest, same tile (read, yearly medians and minima, predict)").endswith("| 2,500 px/s: the model runs at **0.73×** its speed | ≥ 1×: missed |")
+    assert row(forest, "tuned random forest, same tile (read, yearly medians and minima, predict)").endswith("| 2,500 px/s; the model end to end against it: **0.73×** | ≥ 1×: missed |")
+    # With the like-for-like timing, the ratio is of the model's probabilities; end to end is shown beside it.
+    like = mapping_speed_block(SPEED | {"forest_px_per_s": 2500.0, "predict_px_per_s": 3000.0, "model_vs_forest": 1.2, "end_to_end_vs_forest": 0.9}, source="s.json")
+    first = "tuned random forest, same tile (read, yearly medians and minima, predict)"
+    assert row(like, first).endswith("| 2,500 px/s; the model's probabilities against it (like for like): **1.20×** | ≥ 1×: met |")
+    assert "| the model end to end (COG written) against the forest's probabilities | **0.90×** | |" in like
 
 
 def test_accuracy_block_bold_best_and_gaps():
