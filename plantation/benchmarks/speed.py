@@ -351,7 +351,7 @@ def run(cfg: SpeedConfig) -> dict[str, Any]:
     sec = _median_seconds(forest_map, cfg.repeats)
     res["forest_px_per_s"] = round(n_px / sec, 1)
     # Like for like: the model's probabilities of the same tile from its files (read, features, network, calibration), nothing written, as the forest's.
-    sec = _median_seconds(lambda: predict_tile(art, open_tile(tile_cfg, cfg.region), window=cfg.window), cfg.repeats)
+    sec = _median_seconds(lambda: predict_tile(art, open_tile(tile_cfg, cfg.region), window=cfg.window, pixel_batch=cfg.pixel_batch), cfg.repeats)
     res["predict_px_per_s"] = round(n_px / sec, 1)
     res["model_vs_forest"] = round(res["predict_px_per_s"] / res["forest_px_per_s"], 3)
     # The map written as well (COG, styles of the layers): what a user waits for.

@@ -83,13 +83,15 @@ def read_window(stack: TileStack, r0: int, c0: int, h: int, w: int, halo: int) -
     return refl, valid
 
 
-def predict_tile(art: Artefact, stack: TileStack, *, window: int = 128, progress: bool = False, scaling: Sequence[ScalingRule] | None = None, distilled: bool = True) -> TileProbabilities:
+def predict_tile(
+    art: Artefact, stack: TileStack, *, window: int = 128, progress: bool = False, scaling: Sequence[ScalingRule] | None = None, distilled: bool = True, pixel_batch: int | None = 1024
+) -> TileProbabilities:
     """Calibrated outcome probabilities for every pixel of ``stack``.
 
     ``scaling``: the region's scaling rules, checked against the model's.
-    ``distilled``: see :func:`window_probabilities`.
+    ``distilled``, ``pixel_batch``: see :func:`window_probabilities`.
     Memory per window is about time × channels × (window + 2·halo)² × 4 bytes
-    for the inputs plus the GRU states of window² pixels.
+    for the inputs plus the yearly summaries of (window + 2·halo)² pixels.
     """
     check_compatible(art, stack, scaling)
     H, W = stack.grid.height, stack.grid.width
@@ -108,7 +110,7 @@ def predict_tile(art: Artefact, stack: TileStack, *, window: int = 128, progress
         refl, valid = read_window(stack, r0, c0, h, w, halo)
         x = torch.from_numpy(features(refl, art.card.bands, art.card.indices))
         v = torch.from_numpy(valid)
-        probs[r0 : r0 + h, c0 : c0 + w], epi[r0 : r0 + h, c0 : c0 + w] = window_probabilities(art, x, v, distilled=distilled)
+        probs[r0 : r0 + h, c0 : c0 + w], epi[r0 : r0 + h, c0 : c0 + w] = window_probabilities(art, x, v, pixel_batch, distilled=distilled)
         clear[r0 : r0 + h, c0 : c0 + w] = valid[:, halo : halo + h, halo : halo + w].sum(0)
     return TileProbabilities(probs, epi, clear)
 
@@ -117,9 +119,10 @@ def window_probabilities(art: Artefact, x: torch.Tensor, valid: torch.Tensor, pi
     """Calibrated probabilities (h, w, outcomes) and epistemic MI (h, w, nats) of a window's interior pixels.
 
     ``x``: features (time, channel, h + 2·halo, w + 2·halo); ``valid``:
-    (time, h + 2·halo, w + 2·halo). With ``distilled`` and a model that has
-    a distilled network, that one network gives both (a third of the work
-    of three members); otherwise every member runs and the epistemic term is
+    (time, h + 2·halo, w + 2·halo). ``pixel_batch``: pixels per pass of the
+    recurrent part (None: all at once; see ``forward_window``). With
+    ``distilled`` and a model that has a distilled network, that one network
+    gives both (a third of the work of three members); otherwise every member runs and the epistemic term is
     the mutual information between the outcome and the member, each member
     calibrated like the mapped probabilities (0 for a single member).
     """
