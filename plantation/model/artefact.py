@@ -28,6 +28,7 @@ import torch
 from safetensors.torch import load_file, save_file
 
 from plantation.errors import InputNotFoundError, PlantationError
+from plantation.model.calibration import mutual_information
 from plantation.model.card import CARD, FORMAT, WEIGHTS, Calibration, ModelCard, read_card, write_card
 from plantation.model.network import ConvRecurrentNet
 
@@ -66,6 +67,12 @@ def calibrated_log_probs(member_logits: torch.Tensor, cal: Calibration) -> torch
         shift = np.log(np.asarray(cal.target_prior, dtype=np.float64)) - np.log(np.asarray(cal.train_prior, dtype=np.float64))
         lp = torch.log_softmax(lp + torch.as_tensor(shift, dtype=lp.dtype), -1)
     return lp
+
+
+def calibrated_mutual_information(member_logits: torch.Tensor, cal: Calibration) -> np.ndarray:
+    """The epistemic term the maps carry (…,): mutual information (nats) between the outcome and the member, each member calibrated by ``cal`` like the mapped probabilities."""
+    each = torch.stack([calibrated_log_probs(zm.unsqueeze(0), cal) for zm in member_logits]).exp()
+    return mutual_information(each.numpy())
 
 
 def build_network(spec: dict[str, Any]) -> ConvRecurrentNet:

@@ -30,8 +30,7 @@ from typing import Any
 import numpy as np
 import torch
 
-from plantation.model.artefact import calibrated_log_probs
-from plantation.model.calibration import mutual_information
+from plantation.model.artefact import calibrated_log_probs, calibrated_mutual_information
 from plantation.model.card import Calibration
 from plantation.model.network import ConvRecurrentNet, split_epistemic
 from plantation.model.outcomes import N_STATIC
@@ -43,8 +42,7 @@ def ensemble_targets(members: list[ConvRecurrentNet], cal: Calibration, x: torch
     with torch.no_grad():
         z = torch.stack([m(x, valid) for m in members])
         mean_lp = torch.logsumexp(torch.log_softmax(z, -1), 0) - np.log(len(members))
-        each = torch.stack([calibrated_log_probs(zm.unsqueeze(0), cal) for zm in z]).exp()
-        mi = torch.from_numpy(mutual_information(each.numpy())).to(z.dtype)
+        mi = torch.from_numpy(calibrated_mutual_information(z, cal)).to(z.dtype)
     return mean_lp, mi
 
 
@@ -65,16 +63,18 @@ def start_from(member: ConvRecurrentNet, spec: dict[str, Any]) -> ConvRecurrentN
 class DistillationTask(SeriesTask):
     """Trains :attr:`net` to stand in for ``members`` (frozen, in eval mode)."""
 
-    def __init__(self, members: list[ConvRecurrentNet], cal: Calibration, spec: dict[str, Any], *, lr: float, epistemic_weight: float, max_epochs: int, date_dropout: float) -> None:
+    def __init__(
+        self, members: list[ConvRecurrentNet], cal: Calibration, spec: dict[str, Any], *, lr: float, epistemic_weight: float, max_epochs: int, date_dropout: float, weight_decay: float = 1e-4
+    ) -> None:
         super().__init__()
         self.net = start_from(members[0], spec)
         # A plain list: the members are not trained and not part of the checkpoint.
         self.members = [m.eval() for m in members]
         self.cal = cal
-        self.lr, self.epistemic_weight, self.max_epochs, self.date_dropout = lr, epistemic_weight, max_epochs, date_dropout
+        self.lr, self.epistemic_weight, self.max_epochs, self.date_dropout, self.weight_decay = lr, epistemic_weight, max_epochs, date_dropout, weight_decay
 
     def settings(self) -> tuple[float, float, int, float]:
-        return self.lr, 1e-4, self.max_epochs, self.date_dropout
+        return self.lr, self.weight_decay, self.max_epochs, self.date_dropout
 
     def step(self, batch: tuple[torch.Tensor, ...], stage: str) -> torch.Tensor:
         x, valid = batch
@@ -104,13 +104,12 @@ def agreement(members: list[ConvRecurrentNet], net: ConvRecurrentNet, cal: Calib
             xb, vb = x[i : i + batch], valid[i : i + batch]
             z = torch.stack([m(xb, vb) for m in members])
             p_ens = calibrated_log_probs(z, cal).exp()
-            each = torch.stack([calibrated_log_probs(zm.unsqueeze(0), cal) for zm in z]).exp()
             zs, mi = split_epistemic(net(xb, vb), net.n_outcomes)
             p_net = calibrated_log_probs(zs.unsqueeze(0), cal).exp()
             tv.append(0.5 * (p_ens - p_net).abs().sum(-1))
             dconv.append((p_ens[:, N_STATIC:].sum(-1) - p_net[:, N_STATIC:].sum(-1)).abs())
             same.append(p_ens.argmax(-1) == p_net.argmax(-1))
-            dmi.append((mi - torch.from_numpy(mutual_information(each.numpy())).to(mi.dtype)).abs() if mi is not None else torch.zeros(len(xb)))
+            dmi.append((mi - torch.from_numpy(calibrated_mutual_information(z, cal)).to(mi.dtype)).abs() if mi is not None else torch.zeros(len(xb)))
     t = torch.cat(tv)
     return {
         "n": len(t),

@@ -17,8 +17,7 @@ import torch
 from plantation.errors import RegionError
 from plantation.imagery.config import ScalingRule
 from plantation.imagery.region import TileStack
-from plantation.model.artefact import Artefact
-from plantation.model.calibration import mutual_information
+from plantation.model.artefact import Artefact, calibrated_mutual_information
 from plantation.model.network import split_epistemic
 from plantation.model.patches import features
 
@@ -134,9 +133,7 @@ def window_probabilities(art: Artefact, x: torch.Tensor, valid: torch.Tensor, pi
         z = torch.stack([m.forward_window(x, valid, pixel_batch) for m in art.members])  # (m, h, w, o)
         probs = art.calibrated_log_probs(z).exp()
         if len(art.members) > 1:
-            # Disagreement between members, each calibrated like the mapped probabilities.
-            each = torch.stack([art.calibrated_log_probs(zm.unsqueeze(0)) for zm in z]).exp()
-            epi = mutual_information(each.numpy())
+            epi = calibrated_mutual_information(z, art.card.calibration)
         else:
             epi = np.zeros(probs.shape[:-1], np.float32)
     return probs.numpy(), np.asarray(epi, np.float32)

@@ -6,8 +6,9 @@ Four stages, each chosen because the outcome is a year:
    the season as sin/cos of the day of year) goes through a small shared
    two-layer perceptron.
 2. **Yearly summary.** Per pixel and year, the mean and the maximum of the
-   embeddings of the dates observed in that year, and the share of the year's
-   dates observed. Unobserved dates are left out of both, so a masked date
+   embeddings of the dates observed in that year, the mean of their
+   normalised features (and, with ``amplitude``, each feature's range), and
+   the share of the year's dates observed. Unobserved dates are left out of all, so a masked date
    cannot change the output whatever its stored values (clouds are gaps, not
    data). The maximum keeps what a mean would blur: one clear date after a
    clearing late in the year, and the seasonal amplitude that tells pasture

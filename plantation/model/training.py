@@ -95,9 +95,6 @@ def check_config(cfg: TrainConfig) -> None:
     if not 0 <= t.date_dropout < 1:
         raise ConfigError(f"training.date_dropout: {t.date_dropout!r} must be in [0, 1)")
     d = cfg.distillation
-    for key, val in (("distillation.max_epochs", d.max_epochs), ("distillation.patience", d.patience)):
-        if val < 1:
-            raise ConfigError(f"{key}: {val!r} must be at least 1")
     if d.pixels < 0 or d.lr <= 0 or d.epistemic_weight < 0 or d.tolerance <= 0:
         raise ConfigError(f"distillation: pixels ({d.pixels}) and epistemic_weight ({d.epistemic_weight}) must be at least 0, lr ({d.lr}) and tolerance ({d.tolerance}) above 0")
     for key, val in (
@@ -107,6 +104,8 @@ def check_config(cfg: TrainConfig) -> None:
         ("network.hidden", cfg.network.hidden),
         ("network.date_width", cfg.network.date_width),
         ("network.conv_width", cfg.network.conv_width),
+        ("distillation.max_epochs", d.max_epochs),
+        ("distillation.patience", d.patience),
     ):
         if val < 1:
             raise ConfigError(f"{key}: {val!r} must be at least 1")
@@ -504,7 +503,7 @@ def distil(
     held = TensorDataset(torch.from_numpy(val.x), torch.from_numpy(val.valid))
     L.seed_everything(cfg.training.seed * 1000 + 999, workers=True, verbose=False)
     start = time.perf_counter()
-    task = DistillationTask(nets, cal, spec, lr=dc.lr, epistemic_weight=dc.epistemic_weight, max_epochs=dc.max_epochs, date_dropout=cfg.training.date_dropout)
+    task = DistillationTask(nets, cal, spec, lr=dc.lr, epistemic_weight=dc.epistemic_weight, max_epochs=dc.max_epochs, date_dropout=cfg.training.date_dropout, weight_decay=cfg.training.weight_decay)
     trainer = make_trainer(cfg.trainer, dc.max_epochs, dc.patience, folder, "distilled")
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message=".*does not have many workers.*")
