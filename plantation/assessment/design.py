@@ -359,10 +359,12 @@ def _atomic_text(path: Path, text: str) -> None:
     os.replace(tmp, path)
 
 
-def write_samples(table: pd.DataFrame, out_dir: Path) -> tuple[Path, Path]:
-    """The interpreters' sheet: ``samples.csv`` and ``samples.gpkg`` (points in EPSG:4326, layer ``samples``), atomically.
+def write_samples(table: pd.DataFrame, out_dir: Path, *, stem: str = "samples") -> tuple[Path, Path]:
+    """The interpreters' sheet: ``<stem>.csv`` and ``<stem>.gpkg`` (points in EPSG:4326, layer ``<stem>``), atomically.
 
     Only :data:`SHEET_COLUMNS` are written: the map's answer stays in ``design.json``.
+    ``stem``: the files' and layer's name (``samples`` for the validation
+    sample; ``plantation suggest`` writes the same form as ``suggestions``).
     """
     import logging
 
@@ -371,18 +373,18 @@ def write_samples(table: pd.DataFrame, out_dir: Path) -> tuple[Path, Path]:
 
     logging.getLogger("pyogrio").setLevel(logging.WARNING)
     out_dir.mkdir(parents=True, exist_ok=True)
-    csv = out_dir / "samples.csv"
+    csv = out_dir / f"{stem}.csv"
     tmp = csv.with_name(csv.name + ".partial")
     table.loc[:, list(SHEET_COLUMNS)].to_csv(tmp, index=False, lineterminator="\n")
     os.replace(tmp, csv)
-    gpkg = out_dir / "samples.gpkg"
-    tmpg = gpkg.with_name("samples.partial.gpkg")
+    gpkg = out_dir / f"{stem}.gpkg"
+    tmpg = gpkg.with_name(f"{stem}.partial.gpkg")
     if tmpg.exists():
         tmpg.unlink()
     geom = shapely.to_wkb(shapely.points(table["lon"].to_numpy(), table["lat"].to_numpy()))
     cols = [c for c in SHEET_COLUMNS if c not in ("lon", "lat")]
     data = [table[c].to_numpy() if table[c].dtype != object else table[c].astype(str).to_numpy() for c in cols]
-    pyogrio.raw.write(str(tmpg), geom, data, cols, crs="EPSG:4326", geometry_type="Point", driver="GPKG", layer="samples")
+    pyogrio.raw.write(str(tmpg), geom, data, cols, crs="EPSG:4326", geometry_type="Point", driver="GPKG", layer=stem)
     os.replace(tmpg, gpkg)
     return csv, gpkg
 

@@ -57,6 +57,28 @@ def train(cfg: DictConfig) -> None:
             print(f"distilled network: mean distance to the ensemble {a['mean_tv_distance']} on validation, same most probable outcome {a['same_most_probable']:.1%}; {verdict}")
 
 
+def retrain(cfg: DictConfig) -> None:
+    from plantation.retraining.retrain import RetrainConfig, run
+
+    result = run(to_object(cfg, RetrainConfig), resolved_config=_resolved(cfg))
+    if os.environ.get("LOCAL_RANK", "0") == "0":
+        print("\n".join(result.lines()[len(result.diff_lines) :]))
+
+
+def suggest(cfg: DictConfig) -> None:
+    from plantation.retraining.suggest import SuggestConfig, run
+
+    result = run(to_object(cfg, SuggestConfig))
+    print("\n".join(result.lines()))
+
+
+def list_runs(cfg: DictConfig) -> None:
+    from plantation.model.runs import list_runs as find
+    from plantation.model.runs import runs_table
+
+    print("\n".join(runs_table(find(cfg.out_dir))))
+
+
 def map_region(cfg: DictConfig) -> None:
     from plantation.mapping.folder import NOTICE
     from plantation.mapping.job import MapConfig, run
@@ -152,6 +174,14 @@ def benchmark_speed(cfg: DictConfig) -> None:
     _write_json(res, sc.out)
 
 
+def benchmark_labels(cfg: DictConfig) -> None:
+    from plantation.benchmarks.labels import LabelsBenchConfig, run, summary_lines
+
+    lc = to_object(cfg, LabelsBenchConfig)
+    print("\n".join(summary_lines(run(lc))))
+    print(f"written to {lc.out} and {lc.plot}")
+
+
 def benchmark_read(cfg: DictConfig) -> None:
     from plantation.benchmarks.reading import ReadConfig, run
 
@@ -180,6 +210,9 @@ VERBS: dict[str, Verb] = {
     for v in (
         Verb("survey", "survey", "summarise a region's imagery and labels: clear views, label counts, index series", survey),
         Verb("train", "train", "train and calibrate a conversion-year model for a region and export it", train),
+        Verb("retrain", "retrain", "retrain from an earlier run on grown labels or imagery: label changes, kept splits, warm start, comparison", retrain),
+        Verb("suggest", "suggest", "suggest points to label next, where a label teaches the model most (not a probability sample)", suggest),
+        Verb("runs", "runs", "list training runs side by side: labels, years, test scores, parents", list_runs),
         Verb("map", "map", "map every tile of a region with a trained model to Cloud-Optimized GeoTIFFs", map_region),
         Verb("sample", "sample", "draw a stratified validation sample from a map for interpreters to label", sample),
         Verb("assess", "assess", "estimate accuracy and areas with confidence intervals from the labelled sample", assess),
@@ -188,6 +221,7 @@ VERBS: dict[str, Verb] = {
         Verb("simulate", "simulate", "write a simulated region (imagery, labels, plots, truth) from a seed", simulate),
         Verb("benchmark-accuracy", "benchmark_accuracy", "compare the model with the baselines on a held-out simulated region", benchmark_accuracy),
         Verb("benchmark-speed", "benchmark_speed", "time and measure the memory of mapping, side by side with the baselines", benchmark_speed),
+        Verb("benchmark-labels", "benchmark_labels", "what to label next, wrong labels, rule labels, warm starts and a new year, scored on a held-out region", benchmark_labels),
         Verb("benchmark-read", "benchmark_read", "peak memory of reading a large stack window by window", benchmark_read),
         Verb("benchmark-plots", "benchmark_plots", "check the farm-plot verdicts against the simulated region's truth", benchmark_plots),
         Verb("readme-figures", "readme_figures", "rewrite the README's figure tables from the JSON the jobs wrote (check=true: only check)", readme_figures),

@@ -147,3 +147,6 @@ class RegionConfig:
     labels: LabelsConfig = field(default_factory=LabelsConfig)
     #: Spatial chunk (pixels) for lazy reading: bounds memory per task.
     chunk: int = 512
+    #: Last acquisition date read (ISO ``YYYY-MM-DD``); later dates are left
+    #: out as if not delivered yet. None: every date.
+    end_date: str | None = None

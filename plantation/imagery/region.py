@@ -321,7 +321,9 @@ def _open_geotiff_folder(tile: TileConfig, region: RegionConfig) -> TileStack:
     if qa_band is not None and qa_band != n_refl + 1:
         raise ConfigError(f"region.mask.band: {qa_band} must follow the {n_refl} reflectance bands (band {n_refl + 1})")
     expected = n_refl + (1 if qa_band else 0)
-    dates = sorted(by_date)
+    dates = [d for d in sorted(by_date) if d <= _end_date(region)]
+    if not dates:
+        raise RegionError(f"{folder}: no file dated on or before region.end_date {region.end_date}")
     grid: Grid | None = None
     nodatas: list[float | None] = []
     first = by_date[dates[0]]
@@ -400,6 +402,12 @@ def _open_cube(tile: TileConfig, region: RegionConfig) -> TileStack:
     if (np.diff(times.astype(np.int64)) < 0).any():
         da = da.sortby("time")
         times = da["time"].values.astype("datetime64[D]")
+    end = np.datetime64(_end_date(region), "D")
+    if (times > end).any():
+        da = da.isel(time=np.flatnonzero(times <= end))
+        times = times[times <= end]
+        if len(times) == 0:
+            raise RegionError(f"{path}: no date on or before region.end_date {region.end_date}")
     dates = [date.fromisoformat(str(t)) for t in times]
     nodata = region.nodata if region.nodata is not None else da.rio.nodata
     invalid = da.isnull().any("band") if np.issubdtype(da.dtype, np.floating) else xr.zeros_like(da.isel(band=0), dtype=bool)
@@ -408,11 +416,21 @@ def _open_cube(tile: TileConfig, region: RegionConfig) -> TileStack:
     if region.mask.variable:
         if region.mask.variable not in ds:
             raise RegionError(f"{path}: no QA variable {region.mask.variable!r}")
-        invalid = invalid | qa_invalid(ds[region.mask.variable].sortby("time"), region.mask.invalid_bits)
+        invalid = invalid | qa_invalid(ds[region.mask.variable].sortby("time").sel(time=da["time"]), region.mask.invalid_bits)
     keep = ["time", "y", "x"]
     invalid = invalid.drop_vars([c for c in invalid.coords if c not in keep])
     raw = da.drop_vars([c for c in da.coords if c not in keep])
     return _finish(tile.name, raw, invalid, dates, region, grid)
+
+
+def _end_date(region: RegionConfig) -> date:
+    """The last date the region reads (``region.end_date``; far in the future when unset)."""
+    if region.end_date is None:
+        return date.max
+    try:
+        return date.fromisoformat(str(region.end_date))
+    except ValueError:
+        raise ConfigError(f"region.end_date: {region.end_date!r} is not a date (YYYY-MM-DD)") from None
 
 
 def open_tile(tile: TileConfig, region: RegionConfig) -> TileStack:

@@ -50,6 +50,8 @@ class TrainingConfig:
     weight_decay: float = 1e-4
     loss: str = "ce"
     gce_q: float = 0.7
+    sce_alpha: float = 0.1
+    sce_beta: float = 1.0
     class_weighting: str = "inverse_sqrt"
     augment: bool = True
     date_dropout: float = 0.1
@@ -98,3 +100,15 @@ class DistillationConfig:
     lr: float = 2e-3
     epistemic_weight: float = 1.0
     tolerance: float = 0.05
+
+
+@dataclass
+class SurrogateConfig:
+    """Automatic labels from the index-drop rule (:mod:`plantation.reference.rule`) added to the training split."""
+
+    #: Pixels drawn at random across the region and labelled by the rule (0: none).
+    pixels: int = 0
+    #: Loss weight of a rule label; an interpreter's label weighs 1.
+    weight: float = 0.3
+    #: Seed of the draw.
+    seed: int = 0

@@ -5,20 +5,35 @@ and spectral indices of the k × k pixels centred on it (float32, NaN where
 not observed) and the validity mask. Nothing is filled in here: the network
 decides what a missing value becomes, and always sees the mask.
 
-Splits are spatial: the region is cut into square blocks (across tile seams),
-whole blocks go to train, validation or test, and a validation point whose
-neighbourhood overlaps a training point's, or a test point whose neighbourhood
-overlaps a training or validation point's, is dropped, so no pixel is seen in
-two splits.
+Splits are spatial. The region is cut into square blocks of region-wide
+pixel coordinates (``floor(x / block)``, ``floor(y / block)``, across tile
+seams, negative coordinates included), and each block goes whole to train,
+validation or test. A block's split is a fixed function of the block's
+position, the seed and the shares alone: a number in [0, 1) hashed from
+(seed, block column, block row) with BLAKE2b (the same on every platform and
+numpy version), compared with the cumulative shares. So the shares are met
+in expectation over blocks, not exactly, and a block keeps its split however
+many points are labelled in it or elsewhere.
+
+A validation point whose neighbourhood overlaps a training point's, or a
+test point whose neighbourhood overlaps a training or validation point's, is
+dropped, so no pixel is seen in two splits. That buffer depends on the other
+points, so a retrain on a grown label file passes the parent's split of each
+point (``inherit``): those points keep it exactly, a new point takes its
+block's split and is dropped if its neighbourhood touches a point of another
+split. A point's split then never changes between label versions.
 """
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+import hashlib
+import struct
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
 import xarray as xr
+from scipy.spatial import cKDTree
 
 from plantation.errors import ConfigError, LabelError, RegionError
 from plantation.imagery import indices as idx
@@ -27,6 +42,10 @@ from plantation.model.outcomes import Outcomes
 from plantation.reference.labels import LabelSet
 
 SPLITS: tuple[str, ...] = ("train", "val", "test")
+#: Split code of a point left out by the buffer.
+DROPPED: int = -1
+#: ``inherit`` code of a point the parent version did not have.
+NEW: int = -2
 
 
 @dataclass
@@ -40,10 +59,13 @@ class PatchSet:
         target: int64 (n,) outcome index (see :class:`~plantation.model.outcomes.Outcomes`).
         tile, row, col: where each sample's centre pixel is.
         split: int8 (n,): 0 train, 1 validation, 2 test, −1 dropped (too
-            close to a training point).
+            close to a point of another split).
         channels: names of the channels.
         dates: datetime64[D] (time,).
         outcomes: the outcome indexing.
+        weight: float32 (n,) per-sample loss weight (e.g. below 1 for
+            automatically labelled pixels), or None: every sample weighs 1.
+            :meth:`subset` and :meth:`concat` carry it.
     """
 
     x: np.ndarray
@@ -56,14 +78,63 @@ class PatchSet:
     channels: tuple[str, ...]
     dates: np.ndarray
     outcomes: Outcomes
+    weight: np.ndarray | None = None
+
+    def __post_init__(self) -> None:
+        if self.weight is not None:
+            w = np.asarray(self.weight, dtype=np.float32)
+            if w.shape != (len(self.target),):
+                raise ValueError(f"PatchSet.weight: shape {w.shape} does not match the {len(self.target)} samples; give one weight per sample or None")
+            if not (np.isfinite(w) & (w >= 0)).all():
+                raise ValueError("PatchSet.weight: weights must be finite and non-negative")
+            self.weight = w
 
     def __len__(self) -> int:
         return len(self.target)
 
+    def weight_or_ones(self) -> np.ndarray:
+        """float32 (n,) loss weight of each sample (ones where :attr:`weight` is None)."""
+        return np.ones(len(self), np.float32) if self.weight is None else self.weight
+
     def subset(self, mask: np.ndarray) -> PatchSet:
-        """The samples where ``mask`` is True (arrays are views or copies; metadata shared)."""
+        """The samples where ``mask`` (bool (n,) or indices) selects (arrays are views or copies; metadata shared)."""
         m = np.asarray(mask)
-        return PatchSet(self.x[m], self.valid[m], self.target[m], self.tile[m], self.row[m], self.col[m], self.split[m], self.channels, self.dates, self.outcomes)
+        w = None if self.weight is None else self.weight[m]
+        return PatchSet(self.x[m], self.valid[m], self.target[m], self.tile[m], self.row[m], self.col[m], self.split[m], self.channels, self.dates, self.outcomes, w)
+
+    def concat(self, other: PatchSet) -> PatchSet:
+        """These samples followed by ``other``'s (e.g. automatically labelled pixels added to the training split).
+
+        Both must have the same channels, dates, outcomes and neighbourhood.
+        The weight is None when both are None, else the two weights with ones
+        where one is None. Split codes are kept as they are.
+
+        Raises:
+            ValueError: the two sets differ in channels, dates, outcomes or
+                neighbourhood size.
+        """
+        if tuple(self.channels) != tuple(other.channels):
+            raise ValueError(f"PatchSet.concat: channels {tuple(other.channels)} differ from {tuple(self.channels)}; cut both sets with the same bands and indices")
+        if not np.array_equal(np.asarray(self.dates, "datetime64[D]"), np.asarray(other.dates, "datetime64[D]")):
+            raise ValueError(f"PatchSet.concat: the dates differ ({len(other.dates)} against {len(self.dates)}); cut both sets from the same imagery")
+        if self.outcomes != other.outcomes:
+            raise ValueError(f"PatchSet.concat: outcomes for years {other.outcomes.years} differ from {self.outcomes.years}; cut both sets from the same imagery")
+        if self.x.shape[1:] != other.x.shape[1:] or self.valid.shape[1:] != other.valid.shape[1:]:
+            raise ValueError(f"PatchSet.concat: sample shape {other.x.shape[1:]} differs from {self.x.shape[1:]}; use the same neighbourhood")
+        w = None if self.weight is None and other.weight is None else np.concatenate([self.weight_or_ones(), other.weight_or_ones()])
+        return PatchSet(
+            x=np.concatenate([self.x, other.x]),
+            valid=np.concatenate([self.valid, other.valid]),
+            target=np.concatenate([self.target, other.target]),
+            tile=np.concatenate([np.asarray(self.tile, dtype=object), np.asarray(other.tile, dtype=object)]),
+            row=np.concatenate([self.row, other.row]),
+            col=np.concatenate([self.col, other.col]),
+            split=np.concatenate([self.split, other.split]).astype(np.int8),
+            channels=self.channels,
+            dates=self.dates,
+            outcomes=self.outcomes,
+            weight=w,
+        )
 
     def part(self, name: str) -> PatchSet:
         """One split by name: ``train``, ``val`` or ``test``."""
@@ -140,50 +211,144 @@ def read_patches(stack: TileStack, rows: np.ndarray, cols: np.ndarray, k: int) -
     return refl, valid
 
 
-def spatial_split(gx: np.ndarray, gy: np.ndarray, *, block: int, shares: Sequence[float], k: int, seed: int) -> np.ndarray:
-    """Assign points to train (0), validation (1) or test (2) by spatial block.
+def block_draw(ix: np.ndarray, iy: np.ndarray, seed: int) -> np.ndarray:
+    """A number in [0, 1) for each block, a fixed function of (seed, ix, iy).
 
-    Coordinates are region-wide pixel units (CRS coordinates divided by the
-    pixel size), so blocks and buffers run across tile seams. Blocks of
-    ``block`` × ``block`` pixels are shuffled with ``seed`` and dealt to the
-    splits in proportion to ``shares`` (train, val, test). A point whose
-    k × k window overlaps the window of a point in an earlier split (a
-    validation point near a training point, a test point near a training or
-    validation point) is marked −1 (dropped).
+    BLAKE2b over the little-endian int64 bytes of (seed, ix, iy); the top 53
+    bits of its first 8 bytes, over 2⁵³. The same on every platform and numpy
+    version, and independent of which other blocks exist.
+
+    Args:
+        ix, iy: int64 (m,) block column and row (any sign).
+        seed: the split seed.
 
     Returns:
-        int8 (n,) split codes.
+        float64 (m,).
     """
+    if not -(2**63) <= int(seed) < 2**63:
+        raise ConfigError(f"split.seed: {seed!r} must fit in a signed 64-bit integer")
+    out = np.empty(len(ix), np.float64)
+    for i, (a, b) in enumerate(zip(np.asarray(ix, np.int64).tolist(), np.asarray(iy, np.int64).tolist(), strict=True)):
+        h = hashlib.blake2b(struct.pack("<qqq", int(seed), a, b), digest_size=8, person=b"plantation.split").digest()
+        out[i] = (int.from_bytes(h, "little") >> 11) / 2.0**53
+    return out
+
+
+def _check_split_settings(block: int, shares: Sequence[float]) -> None:
     if len(shares) != 3 or min(shares) < 0 or not np.isclose(sum(shares), 1.0):
         raise ConfigError(f"split.shares: {list(shares)!r} must be three non-negative shares (train, val, test) summing to 1")
     if block < 1:
         raise ConfigError(f"split.block: {block!r} must be a positive number of pixels")
-    gx = np.asarray(gx, dtype=np.float64)
-    gy = np.asarray(gy, dtype=np.float64)
-    keys = np.floor(gx / block).astype(np.int64) * 1_000_003 + np.floor(gy / block).astype(np.int64)
-    uniq, inverse, counts = np.unique(keys, return_inverse=True, return_counts=True)
-    rng = np.random.default_rng(seed)
-    order = rng.permutation(len(uniq))
-    # Deal blocks by cumulative point count so each split gets about its share
-    # of points even when blocks hold different numbers of them.
-    c = counts[order]
-    mid = (np.cumsum(c) - c / 2) / c.sum()
-    block_split = np.empty(len(uniq), np.int8)
-    block_split[order] = np.searchsorted(np.cumsum(shares)[:2], mid, side="right")
-    split = block_split[inverse].astype(np.int8)
-    # Buffer: two windows overlap when both offsets are below k pixels.
+
+
+def block_splits(gx: np.ndarray, gy: np.ndarray, *, block: int, shares: Sequence[float], seed: int) -> np.ndarray:
+    """The split of each point's block, before any buffer: 0 train, 1 validation, 2 test.
+
+    The block of a point is (floor(gx / block), floor(gy / block)); its
+    split is where :func:`block_draw` of the block and the seed falls among the
+    cumulative ``shares``, so a block goes to train with probability
+    ``shares[0]`` and so on, over blocks, whatever the other points.
+
+    Args:
+        gx, gy: float (n,) region-wide pixel coordinates (CRS coordinates
+            divided by the pixel size).
+
+    Returns:
+        int8 (n,).
+    """
+    _check_split_settings(block, shares)
+    gx = np.asarray(gx, dtype=np.float64).reshape(-1)
+    gy = np.asarray(gy, dtype=np.float64).reshape(-1)
+    if len(gx) == 0:
+        return np.zeros(0, np.int8)
+    ij = np.stack([np.floor(gx / block), np.floor(gy / block)], axis=1).astype(np.int64)
+    keys, inverse = np.unique(ij, axis=0, return_inverse=True)
+    u = block_draw(keys[:, 0], keys[:, 1], seed)
+    # Blocks whose draw is below shares[0] train, below shares[0] + shares[1] validate, the rest test.
+    code = np.searchsorted(np.cumsum(np.asarray(shares, dtype=np.float64))[:2], u, side="right").astype(np.int8)
+    return code[np.asarray(inverse).reshape(-1)]
+
+
+def windows_touch(ax: np.ndarray, ay: np.ndarray, bx: np.ndarray, by: np.ndarray, k: int) -> np.ndarray:
+    """Whether each k × k window centred on a point of a overlaps any window centred on a point of b.
+
+    Args:
+        ax, ay, bx, by: float region-wide pixel coordinates (as in :func:`spatial_split`).
+        k: window side in pixels.
+
+    Returns:
+        bool (len(ax),). E.g. to keep automatically labelled training pixels
+        off the windows of validation and test points.
+    """
+    if len(ax) == 0 or len(bx) == 0:
+        return np.zeros(len(ax), bool)
+    # Two windows overlap when both offsets are below k pixels: Chebyshev distance ≤ k − 1
+    # for pixel-aligned centres; strictly below k − 0.5 as before for any others.
+    tree = cKDTree(np.column_stack([bx, by]))
+    n = tree.query_ball_point(np.column_stack([ax, ay]), np.nextafter(k - 0.5, 0.0), p=np.inf, return_length=True)
+    return np.asarray(n) > 0
+
+
+def spatial_split(gx: np.ndarray, gy: np.ndarray, *, block: int, shares: Sequence[float], k: int, seed: int, inherit: np.ndarray | None = None) -> np.ndarray:
+    """Assign points to train (0), validation (1) or test (2) by spatial block.
+
+    Coordinates are region-wide pixel units (CRS coordinates divided by the
+    pixel size), so blocks and buffers run across tile seams. Each block of
+    ``block`` × ``block`` pixels has a split fixed by its position, ``seed``
+    and ``shares`` alone (:func:`block_splits`), so ``shares`` (train, val,
+    test) are met in expectation over blocks, not exactly.
+
+    Without ``inherit``, a point whose k × k window overlaps the window of a
+    point in an earlier split (a validation point near a training point, a
+    test point near a training or validation point) is marked −1 (dropped).
+
+    With ``inherit``, a point the parent had (code 0, 1, 2 or −1) keeps that
+    code exactly and is never buffered again. A new point (code
+    :data:`NEW`) takes its block's split and is dropped when its window
+    overlaps that of a kept parent point of another split, in either
+    direction (a new training point next to a parent validation point is
+    dropped too); among the new points the buffer above applies. So no pixel
+    is seen in two splits and no parent point changes split. With every
+    point new, the result is the same as without ``inherit``.
+
+    Args:
+        gx, gy: float (n,) region-wide pixel coordinates.
+        block: block side in pixels.
+        shares: train, validation and test shares (non-negative, sum 1).
+        k: neighbourhood side in pixels.
+        seed: split seed.
+        inherit: int8 (n,) each point's split in the parent version, or
+            :data:`NEW`; None = every point is new.
+
+    Returns:
+        int8 (n,) split codes.
+    """
+    _check_split_settings(block, shares)
+    gx = np.asarray(gx, dtype=np.float64).reshape(-1)
+    gy = np.asarray(gy, dtype=np.float64).reshape(-1)
+    if gx.shape != gy.shape:
+        raise ValueError(f"spatial_split: gx has {len(gx)} points, gy {len(gy)}")
+    split = block_splits(gx, gy, block=block, shares=shares, seed=seed)
+    if inherit is None:
+        new = np.ones(len(split), bool)
+    else:
+        inh = np.asarray(inherit).reshape(-1)
+        if inh.shape != split.shape:
+            raise ValueError(f"spatial_split: inherit has {len(inh)} codes for {len(split)} points")
+        bad = ~np.isin(inh, (NEW, DROPPED, 0, 1, 2))
+        if bad.any():
+            raise ValueError(f"spatial_split: inherit code {int(inh[bad][0])} is not one of 0, 1, 2 (train, val, test), {DROPPED} (dropped) or {NEW} (new)")
+        new = inh == NEW
+        split[~new] = inh[~new]
+        for s in range(len(SPLITS)):
+            mine = np.flatnonzero(new & (split == s))
+            others = ~new & (split >= 0) & (split != s)
+            split[mine[windows_touch(gx[mine], gy[mine], gx[others], gy[others], k)]] = DROPPED
+    # The buffer among new points: a later split gives way to an earlier one.
     for later in (1, 2):
-        earlier = np.flatnonzero((split >= 0) & (split < later))
-        mine = np.flatnonzero(split == later)
-        if len(earlier) == 0 or len(mine) == 0:
-            continue
-        clash = np.zeros(len(mine), bool)
-        for i in range(0, len(mine), 512):  # bounded memory for large label sets
-            sl = slice(i, i + 512)
-            dx = np.abs(gx[mine[sl]][:, None] - gx[earlier][None, :])
-            dy = np.abs(gy[mine[sl]][:, None] - gy[earlier][None, :])
-            clash[sl] = ((dx < k - 0.5) & (dy < k - 0.5)).any(1)
-        split[mine[clash]] = -1
+        mine = np.flatnonzero(new & (split == later))
+        earlier = new & (split >= 0) & (split < later)
+        split[mine[windows_touch(gx[mine], gy[mine], gx[earlier], gy[earlier], k)]] = DROPPED
     return split
 
 
@@ -202,8 +367,26 @@ def check_years(dates: np.ndarray) -> tuple[int, ...]:
     return tuple(int(y) for y in years)
 
 
-def build_patches(stacks: Sequence[TileStack], labels: LabelSet, *, bands: Sequence[str], index_names: Sequence[str], k: int, block: int, shares: Sequence[float], seed: int) -> PatchSet:
+def build_patches(
+    stacks: Sequence[TileStack],
+    labels: LabelSet,
+    *,
+    bands: Sequence[str],
+    index_names: Sequence[str],
+    k: int,
+    block: int,
+    shares: Sequence[float],
+    seed: int,
+    inherit: Mapping[tuple[str, int, int], int] | None = None,
+) -> PatchSet:
     """Samples for every labelled point of a region, with a spatial split.
+
+    Args:
+        inherit: a parent version's split code (0, 1, 2 or −1) of each point
+            by (tile, row, col); those points keep it, points not in it are
+            new (see :func:`spatial_split`). None = every point is new.
+
+    The samples' ``weight`` is None (every sample weighs 1).
 
     Raises:
         LabelError: no label falls on any tile, or an onset year is outside
@@ -235,7 +418,10 @@ def build_patches(stacks: Sequence[TileStack], labels: LabelSet, *, bands: Seque
     tile = np.concatenate(tiles)
     row = np.concatenate(rows).astype(np.int64)
     col = np.concatenate(cols).astype(np.int64)
-    split = spatial_split(np.concatenate(gxs), np.concatenate(gys), block=block, shares=shares, k=k, seed=seed)
+    codes = None
+    if inherit is not None:
+        codes = np.array([inherit.get((str(t), int(r), int(c)), NEW) for t, r, c in zip(tile, row, col, strict=True)], dtype=np.int8)
+    split = spatial_split(np.concatenate(gxs), np.concatenate(gys), block=block, shares=shares, k=k, seed=seed, inherit=codes)
     return PatchSet(
         x=np.concatenate(xs),
         valid=np.concatenate(vs),

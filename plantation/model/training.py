@@ -21,9 +21,12 @@ exported card then shifts them to the region's mix where one is known
 (``calibration.prior``). The test metrics and ``validation.json`` describe
 the sample-mix probabilities on the (stratified) held-out points.
 
-Label noise: ``training.loss=gce`` uses the generalised cross-entropy of
-Zhang & Sabuncu (2018, NeurIPS), (1 − p_y^q) / q, which bounds the pull of a
-mislabelled point; ``ce`` (the default) is plain cross-entropy.
+Label noise: ``training.loss=gce`` (generalised cross-entropy, Zhang &
+Sabuncu 2018) or ``sce`` (symmetric cross-entropy, Wang et al. 2019) bound the
+pull of a mislabelled point (:mod:`plantation.model.losses`); ``ce`` (the
+default) is plain cross-entropy. ``surrogate.pixels`` adds pixels labelled by
+a rule on the imagery (:mod:`plantation.reference.rule`) to the training
+split, each weighing ``surrogate.weight`` in the loss.
 """
 
 from __future__ import annotations
@@ -34,34 +37,40 @@ import os
 import shutil
 import time
 import warnings
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
 import lightning as L
 import numpy as np
+import pandas as pd
 import torch
-from torch import nn
 from torch.utils.data import DataLoader, TensorDataset
 
 from plantation import __version__
 from plantation.errors import ConfigError
 from plantation.imagery.config import LabelsConfig, RegionConfig, check_labels_config, population_shares
 from plantation.imagery.region import TileStack, open_region
-from plantation.model import calibration
+from plantation.model import calibration, runs
 from plantation.model.artefact import calibrated_log_probs
 from plantation.model.artefact import save as save_artefact
 from plantation.model.card import Calibration, ModelCard, write_validation
-from plantation.model.config import CalibrationConfig, DistillationConfig, NetworkConfig, PatchConfig, SplitConfig, TrainerConfig, TrainingConfig
+from plantation.model.config import CalibrationConfig, DistillationConfig, NetworkConfig, PatchConfig, SplitConfig, SurrogateConfig, TrainerConfig, TrainingConfig
 from plantation.model.distillation import DistillationTask, agreement
+from plantation.model.losses import per_sample_loss
 from plantation.model.network import ConvRecurrentNet
 from plantation.model.outcomes import MASS_GRID, N_STATIC, Outcomes, group_probabilities, interval_coverage_curve, summarise
-from plantation.model.patches import SPLITS, PatchSet, build_patches, day_of_year_fraction, features, read_patches, year_of
+from plantation.model.patches import SPLITS, PatchSet, build_patches, day_of_year_fraction, features, read_patches, windows_touch, year_of
 from plantation.model.task import SeriesTask
+from plantation.model.transfer import carry_weights
 from plantation.reference.labels import LABEL_CODES, LabelSet, read_labels
+from plantation.reference.rule import draw_rule_labels
 
 log = logging.getLogger(__name__)
+
+#: Values of ``training.loss`` (:mod:`plantation.model.losses`; ``forward`` needs a transition matrix a config cannot give).
+TRAINING_LOSSES: tuple[str, ...] = ("ce", "gce", "sce")
 
 #: Values of ``calibration.prior`` besides ``auto`` (see :func:`resolve_prior`).
 PRIORS: tuple[str, ...] = ("sample", "shares", "inclusion", "bbse")
@@ -79,6 +88,7 @@ class TrainConfig:
     trainer: TrainerConfig = field(default_factory=TrainerConfig)
     calibration: CalibrationConfig = field(default_factory=CalibrationConfig)
     distillation: DistillationConfig = field(default_factory=DistillationConfig)
+    surrogate: SurrogateConfig = field(default_factory=SurrogateConfig)
     out_dir: str = "outputs/train"
     run_name: str = "run"
 
@@ -86,8 +96,10 @@ class TrainConfig:
 def check_config(cfg: TrainConfig) -> None:
     """Reject values no training could use, naming the key."""
     t = cfg.training
-    if t.loss not in ("ce", "gce"):
-        raise ConfigError(f"training.loss: {t.loss!r} is not one of ['ce', 'gce']")
+    if t.loss not in TRAINING_LOSSES:
+        raise ConfigError(f"training.loss: {t.loss!r} is not one of {list(TRAINING_LOSSES)}")
+    if not (t.sce_alpha >= 0 and t.sce_beta >= 0 and t.sce_alpha + t.sce_beta > 0):
+        raise ConfigError(f"training.sce_alpha, training.sce_beta: ({t.sce_alpha!r}, {t.sce_beta!r}) must be at least 0 and not both 0")
     if t.class_weighting not in ("inverse_sqrt", "none"):
         raise ConfigError(f"training.class_weighting: {t.class_weighting!r} is not one of ['inverse_sqrt', 'none']")
     if not 0 < t.gce_q <= 1:
@@ -184,6 +196,8 @@ class ConversionTask(SeriesTask):
         weight_decay: float = 1e-4,
         loss: str = "ce",
         gce_q: float = 0.7,
+        sce_alpha: float = 0.1,
+        sce_beta: float = 1.0,
         augment: bool = True,
         date_dropout: float = 0.1,
         max_epochs: int = 40,
@@ -200,22 +214,20 @@ class ConversionTask(SeriesTask):
         h = self.hparams
         return h["lr"], h["weight_decay"], h["max_epochs"], h["date_dropout"]
 
-    def _loss(self, logits: torch.Tensor, y: torch.Tensor) -> torch.Tensor:
+    def _loss(self, logits: torch.Tensor, y: torch.Tensor, sample_weight: torch.Tensor | None = None) -> torch.Tensor:
+        h = self.hparams
         w = self.loss_weights[y]
-        if self.hparams["loss"] == "gce":
-            q = self.hparams["gce_q"]
-            py = torch.softmax(logits, -1).gather(1, y[:, None]).squeeze(1).clamp_min(1e-7)
-            per = (1 - py**q) / q
-        else:
-            per = nn.functional.cross_entropy(logits, y, reduction="none")
+        if sample_weight is not None:
+            w = w * sample_weight
+        per = per_sample_loss(h["loss"], logits, y, gce_q=h["gce_q"], sce_alpha=h.get("sce_alpha", 0.1), sce_beta=h.get("sce_beta", 1.0))
         return (w * per).sum() / w.sum()
 
     def step(self, batch: tuple[torch.Tensor, ...], stage: str) -> torch.Tensor:
-        x, valid, y = batch
+        x, valid, y, sample_weight = batch
         if stage == "train" and self.hparams["augment"]:
             x, valid = self.augment(x, valid)
         logits = self.net(x, valid)
-        loss = self._loss(logits, y)
+        loss = self._loss(logits, y, sample_weight)
         acc = (logits.argmax(-1) == y).float().mean()
         self.log(f"{stage}_loss", loss, prog_bar=True, on_epoch=True, on_step=False, batch_size=len(y), sync_dist=True)
         self.log(f"{stage}_acc", acc, prog_bar=stage == "val", on_epoch=True, on_step=False, batch_size=len(y), sync_dist=True)
@@ -236,7 +248,7 @@ class SampleDataModule(L.LightningDataModule):
 
     @staticmethod
     def tensors(s: PatchSet) -> TensorDataset:
-        return TensorDataset(torch.from_numpy(s.x), torch.from_numpy(s.valid), torch.from_numpy(s.target))
+        return TensorDataset(torch.from_numpy(s.x), torch.from_numpy(s.valid), torch.from_numpy(s.target), torch.from_numpy(s.weight_or_ones()))
 
     def train_dataloader(self) -> DataLoader:
         return DataLoader(self.tensors(self.samples.part("train")), batch_size=self.batch_size, shuffle=True, drop_last=True)
@@ -319,12 +331,25 @@ class TrainedModel:
     distilled: ConvRecurrentNet | None = None
 
 
-def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[TileStack] = (), labels: LabelSet | None = None) -> TrainedModel:
+@dataclass
+class Start:
+    """Weights a training starts from instead of random ones (a warm start, :mod:`plantation.model.transfer`)."""
+
+    #: The network spec to train (the parent's normalisation, this series' dates).
+    spec: dict[str, Any]
+    #: State dicts of the parent's members; member m starts from ``members[m % len(members)]``.
+    members: list[dict[str, torch.Tensor]]
+    #: State dict of the parent's distilled network (None: the distillation starts from member 0).
+    distilled: dict[str, torch.Tensor] | None = None
+
+
+def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[TileStack] = (), labels: LabelSet | None = None, start: Start | None = None) -> TrainedModel:
     """Train the ensemble on ``samples`` (split already assigned) and calibrate it.
 
     Checkpoints and logs go under ``folder``. ``labels`` (with inclusion
     probabilities) is needed by ``calibration.prior=inclusion``, the
-    region's ``stacks`` by ``bbse``.
+    region's ``stacks`` by ``bbse``. ``start``: weights to start from (a
+    warm start); the calibration is fitted afresh either way.
     """
     check_config(cfg)
     train, val = samples.part("train"), samples.part("val")
@@ -334,17 +359,29 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
         )
     n_out = samples.outcomes.size
     weights = outcome_weights(train.target, n_out, cfg.training.class_weighting)
-    spec = network_spec(samples, cfg)
+    spec = start.spec if start is not None else network_spec(samples, cfg)
     nets: list[ConvRecurrentNet] = []
     epochs: list[int] = []
-    start = time.perf_counter()
+    began = time.perf_counter()
     is_zero = True
     for m in range(cfg.network.members):
         L.seed_everything(cfg.training.seed * 1000 + m, workers=True, verbose=False)
         t = cfg.training
         task = ConversionTask(
-            spec, loss_weights=weights.tolist(), lr=t.lr, weight_decay=t.weight_decay, loss=t.loss, gce_q=t.gce_q, augment=t.augment, date_dropout=t.date_dropout, max_epochs=t.max_epochs
+            spec,
+            loss_weights=weights.tolist(),
+            lr=t.lr,
+            weight_decay=t.weight_decay,
+            loss=t.loss,
+            gce_q=t.gce_q,
+            sce_alpha=t.sce_alpha,
+            sce_beta=t.sce_beta,
+            augment=t.augment,
+            date_dropout=t.date_dropout,
+            max_epochs=t.max_epochs,
         )
+        if start is not None:
+            task.net.load_state_dict(carry_weights(start.members[m % len(start.members)], spec).state_dict())
         trainer = make_trainer(cfg.trainer, cfg.training.max_epochs, cfg.training.patience, folder, f"member{m}")
         with warnings.catch_warnings():
             # One small in-memory dataset: Lightning's advice to add loader workers does not apply.
@@ -362,9 +399,11 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
             task.load_state_dict(state)
         epochs.append(int(trainer.current_epoch))
         nets.append(task.net.eval())
-    train_seconds = time.perf_counter() - start
+    train_seconds = time.perf_counter() - began
 
-    prior = np.bincount(train.target, minlength=n_out).astype(np.float64)
+    # The sample's mix is that of the interpreters' labels (weight 1); rule labels (surrogate) are drawn at random and would blur it.
+    trusted = train.weight_or_ones() >= 1.0
+    prior = np.bincount(train.target[trusted] if trusted.any() else train.target, minlength=n_out).astype(np.float64)
     prior = np.maximum(prior, 0.5) / np.maximum(prior, 0.5).sum()
     cal = Calibration(temperature=1.0, loss_weights=weights.tolist(), train_prior=prior.tolist())
     val_logits = member_logits(nets, val)
@@ -408,7 +447,7 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
     student = None
     if cfg.distillation.enabled and len(nets) > 1:
         # After the calibration: the distilled epistemic term is that of the calibrated members.
-        student, metrics["distillation"] = distil(nets, cal, spec, samples, cfg, folder, stacks)
+        student, metrics["distillation"] = distil(nets, cal, spec, samples, cfg, folder, stacks, start=start.distilled if start is not None else None)
     return TrainedModel(nets, spec, cal, metrics, is_zero, student)
 
 
@@ -489,9 +528,20 @@ def unlabelled_probs(nets: list[ConvRecurrentNet], cal: Calibration, stacks: Seq
 
 
 def distil(
-    nets: list[ConvRecurrentNet], cal: Calibration, spec: dict[str, Any], samples: PatchSet, cfg: TrainConfig, folder: Path, stacks: Sequence[TileStack]
+    nets: list[ConvRecurrentNet],
+    cal: Calibration,
+    spec: dict[str, Any],
+    samples: PatchSet,
+    cfg: TrainConfig,
+    folder: Path,
+    stacks: Sequence[TileStack],
+    *,
+    start: dict[str, torch.Tensor] | None = None,
 ) -> tuple[ConvRecurrentNet | None, dict[str, Any]]:
-    """The network distilled from ``nets`` (None when it misses the tolerance) and its record for the card."""
+    """The network distilled from ``nets`` (None when it misses the tolerance) and its record for the card.
+
+    ``start``: a parent's distilled network to start from (a warm start) instead of member 0.
+    """
     dc = cfg.distillation
     train, val = samples.part("train"), samples.part("val")
     xs, vs = [train.x], [train.valid]
@@ -502,8 +552,10 @@ def distil(
     data = TensorDataset(torch.from_numpy(np.concatenate(xs)), torch.from_numpy(np.concatenate(vs)))
     held = TensorDataset(torch.from_numpy(val.x), torch.from_numpy(val.valid))
     L.seed_everything(cfg.training.seed * 1000 + 999, workers=True, verbose=False)
-    start = time.perf_counter()
+    began = time.perf_counter()
     task = DistillationTask(nets, cal, spec, lr=dc.lr, epistemic_weight=dc.epistemic_weight, max_epochs=dc.max_epochs, date_dropout=cfg.training.date_dropout, weight_decay=cfg.training.weight_decay)
+    if start is not None:
+        task.net.load_state_dict(carry_weights(start, {**spec, "epistemic": True}).state_dict())
     trainer = make_trainer(cfg.trainer, dc.max_epochs, dc.patience, folder, "distilled")
     with warnings.catch_warnings():
         warnings.filterwarnings("ignore", message=".*does not have many workers.*")
@@ -517,7 +569,7 @@ def distil(
     record: dict[str, Any] = {
         "inputs": {"training_patches": len(train), "unlabelled_pixels": len(data) - len(train)},
         "epochs": int(trainer.current_epoch),
-        "seconds": round(time.perf_counter() - start, 1),
+        "seconds": round(time.perf_counter() - began, 1),
         "tolerance": {"mean_tv_distance": dc.tolerance},
         "validation": agreement(nets, net, cal, torch.from_numpy(val.x), torch.from_numpy(val.valid)),
     }
@@ -592,16 +644,81 @@ def reliability_record(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchS
     return {"split": split, "n": len(s), "reliability": bins, "ece": round(calibration.expected_calibration_error(p, conv, n_bins), 4), "interval_coverage": cover}
 
 
-def load_region_samples(cfg: TrainConfig) -> tuple[list[TileStack], LabelSet, PatchSet]:
-    """Open the region and labels of ``cfg`` and cut the samples."""
+def load_region_samples(cfg: TrainConfig, *, inherit: dict[tuple[str, int, int], int] | None = None) -> tuple[list[TileStack], LabelSet, PatchSet]:
+    """Open the region and labels of ``cfg`` and cut the samples.
+
+    ``inherit``: a parent run's split of each point by (tile, row, col)
+    (:func:`plantation.model.runs.split_of_points`); those points keep it,
+    new ones take their block's (see :func:`plantation.model.patches.spatial_split`).
+    """
     if not cfg.region.labels.path:
         raise ConfigError(f"region {cfg.region.name!r}: labels.path is not set; training needs labelled points")
     stacks = open_region(cfg.region)
     labels = read_labels(
         cfg.region.labels.path, grids={s.name: s.grid for s in stacks}, years=[int(y) for y in stacks[0].years], csv_crs=cfg.region.labels.crs, inclusion_column=cfg.region.labels.inclusion_column
     )
-    samples = build_patches(stacks, labels, bands=cfg.region.bands, index_names=cfg.patches.indices, k=cfg.patches.neighbourhood, block=cfg.split.block, shares=cfg.split.shares, seed=cfg.split.seed)
+    samples = build_patches(
+        stacks, labels, bands=cfg.region.bands, index_names=cfg.patches.indices, k=cfg.patches.neighbourhood, block=cfg.split.block, shares=cfg.split.shares, seed=cfg.split.seed, inherit=inherit
+    )
+    if cfg.surrogate.pixels > 0:
+        samples = samples.concat(surrogate_samples(stacks, labels, samples, cfg))
     return stacks, labels, samples
+
+
+def _pixel_xy(stacks: Sequence[TileStack], tile: np.ndarray, row: np.ndarray, col: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Pixel-centre coordinates (imagery CRS) of (tile, row, col) triples."""
+    x, y = np.zeros(len(tile)), np.zeros(len(tile))
+    for st in stacks:
+        m = np.asarray(tile) == st.name
+        x[m], y[m] = st.grid.transform * (np.asarray(col)[m] + 0.5, np.asarray(row)[m] + 0.5)
+    return x, y
+
+
+def surrogate_samples(stacks: Sequence[TileStack], labels: LabelSet, samples: PatchSet, cfg: TrainConfig) -> PatchSet:
+    """Training samples of ``surrogate.pixels`` pixels labelled by the index-drop rule, weighing ``surrogate.weight`` each.
+
+    They go to the training split only, never on a labelled pixel, and a
+    pixel whose neighbourhood touches a validation or test point's is left
+    out, so the held-out points stay unseen.
+
+    Raises:
+        ConfigError: the rule labelled no pixel, or a weight outside (0, 1].
+    """
+    sc = cfg.surrogate
+    if not 0 < sc.weight <= 1:
+        raise ConfigError(f"surrogate.weight: {sc.weight!r} must be in (0, 1] (an interpreter's label weighs 1)")
+    pts = labels.points
+    taken = {(str(t), int(r), int(c)) for t, r, c in zip(pts["tile"], pts["row"], pts["col"], strict=True)}
+    table = draw_rule_labels(stacks, cfg.region.bands, n=sc.pixels, seed=sc.seed, exclude=taken)
+    if table.empty:
+        raise ConfigError(f"surrogate.pixels: the rule labelled none of {sc.pixels} pixels drawn (it abstains where a pixel is not clearly forest at the start)")
+    x, y = _pixel_xy(stacks, table["tile"].to_numpy(), table["row"].to_numpy(), table["col"].to_numpy())
+    points = pd.DataFrame(
+        {
+            "label": table["label"].to_numpy(),
+            "code": table["label"].map(LABEL_CODES).to_numpy(dtype=np.uint8),
+            "onset_year": table["onset_year"].to_numpy(dtype=np.int16),
+            "tile": table["tile"].astype(str).to_numpy(),
+            "row": table["row"].to_numpy(dtype=np.int64),
+            "col": table["col"].to_numpy(dtype=np.int64),
+            "x": x,
+            "y": y,
+            "source": np.arange(len(table)) + 1,
+        }
+    )
+    rule = LabelSet(points=points, fingerprint="index-drop rule", path=Path("index-drop rule"))
+    keep_train = {(t, int(r), int(c)): 0 for t, r, c in zip(points["tile"], points["row"], points["col"], strict=True)}
+    k = cfg.patches.neighbourhood
+    sur = build_patches(stacks, rule, bands=cfg.region.bands, index_names=cfg.patches.indices, k=k, block=cfg.split.block, shares=cfg.split.shares, seed=cfg.split.seed, inherit=keep_train)
+    res = abs(stacks[0].grid.transform.a)
+    held = samples.split > 0
+    hx, hy = _pixel_xy(stacks, samples.tile[held], samples.row[held], samples.col[held])
+    sx, sy = _pixel_xy(stacks, sur.tile, sur.row, sur.col)
+    clear = ~windows_touch(sx / res, sy / res, hx / res, hy / res, k)
+    sur = sur.subset(clear)
+    sur.weight = np.full(len(sur), sc.weight, np.float32)
+    log.info("surrogate labels: %d pixels labelled by the rule, %d kept for training", len(table), len(sur))
+    return sur
 
 
 def model_card(cfg: TrainConfig, samples: PatchSet, trained: TrainedModel, labels: LabelSet) -> ModelCard:
@@ -623,14 +740,37 @@ def model_card(cfg: TrainConfig, samples: PatchSet, trained: TrainedModel, label
     )
 
 
-def run(cfg: TrainConfig, resolved_config: str | None = None) -> Path:
+def sample_splits(samples: PatchSet) -> dict[tuple[str, int, int], int]:
+    """(tile, row, col) → split code of every sample."""
+    return {(str(t), int(r), int(c)): int(s) for t, r, c, s in zip(samples.tile, samples.row, samples.col, samples.split, strict=True)}
+
+
+def run(
+    cfg: TrainConfig,
+    resolved_config: str | None = None,
+    *,
+    start: Start | None = None,
+    inherit: dict[tuple[str, int, int], int] | None = None,
+    lineage: dict[str, Any] | None = None,
+    after_fit: Callable[[PatchSet, TrainedModel], dict[str, Any]] | None = None,
+    loaded: tuple[list[TileStack], LabelSet, PatchSet] | None = None,
+) -> Path:
     """Train on a region and write the run folder ``<out_dir>/<run_name>``.
 
     The folder holds ``config.yaml`` (resolved), ``labels.json`` (fingerprint,
-    counts, split sizes), ``metrics.json``, ``checkpoints/member<i>.ckpt``,
-    ``logs/`` (CSV per member) and the artefact ``model/`` (see
-    :mod:`plantation.model.artefact`). It is built as ``<run_name>.partial`` and
-    renamed when complete; an earlier run of the same name is replaced.
+    counts, split sizes), ``points.csv`` and ``lineage.json`` (see
+    :mod:`plantation.model.runs`), ``metrics.json``,
+    ``checkpoints/member<i>.ckpt``, ``logs/`` (CSV per member) and the
+    artefact ``model/`` (see :mod:`plantation.model.artefact`). It is built as
+    ``<run_name>.partial`` and renamed when complete; an earlier run of the
+    same name is replaced.
+
+    A retrain passes ``start`` (weights to start from), ``inherit`` (the
+    parent's splits), ``lineage`` (fields of ``lineage.json`` besides the
+    defaults of a first run) and ``after_fit``, called with the samples and
+    the trained model before anything is written; what it returns is added
+    to ``lineage.json``. ``loaded``: the region, labels and samples when the
+    caller has already read them.
     """
     check_config(cfg)
     if cfg.training.threads > 0:
@@ -638,7 +778,7 @@ def run(cfg: TrainConfig, resolved_config: str | None = None) -> Path:
     elif cfg.trainer.devices > 1:
         # Processes on one machine share its cores (see DEVELOPERS.md).
         torch.set_num_threads(max(1, (os.cpu_count() or 1) // cfg.trainer.devices))
-    stacks, labels, samples = load_region_samples(cfg)
+    stacks, labels, samples = loaded if loaded is not None else load_region_samples(cfg, inherit=inherit)
     final = Path(cfg.out_dir) / cfg.run_name
     work = final.with_name(final.name + ".partial")
     # Processes started by DDP re-run this script (LOCAL_RANK / NODE_RANK > 0):
@@ -647,13 +787,19 @@ def run(cfg: TrainConfig, resolved_config: str | None = None) -> Path:
     if rank == 0 and work.exists():
         shutil.rmtree(work)
     work.mkdir(parents=True, exist_ok=True)
-    trained = fit(samples, cfg, work, stacks=stacks, labels=labels)
+    trained = fit(samples, cfg, work, stacks=stacks, labels=labels, start=start)
     if not trained.is_global_zero:
         return final
+    record = runs.lineage_record(run=final.name, start="afresh", labels_fingerprint=labels.fingerprint, years=list(samples.outcomes.years))
+    record.update(lineage or {})
+    if after_fit is not None:
+        record.update(after_fit(samples, trained))
     split_counts = {name: int((samples.split == i).sum()) for i, name in enumerate(SPLITS)}
     split_counts["dropped_buffer"] = int((samples.split == -1).sum())
-    (work / "labels.json").write_text(json.dumps({"path": str(labels.path), "fingerprint": labels.fingerprint, "counts": labels.counts(), "split": split_counts}, indent=2))
-    (work / "metrics.json").write_text(json.dumps(trained.metrics, indent=2))
+    (work / runs.LABELS).write_text(json.dumps({"path": str(labels.path), "fingerprint": labels.fingerprint, "counts": labels.counts(), "split": split_counts}, indent=2))
+    (work / runs.METRICS).write_text(json.dumps(trained.metrics, indent=2))
+    runs.write_points(work, labels.points, sample_splits(samples))
+    runs.write_lineage(work, record)
     if resolved_config is not None:
         (work / "config.yaml").write_text(resolved_config)
     save_artefact(work / "model", model_card(cfg, samples, trained, labels), trained.members, trained.distilled)
