@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import pandas as pd
 import pytest
 import torch
@@ -91,7 +93,7 @@ def test_runs_folder_missing_is_one_clear_error(tmp_path):
 def test_a_short_retrain_on_the_toy_region_extends_a_year_and_records_its_parent(tmp_path, capsys):
     from plantation.cli import main
 
-    labels = pd.read_csv("toy_tiles/labels.csv")
+    labels = pd.read_csv(Path(__file__).resolve().parents[1] / "toy_tiles" / "labels.csv")
     old = labels.copy()
     late = old["onset_year"] == 2024  # before the 2024 imagery, an interpreter saw forest there
     old.loc[late, "label"], old.loc[late, "onset_year"] = "stable_forest", None
