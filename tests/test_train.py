@@ -124,12 +124,13 @@ def test_same_config_and_seed_reproduce_the_metrics(tmp_path):
 def test_ddp_on_two_cpu_processes_trains_and_exports(tmp_path):
     res = train(tmp_path, "trainer=ddp_cpu", "network.members=1", "training.max_epochs=1", "trainer.enable_progress_bar=false")
     assert res.returncode == 0, res.stderr[-3000:]
-    # Two processes share each epoch: 2,096 training samples in batches of 64
-    # make 32 steps on one process and 16 per process under DDP.
+    # Two processes share each epoch: about 2,050 training samples in batches
+    # of 64 make about 32 steps on one process and 15 or 16 per process under
+    # DDP (the logged step index is one less); one process alone would log ~31.
     import pandas as pd
 
     log = pd.read_csv(tmp_path / "run" / "logs" / "member0" / "metrics.csv")
-    assert 15 <= int(log["step"].max()) <= 16
+    assert 14 <= int(log["step"].max()) <= 16
     art = artefact.load(tmp_path / "run" / "model")
     assert art.card.members == 1
     assert not list(tmp_path.glob("*.partial"))
