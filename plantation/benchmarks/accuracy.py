@@ -356,16 +356,21 @@ def simulated_held_out(cfg: ComparisonConfig) -> HeldOut:
     return HeldOut(train_config(cfg), eval_region_config(cfg.region, cfg.eval_sim, folder), cfg.eval_sim)
 
 
-def semi_real_held_out(cfg: ComparisonConfig) -> HeldOut:
-    """Train on a semi-real region built from ``train_seed`` and its labels; score on another built from ``eval_seed``."""
-    sr = cfg.semi_real
+def semi_real_regions(sr: SemiRealBench, base: RegionConfig, progress: bool) -> dict[str, tuple[SemiRealConfig, RegionConfig]]:
+    """The semi-real training (``train``) and held-out (``eval``) regions, built into ``sr.dir`` when absent, each with its labels file."""
     built = {}
     for role, seed in (("train", sr.train_seed), ("eval", sr.eval_seed)):
         shape = {"size": sr.size, "years": sr.years, "dates_per_year": sr.dates_per_year, "n_labels": sr.n_labels, "conversion_oversampling": sr.conversion_oversampling}
         scfg = SemiRealConfig(name=f"semireal_{role}", seed=seed, **shape)
-        folder = ensure_semireal_region(scfg, Path(sr.dir) / role, progress=cfg.progress)
-        region = region_config(scfg, folder, base=cfg.region)
+        folder = ensure_semireal_region(scfg, Path(sr.dir) / role, progress=progress)
+        region = region_config(scfg, folder, base=base)
         built[role] = (scfg, replace(region, labels=LabelsConfig(path=str(folder / "labels.csv"), crs="EPSG:4326")))
+    return built
+
+
+def semi_real_held_out(cfg: ComparisonConfig) -> HeldOut:
+    """Train on a semi-real region built from ``train_seed`` and its labels; score on another built from ``eval_seed``."""
+    built = semi_real_regions(cfg.semi_real, cfg.region, cfg.progress)
     tc = train_config(cfg)
     return HeldOut(replace(tc, region=built["train"][1]), built["eval"][1], semireal_simulation(built["eval"][0]))
 

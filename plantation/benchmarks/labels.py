@@ -47,9 +47,9 @@ import pandas as pd
 import rasterio
 import torch
 
-from plantation.benchmarks.accuracy import SemiRealBench
+from plantation.benchmarks.accuracy import SemiRealBench, semi_real_regions
 from plantation.benchmarks.scores import map_scores
-from plantation.benchmarks.semireal import SemiRealConfig, ensure_semireal_region, label_shares, region_config
+from plantation.benchmarks.semireal import label_shares
 from plantation.errors import ConfigError
 from plantation.imagery.config import LabelsConfig, RegionConfig
 from plantation.imagery.region import TileStack, open_region
@@ -109,13 +109,7 @@ class Regions:
 
 def regions(cfg: LabelsBenchConfig) -> Regions:
     """The semi-real training and held-out regions (built into the cache when absent) and the held-out truth."""
-    sr = cfg.semi_real
-    built = {}
-    for role, seed in (("train", sr.train_seed), ("eval", sr.eval_seed)):
-        shape = {"size": sr.size, "years": sr.years, "dates_per_year": sr.dates_per_year, "n_labels": sr.n_labels, "conversion_oversampling": sr.conversion_oversampling}
-        scfg = SemiRealConfig(name=f"semireal_{role}", seed=seed, **shape)
-        folder = ensure_semireal_region(scfg, Path(sr.dir) / role, progress=cfg.progress)
-        built[role] = region_config(scfg, folder, base=cfg.region)
+    built = {role: region for role, (_, region) in semi_real_regions(cfg.semi_real, cfg.region, cfg.progress).items()}
     ev = built["eval"]
     stacks = open_region(ev)
     labs, yrs = [], []
