@@ -38,7 +38,7 @@ from __future__ import annotations
 import json
 import tempfile
 import time
-from dataclasses import dataclass, field, fields, replace
+from dataclasses import asdict, dataclass, field, fields, replace
 from pathlib import Path
 from typing import Any
 
@@ -61,6 +61,7 @@ from plantation.model.transfer import transfer_spec
 from plantation.records import write_object
 from plantation.reference.labels import LABEL_NAMES
 from plantation.reference.rule import draw_rule_labels
+from plantation.retraining.retrain import RetrainSettings, fine_tune
 from plantation.retraining.suggest import group_names, score_pixels, select
 
 PARTS: tuple[str, ...] = ("active", "noise", "surrogate", "warm", "new_year")
@@ -72,6 +73,7 @@ class LabelsBenchConfig(TrainConfig):
     """Schema of ``configs/benchmark_labels.yaml``: the training config plus the benchmark's design."""
 
     semi_real: SemiRealBench = field(default_factory=SemiRealBench)
+    retrain: RetrainSettings = field(default_factory=RetrainSettings)
     parts: list[str] = field(default_factory=lambda: list(PARTS))
     seeds: list[int] = field(default_factory=lambda: [0, 1, 2])
     pool: int = 5000
@@ -170,8 +172,21 @@ class Trained:
     splits: dict[tuple[str, int, int], int]
 
 
-def train(tc: TrainConfig, table: pd.DataFrame, *, start_from: Trained | None = None, inherit: dict[tuple[str, int, int], int] | None = None) -> Trained:
-    """Train on ``table``'s labels (from ``start_from``'s weights when given); the model in memory and the seconds taken."""
+def train(
+    tc: TrainConfig,
+    table: pd.DataFrame,
+    *,
+    start_from: Trained | None = None,
+    inherit: dict[tuple[str, int, int], int] | None = None,
+    settings: RetrainSettings | None = None,
+) -> Trained:
+    """Train on ``table``'s labels; the model in memory and the seconds taken.
+
+    With ``start_from``: a warm start from its weights (extended to any new
+    year), fine-tuned as ``plantation retrain`` does with ``settings``.
+    """
+    if start_from is not None:
+        tc = fine_tune(tc, settings or RetrainSettings())
     with tempfile.TemporaryDirectory(prefix="plantation-labels-") as tmp:
         tcl = with_labels(tc, table, Path(tmp))
         stacks, labels, samples = load_region_samples(tcl, inherit=inherit)
@@ -267,7 +282,7 @@ def active_learning(cfg: LabelsBenchConfig, tc: TrainConfig, reg: Regions, pool:
                     curve[k].append(sc[k])
                 log.append(f"seed {seed} {strategy} round {r}: {int(have.sum())} labels {sc} ({model.seconds:.0f} s)")
                 if strategy == "random" and r == cfg.rounds:
-                    w = train(tcs, pool[have], start_from=parent, inherit=parent.splits)
+                    w = train(tcs, pool[have], start_from=parent, inherit=parent.splits, settings=cfg.retrain)
                     ws = score(w.art, reg, cfg)
                     warm.append(
                         {
@@ -393,7 +408,7 @@ def new_year_part(cfg: LabelsBenchConfig, tc: TrainConfig, reg: Regions, pool: p
         tcs = replace(tc, training=replace(tc.training, seed=seed))
         old_tc = replace(tcs, region=replace(tcs.region, end_date=f"{last - 1}-12-31"))
         parent = train(old_tc, then)
-        ext = train(tcs, now, start_from=parent, inherit=parent.splits)
+        ext = train(tcs, now, start_from=parent, inherit=parent.splits, settings=cfg.retrain)
         fresh = train(tcs, now)
         e, f = score(ext.art, reg, cfg), score(fresh.art, reg, cfg)
         per.append(
@@ -428,21 +443,30 @@ def run(cfg: LabelsBenchConfig) -> dict[str, Any]:
     started = time.perf_counter()
     doc: dict[str, Any] = {
         "region": {"train": reg.train.name, "held_out": reg.eval.name, "pool": cfg.pool, "pool_counts": {k: int(v) for k, v in pool["label"].value_counts().items()}},
-        "settings": {"members": tc.network.members, "distillation": tc.distillation.enabled, "max_epochs": tc.training.max_epochs, "seeds": cfg.seeds, "threads": torch.get_num_threads()},
+        "settings": {
+            "members": tc.network.members,
+            "distillation": tc.distillation.enabled,
+            "max_epochs": tc.training.max_epochs,
+            "seeds": cfg.seeds,
+            "threads": torch.get_num_threads(),
+            "warm_start": asdict(cfg.retrain),
+        },
     }
-    if "active" in cfg.parts:
-        al, warm = active_learning(cfg, tc, reg, pool, log)
-        doc |= al
-        doc["warm_start"] = warm
-    if "noise" in cfg.parts:
-        doc["noise"] = noise_part(cfg, tc, reg, pool, log)
-    if "surrogate" in cfg.parts:
-        doc["surrogate"] = surrogate_part(cfg, tc, reg, pool, log)
-    if "new_year" in cfg.parts:
-        doc["new_year"] = new_year_part(cfg, tc, reg, pool, log)
-    doc["seconds"] = round(time.perf_counter() - started, 1)
     doc["log"] = log
-    write_object(doc, cfg.out)
+    doc["parts_done"] = []
+    for part in PARTS:
+        if part not in cfg.parts:
+            continue
+        if part == "active":
+            al, warm = active_learning(cfg, tc, reg, pool, log)
+            doc |= al
+            doc["warm_start"] = warm
+        else:
+            doc[part] = {"noise": noise_part, "surrogate": surrogate_part, "new_year": new_year_part}[part](cfg, tc, reg, pool, log)
+        doc["seconds"] = round(time.perf_counter() - started, 1)
+        # Written after every part (an hour's run is not lost to a late failure); "parts_done" says how far it got.
+        doc["parts_done"].append(part)
+        write_object(doc, cfg.out)
     figure(doc, Path(cfg.plot))
     return doc
 

@@ -182,14 +182,16 @@ def training_config(cfg: RetrainConfig, *, warm: bool) -> TrainConfig:
         tc = replace(tc, region=replace(tc.region, labels=replace(tc.region.labels, path=cfg.labels)))
     if not tc.run_name:
         tc = replace(tc, run_name=next_run_name(Path(cfg.parent).name))
-    if warm:
-        r = cfg.retrain
-        tc = replace(
-            tc,
-            training=replace(tc.training, max_epochs=r.max_epochs, patience=r.patience, lr=r.lr),
-            distillation=replace(tc.distillation, max_epochs=min(tc.distillation.max_epochs, r.distillation_max_epochs)),
-        )
-    return tc
+    return fine_tune(tc, cfg.retrain) if warm else tc
+
+
+def fine_tune(tc: TrainConfig, r: RetrainSettings) -> TrainConfig:
+    """``tc`` with the warm start's short fine-tune: ``r``'s epochs, patience and learning rate."""
+    return replace(
+        tc,
+        training=replace(tc.training, max_epochs=r.max_epochs, patience=r.patience, lr=r.lr),
+        distillation=replace(tc.distillation, max_epochs=min(tc.distillation.max_epochs, r.distillation_max_epochs)),
+    )
 
 
 def run(cfg: RetrainConfig, resolved_config: str | None = None, echo: Callable[[str], None] = print) -> RetrainResult:
