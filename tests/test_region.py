@@ -92,6 +92,63 @@ def test_cube_netcdf_and_zarr_match_geotiff_folder(make_region, tiny_values, tmp
         assert [str(d) for d in st.dates] == DATES
 
 
+# Sentinel-2 Level-2A scene classification (SCL) classes, ESA's published table
+# (values as in ../shared/reference/check_values.md): 0 no data, 1 saturated or
+# defective, 3 cloud shadow, 4 vegetation, 5 not vegetated, 8 cloud medium
+# probability, 9 cloud high probability, 10 thin cirrus, 11 snow or ice.
+SCL_INVALID = [0, 1, 3, 8, 9, 10, 11]
+
+
+def test_categorical_qa_masks_scene_classification_classes_not_bits(make_region, tiny_values, tmp_path):
+    qa = np.full((5, 8, 8), 4, np.int16)  # vegetation everywhere
+    qa[0, 1, 1] = 9  # cloud high probability: bit 0 and bit 3 set, but it is the class that matters
+    qa[1, 2, 2] = 3  # cloud shadow
+    qa[2, 3, 3] = 10  # thin cirrus
+    qa[3, 4, 4] = 5  # not vegetated: valid, though bits 0 and 2 are set
+    qa[4, 5, 5] = 6  # water: valid (left to the model), bits 1 and 2 set
+    region = make_region(qa=qa, mask=MaskConfig(band=7, invalid_bits=[], invalid_values=SCL_INVALID))
+    st = open_tile(region.tiles[0], region)
+    want = np.ones((5, 8, 8), bool)
+    want[0, 1, 1] = want[1, 2, 2] = want[2, 3, 3] = False
+    lazy = st.valid.values
+    np.testing.assert_array_equal(lazy, want)
+    refl, valid = st.read(0, 0, 8, 8)  # the windowed reader mapping uses
+    np.testing.assert_array_equal(valid, want)
+    assert np.isnan(refl[0, :, 1, 1]).all() and not np.isnan(refl[3, :, 4, 4]).any()
+    # Read as bit flags, vegetation (4 = bit 2) would be masked: classes must be compared as values.
+    bits = make_region(qa=qa, mask=MaskConfig(band=7, invalid_bits=[2]))
+    assert not open_tile(bits.tiles[0], bits).valid.values[0, 0, 0]
+    # A cube's QA variable follows the same rule.
+    ys = TRANSFORM.f + TRANSFORM.e * (np.arange(8) + 0.5)
+    xs = TRANSFORM.c + TRANSFORM.a * (np.arange(8) + 0.5)
+    times = np.array(DATES, dtype="datetime64[ns]")
+    ds = xr.Dataset(
+        {
+            "reflectance": (("time", "band", "y", "x"), tiny_values),
+            "scl": (("time", "y", "x"), qa),
+        },
+        coords={"time": times, "band": BANDS, "y": ys, "x": xs},
+    ).rio.write_crs(CRS)
+    path = tmp_path / "scl.nc"
+    ds.to_netcdf(path)
+    cube = RegionConfig(
+        name="c",
+        format="cube",
+        tiles=[TileConfig(name="t1", path=str(path))],
+        bands=BANDS,
+        nodata=-9999,
+        mask=MaskConfig(variable="scl", invalid_bits=[], invalid_values=SCL_INVALID),
+        scaling=[ScalingRule(None, 1e-4, 0.0)],
+    )
+    np.testing.assert_array_equal(open_tile(cube.tiles[0], cube).valid.values, want)
+
+
+def test_categorical_qa_values_must_be_whole_numbers(make_region):
+    region = make_region(mask=MaskConfig(band=7, invalid_bits=[], invalid_values=[9.5]))  # type: ignore[list-item]
+    with pytest.raises(ConfigError, match=r"region\.mask\.invalid_values: 9\.5 is not a whole number"):
+        open_tile(region.tiles[0], region)
+
+
 # ---------------------------------------------------------------- bad input
 
 

@@ -40,12 +40,23 @@ class MaskConfig:
     For a GeoTIFF folder, ``band`` is the 1-based band number of the QA band
     inside every file (after the reflectance bands). For a cube, ``variable``
     names a (time, y, x) integer variable. A pixel is invalid when any bit in
-    ``invalid_bits`` (0 = least significant) is set.
+    ``invalid_bits`` (0 = least significant) is set, or when its QA value is
+    one of ``invalid_values``: the second is for QA layers whose values are
+    classes rather than bit flags (a scene classification, where cloud is
+    the value 9, not bit 9).
     """
 
     band: int | None = None
     variable: str | None = None
     invalid_bits: list[int] = field(default_factory=lambda: [0, 1, 2])
+    invalid_values: list[int] = field(default_factory=list)
+
+    def content_key(self) -> dict[str, Any]:
+        """The rules as they decide which pixels are read (for a map's content key): ``invalid_values`` only when given, so maps made before it existed keep their key."""
+        out = asdict(self)
+        if not out["invalid_values"]:
+            del out["invalid_values"]
+        return out
 
 
 @dataclass

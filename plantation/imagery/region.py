@@ -111,7 +111,8 @@ class TileStack:
         reflectance: float32 DataArray, dims (time, band, y, x), unitless
             surface reflectance; NaN where ``valid`` is False.
         valid: bool DataArray, dims (time, y, x): True where every band has
-            data and no QA bit in ``invalid_bits`` is set.
+            data, no QA bit in ``invalid_bits`` is set and the QA value
+            is not one of ``invalid_values``.
         grid: the tile's grid (same for every date).
     """
 
@@ -153,11 +154,22 @@ class WindowReader:
     shared between threads).
     """
 
-    def __init__(self, files: Sequence[Path], n_bands: int, qa_band: int | None, invalid_bits: Sequence[int], nodata: float | None, scale: np.ndarray, offset: np.ndarray) -> None:
+    def __init__(
+        self,
+        files: Sequence[Path],
+        n_bands: int,
+        qa_band: int | None,
+        invalid_bits: Sequence[int],
+        nodata: float | None,
+        scale: np.ndarray,
+        offset: np.ndarray,
+        invalid_values: Sequence[int] = (),
+    ) -> None:
         self.files = [str(f) for f in files]
         self.n_bands = n_bands
         self.qa_band = qa_band
-        self.qa_mask = sum(1 << int(b) for b in invalid_bits)
+        self.qa_mask = qa_bit_mask(invalid_bits)
+        self.qa_values = qa_value_list(invalid_values)
         self.nodata = nodata
         self.scale = np.asarray(scale, np.float32)
         self.offset = np.asarray(offset, np.float32)
@@ -202,7 +214,10 @@ class WindowReader:
             if np.issubdtype(data.dtype, np.floating):
                 bad |= np.isnan(data).any(0)
             if self.qa_band:
-                bad |= (raw[self.n_bands].astype(np.int64) & self.qa_mask) != 0
+                qa = raw[self.n_bands].astype(np.int64)
+                bad |= (qa & self.qa_mask) != 0
+                if len(self.qa_values):
+                    bad |= np.isin(qa, self.qa_values)
             out = refl[i]
             np.multiply(data, self.scale[i], out=out, casting="unsafe")
             out += self.offset[i]
@@ -265,14 +280,42 @@ def scaling_for_dates(dates: Sequence[date] | np.ndarray, rules: Sequence[Scalin
     return scale, offset
 
 
-def qa_invalid(qa: xr.DataArray, bits: Sequence[int]) -> xr.DataArray:
-    """True where any of ``bits`` is set in an integer QA array."""
+def qa_bit_mask(bits: Sequence[int]) -> int:
+    """The integer with ``bits`` set (0 = least significant).
+
+    Raises:
+        ConfigError: a bit outside 0..31.
+    """
     mask = 0
     for b in bits:
         if not 0 <= int(b) < 32:
             raise ConfigError(f"region.mask.invalid_bits: bit {b} is outside 0..31")
         mask |= 1 << int(b)
-    return (qa.astype(np.int64) & mask) != 0
+    return mask
+
+
+def qa_value_list(values: Sequence[int]) -> np.ndarray:
+    """The QA class values that mark a pixel invalid, as int64.
+
+    Raises:
+        ConfigError: a value that is not a whole number (QA classes are integers).
+    """
+    out = []
+    for v in values:
+        if isinstance(v, bool) or not float(v).is_integer():
+            raise ConfigError(f"region.mask.invalid_values: {v!r} is not a whole number; QA classes are integer values")
+        out.append(int(v))
+    return np.asarray(sorted(set(out)), dtype=np.int64)
+
+
+def qa_invalid(qa: xr.DataArray, bits: Sequence[int], values: Sequence[int] = ()) -> xr.DataArray:
+    """True where any of ``bits`` is set in an integer QA array, or its value is one of ``values`` (QA classes)."""
+    q = qa.astype(np.int64)
+    invalid = (q & qa_bit_mask(bits)) != 0
+    vals = qa_value_list(values)
+    if len(vals):
+        invalid = invalid | q.isin(vals)
+    return invalid
 
 
 def _grid_of(src: rasterio.io.DatasetReader, path: Path) -> Grid:
@@ -355,11 +398,20 @@ def _open_geotiff_folder(tile: TileConfig, region: RegionConfig) -> TileStack:
     if np.issubdtype(raw.dtype, np.floating):
         invalid = invalid | raw.isnull().any("band")
     if qa_band:
-        invalid = invalid | qa_invalid(cube.isel(band=qa_band - 1), region.mask.invalid_bits)
+        invalid = invalid | qa_invalid(cube.isel(band=qa_band - 1), region.mask.invalid_bits, region.mask.invalid_values)
     invalid = invalid.drop_vars("band", errors="ignore")
     stack = _finish(tile.name, raw.drop_vars("band"), invalid, dates, region, grid)
     scale, offset = scaling_for_dates(dates, region.scaling)
-    stack.reader = WindowReader([by_date[d] for d in dates], n_refl, qa_band, region.mask.invalid_bits if qa_band else [], nodata, scale, offset)
+    stack.reader = WindowReader(
+        [by_date[d] for d in dates],
+        n_refl,
+        qa_band,
+        region.mask.invalid_bits if qa_band else [],
+        nodata,
+        scale,
+        offset,
+        invalid_values=region.mask.invalid_values if qa_band else [],
+    )
     return stack
 
 
@@ -416,7 +468,7 @@ def _open_cube(tile: TileConfig, region: RegionConfig) -> TileStack:
     if region.mask.variable:
         if region.mask.variable not in ds:
             raise RegionError(f"{path}: no QA variable {region.mask.variable!r}")
-        invalid = invalid | qa_invalid(ds[region.mask.variable].sortby("time").sel(time=da["time"]), region.mask.invalid_bits)
+        invalid = invalid | qa_invalid(ds[region.mask.variable].sortby("time").sel(time=da["time"]), region.mask.invalid_bits, region.mask.invalid_values)
     keep = ["time", "y", "x"]
     invalid = invalid.drop_vars([c for c in invalid.coords if c not in keep])
     raw = da.drop_vars([c for c in da.coords if c not in keep])

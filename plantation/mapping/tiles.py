@@ -109,7 +109,7 @@ def input_signature(stack: TileStack, tile: TileConfig) -> list[list[Any]]:
 def tile_key(model_digest: str, settings: Settings, region: RegionConfig, signature: list[list[Any]]) -> str:
     """Digest of everything that decides a tile's content."""
     blob = json.dumps(
-        {"model": model_digest, "settings": settings.content_key(), "scaling": [asdict(r) for r in region.scaling], "mask": asdict(region.mask), "nodata": region.nodata, "inputs": signature},
+        {"model": model_digest, "settings": settings.content_key(), "scaling": [asdict(r) for r in region.scaling], "mask": region.mask.content_key(), "nodata": region.nodata, "inputs": signature},
         sort_keys=True,
     )
     return hashlib.sha256(blob.encode()).hexdigest()

@@ -757,6 +757,11 @@ def render(starter: Starter, dest_folder: str | Path) -> str:
     else:
         bits.append("Unused without a QA band.")
     out += _comment(bits, 2) + [f"  invalid_bits: [{', '.join(str(b) for b in r.mask.invalid_bits)}]"]
+    values = [
+        "A pixel is also invalid when its QA value is one of these: for a QA layer whose values are classes, not bit flags",
+        "(e.g. Sentinel-2 L2A SCL: 0, 1, 3, 8, 9, 10, 11; then set invalid_bits: []). Empty: bits only.",
+    ]
+    out += _comment(values, 2) + [f"  invalid_values: [{', '.join(str(v) for v in r.mask.invalid_values)}]"]
     out += _comment(["reflectance = stored value x scale + offset; the rule with the latest start on or before a date applies (start: null = from the first date).", *n["scaling"]])
     out += ["scaling:"] + [f"  - {_flow({'start': s.start, 'scale': s.scale, 'offset': s.offset})}" for s in r.scaling]
     out += _comment("Reference points labelled by interpreters: what the model learns from and is checked against.") + ["labels:"]
