@@ -25,10 +25,25 @@ import pytest
 import rasterio
 import shapely
 from affine import Affine
+from pyproj import CRS as ProjCRS
 from pyproj import Geod, Proj, Transformer
 
 from plantation.errors import ConfigError, FileFormatError, InputNotFoundError, PlantationError
-from plantation.farmplots.cutoff import COLUMNS, Cutoff, PlotsConfig, VerdictConfig, comonotone_range_ha, parse_cutoff, read_plots_json, run, verdict
+from plantation.farmplots.cutoff import (
+    KIND,
+    Cutoff,
+    PlotRow,
+    PlotsConfig,
+    VerdictConfig,
+    comonotone_range_ha,
+    parse_cutoff,
+    read_plots_json,
+    run,
+    sort_rows,
+    table_columns,
+    verdict,
+    write_outputs,
+)
 from plantation.mapping.folder import FORMAT, LAYERS, NODATA
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -50,10 +65,12 @@ def pixel_box(r0: float, c0: float, r1: float, c1: float) -> shapely.Polygon:
     return shapely.box(min(xa, xb), min(ya, yb), max(xa, xb), max(ya, yb))
 
 
-def write_tile(folder: Path, name: str = "t01", *, cls=None, onset=None, p_after=None, clear=None, transform: Affine = TRANSFORM, shape=(10, 10), cutoff_year: int = 2020) -> Path:
+def write_tile(folder: Path, name: str = "t01", *, cls=None, onset=None, p_after=None, clear=None, transform: Affine = TRANSFORM, shape=(10, 10), cutoff_year: int = 2020, years=None) -> Path:
     """A map tile like scripts/map.py writes (8 int16 bands, p_* stored × 10000 with scale 1e-4), added to ``folder/manifest.json``.
 
-    ``p_after`` is given as stored integers; ``cls`` may hold NODATA.
+    ``p_after`` is given as stored integers; ``cls`` may hold NODATA;
+    ``years``: the onset years the map can hold, recorded as the manifest's
+    ``converted_ha`` keys as the mapper does (None: none recorded).
     """
     folder.mkdir(parents=True, exist_ok=True)
     h, w = shape
@@ -77,6 +94,8 @@ def write_tile(folder: Path, name: str = "t01", *, cls=None, onset=None, p_after
     man = folder / "manifest.json"
     doc = json.loads(man.read_text()) if man.exists() else {"format": FORMAT, "producer": "test", "tiles": {}}
     doc["tiles"][name] = {"file": path.name, "sha256": hashlib.sha256(path.read_bytes()).hexdigest(), "tile": name}
+    if years is not None:
+        doc["tiles"][name]["converted_ha"] = {str(y): float(((cls == 2) & (onset == y)).sum()) * 0.09 for y in years}
     man.write_text(json.dumps(doc))
     return folder
 
@@ -313,11 +332,18 @@ def test_each_bad_plot_gets_its_row_and_message(tmp_path):
         (6, "pt", "not_a_polygon"),
         (7, None, "missing_id"),
     ]
+    # The tables: the measured plot first, then the problem rows by id (the one without an id last).
     table = pd.read_csv(tmp_path / "out" / "plots.csv", keep_default_na=False)
-    assert table["status"].tolist() == status and table.loc[2, "area_ha"] == ""
-    # Problem rows keep their geometry where they had one.
+    assert table["id"].tolist() == ["g", "bow", "far", "g", "none", "pt", ""]
+    assert table["status"].tolist() == ["ok", "invalid_geometry", "outside_map", "duplicate_id", "empty_geometry", "not_a_polygon", "missing_id"]
+    assert table["feature"].tolist() == [1, 3, 2, 5, 4, 6, 7]
+    assert table.loc[2, "area_ha"] == "" and table.loc[2, "converted_ha"] == ""
+    # Problem rows keep their geometry where they had one; plots.gpkg holds polygons only (the point's row has none there).
     gj = pyogrio.raw.read(tmp_path / "out" / "plots.geojson")
-    assert [g is None for g in gj[2]] == [False, False, False, True, False, False, False]
+    assert [g is None for g in gj[2]] == [False, False, False, False, True, False, False]
+    gp = pyogrio.raw.read(tmp_path / "out" / "plots.gpkg")
+    assert [g is None for g in gp[2]] == [False, False, False, False, True, True, False]
+    assert list(gp[3][0]) == [v or None for v in table["id"]]
 
 
 def test_missing_id_field_names_file_and_fields(tmp_path):
@@ -358,7 +384,7 @@ def test_outputs_schema_and_geojson_in_wgs84(tmp_path):
     plot = pixel_box(1, 1, 4, 4)
     res = run(cfg_for(tmp_path, write_plots(tmp_path / "plots.gpkg", [plot], ["A"]), maps))
     out = tmp_path / "out"
-    assert sorted(p.name for p in out.iterdir()) == ["plots.csv", "plots.geojson", "plots.json"]
+    assert sorted(p.name for p in out.iterdir()) == ["plots.csv", "plots.geojson", "plots.gpkg", "plots.json"]
     doc = json.loads((out / "plots.json").read_text())
     assert list(doc) == ["kind", "plots_file", "plots_sha256", "map_dir", "map_manifest_sha256", "cutoff", "interval_level", "thresholds", "plots", "problems", "counts", "notice"]
     assert doc["kind"] == "plantation-plots/1" and len(doc["plots_sha256"]) == 64
@@ -381,13 +407,162 @@ def test_outputs_schema_and_geojson_in_wgs84(tmp_path):
         "reasons",
     ]
     assert p["verdict"] == "strong_evidence" and p["after_lo_ha"] == pytest.approx(0.81) and doc["counts"]["strong_evidence"] == 1
-    assert list(pd.read_csv(out / "plots.csv").columns) == list(COLUMNS)
+    assert p["years"] == {}  # plots.json: {"<year>": ha} for the years with some
+    # No onset years recorded in this map and none under the plot: no year columns.
+    assert list(pd.read_csv(out / "plots.csv").columns) == table_columns([])
     meta, _, geom, fields = pyogrio.raw.read(out / "plots.geojson")
-    assert meta["crs"] == "EPSG:4326" and list(meta["fields"]) == list(COLUMNS)
+    assert meta["crs"] == "EPSG:4326" and list(meta["fields"]) == table_columns([])
     g = shapely.from_wkb(geom[0])
     lon, lat = Transformer.from_crs(CRS, "EPSG:4326", always_xy=True).transform(*plot.centroid.coords[0])
     assert g.centroid.x == pytest.approx(lon, abs=1e-6) and g.centroid.y == pytest.approx(lat, abs=1e-6)  # x = longitude
     assert res.files["json"] == out / "plots.json"
+
+
+def _layer_table(path: Path) -> tuple[dict, pd.DataFrame, list]:
+    """A vector output's metadata, attribute table (blank → NaN, as pandas reads the CSV) and shapely geometries."""
+    meta, _, wkb, fields = pyogrio.raw.read(path)
+    table = pd.DataFrame({name: pd.Series(col) for name, col in zip(meta["fields"], fields, strict=True)})
+    return meta, table.fillna(value=np.nan), [None if g is None else shapely.from_wkb(g) for g in wkb]
+
+
+def test_gpkg_has_the_plots_in_their_crs_and_the_csv_rows(tmp_path):
+    cls = np.ones((10, 10), np.int16)
+    onset = np.zeros((10, 10), np.int16)
+    cls[0:4, 0:5], onset[0:4, 0:5] = 2, 2018
+    cls[5:9, 5:9], onset[5:9, 5:9] = 2, 2022
+    p = np.where(onset == 2022, 9700, 300).astype(np.int16)
+    maps = write_tile(tmp_path / "map", cls=cls, onset=onset, p_after=p, years=range(2016, 2025))
+    boxes = {"P-hi": pixel_box(5, 5, 9, 9), "P-old": pixel_box(0.5, 0.5, 3.5, 4.5), "P-mix": pixel_box(3, 3, 7.5, 7.25), "P-none": pixel_box(0, 8, 2, 10)}
+    point = shapely.Point(corner(1, 1))
+    far = shapely.box(X0 + 5000, Y0 - 5000, X0 + 5100, Y0 - 4900)
+    geoms = [*boxes.values(), point, far, None]
+    path = write_plots(tmp_path / "plots.gpkg", geoms, [*boxes, "P-pt", "P-far", "P-empty"])
+    run(cfg_for(tmp_path, path, maps))
+    out = tmp_path / "out" / "plots.gpkg"
+    assert [tuple(layer) for layer in pyogrio.list_layers(out)] == [("plots", "MultiPolygon")]
+    meta, gpkg, gp_geoms = _layer_table(out)
+    assert ProjCRS.from_user_input(meta["crs"]) == ProjCRS.from_user_input(CRS) and meta["geometry_type"] == "MultiPolygon"
+    csv = pd.read_csv(tmp_path / "out" / "plots.csv")
+    assert list(meta["fields"]) == list(csv.columns) == table_columns(range(2016, 2025))
+    pd.testing.assert_frame_equal(gpkg, csv, check_dtype=False)
+    assert len(csv) == 7 and csv["id"].tolist()[:2] == ["P-hi", "P-mix"]
+    # The polygons as the plots file has them (in UTM metres, not reprojected); no polygon: no geometry.
+    for pid, g in zip(csv["id"], gp_geoms, strict=True):
+        if pid in boxes:
+            assert g.geom_type == "MultiPolygon" and g.normalize().equals_exact(shapely.MultiPolygon([boxes[pid]]).normalize(), 1e-6)
+        elif pid == "P-far":
+            assert g.normalize().equals_exact(shapely.MultiPolygon([far]).normalize(), 1e-6)
+        else:
+            assert g is None
+    # The GeoJSON: the same rows, in the same order.
+    gj_meta, gj, _ = _layer_table(tmp_path / "out" / "plots.geojson")
+    assert gj_meta["crs"] == "EPSG:4326"
+    pd.testing.assert_frame_equal(gj, csv, check_dtype=False)
+
+
+def test_gpkg_keeps_a_crs_without_an_epsg_code(tmp_path):
+    maps = write_tile(tmp_path / "map")
+    laea = ProjCRS.from_proj4("+proj=laea +lat_0=1.8 +lon_0=117.9 +x_0=0 +y_0=0 +ellps=WGS84 +units=m +no_defs")
+    to_laea = Transformer.from_crs(CRS, laea, always_xy=True)
+    plot = shapely.transform(pixel_box(1, 1, 4, 4), to_laea.transform, interleaved=False)
+    path = write_plots(tmp_path / "plots.gpkg", [plot], ["L"], crs=laea.to_wkt())
+    (row,) = run(cfg_for(tmp_path, path, maps)).rows
+    assert row.mapped_ha == pytest.approx(9 * 0.09, rel=1e-3)  # the plot landed where it should
+    meta, _, geoms = _layer_table(tmp_path / "out" / "plots.gpkg")
+    assert ProjCRS.from_user_input(meta["crs"]) == ProjCRS.from_user_input(pyogrio.read_info(path)["crs"])
+    assert ProjCRS.from_user_input(meta["crs"]).to_epsg() is None
+    assert geoms[0].normalize().equals_exact(shapely.MultiPolygon([plot]).normalize(), 1e-6)
+
+
+def test_year_columns_sum_to_the_converted_area(tmp_path):
+    cls = np.ones((10, 10), np.int16)
+    onset = np.zeros((10, 10), np.int16)
+    cols = np.arange(10)
+    cls[0:5], onset[0:5] = 2, 2016 + cols % 9  # rows 0-4 converted, one onset year per column (2016 twice)
+    maps = write_tile(tmp_path / "map", cls=cls, onset=onset, years=range(2013, 2025))
+    # Rows 0.3-4.6 (4.3 rows), columns 0.25-9.7: column 0 covered 0.75, column 9 0.7, the rest whole.
+    conv = pixel_box(0.3, 0.25, 4.6, 9.7)
+    none = pixel_box(6, 0, 8, 3)
+    path = write_plots(tmp_path / "plots.gpkg", [conv, none, shapely.Point(corner(7, 7))], ["conv", "none", "pt"])
+    res = run(cfg_for(tmp_path, path, maps))
+    years = list(range(2013, 2025))
+    ycols = [f"converted_ha_{y}" for y in years]
+    csv = pd.read_csv(tmp_path / "out" / "plots.csv").set_index("id")
+    assert [c for c in csv.columns if c.startswith("converted_ha_")] == ycols and "years" not in csv.columns
+    by_hand = {y: 0.0 for y in years} | {y: 4.3 * 0.09 for y in range(2017, 2025)} | {2016: (0.75 + 0.7) * 4.3 * 0.09}
+    assert csv.loc["conv", ycols].tolist() == pytest.approx([by_hand[y] for y in years], abs=1e-4)  # to 4 decimals
+    assert csv.loc["conv", "converted_ha"] == pytest.approx(4.3 * 9.45 * 0.09, abs=1e-4)
+    assert csv.loc["none", ycols].tolist() == [0.0] * len(years) and csv.loc["none", "converted_ha"] == 0.0
+    assert csv.loc["pt", ycols].isna().all() and np.isnan(csv.loc["pt", "converted_ha"])  # not measured: blank
+    # Each measured row's year columns add up to its converted area, within the 4-decimal rounding of each.
+    for pid in ("conv", "none"):
+        assert abs(csv.loc[pid, ycols].sum() - csv.loc[pid, "converted_ha"]) <= (len(years) + 1) * 0.5e-4 + 1e-12
+    conv_row = next(r for r in res.rows if r.id == "conv")
+    assert conv_row.converted_ha == pytest.approx(sum(conv_row.years.values()), abs=1e-12)
+    # plots.json keeps its {"<year>": ha} of the years with some, and the file's order.
+    doc = json.loads((tmp_path / "out" / "plots.json").read_text())
+    assert [p["id"] for p in doc["plots"]] == ["conv", "none", "pt"]
+    assert list(doc["plots"][0]["years"]) == [str(y) for y in range(2016, 2025)] and doc["plots"][1]["years"] == {}
+    gj = pyogrio.read_info(tmp_path / "out" / "plots.geojson")
+    assert list(gj["fields"]) == list(csv.reset_index().columns)
+
+
+def test_tables_sorted_by_verdict_then_expected_area_then_id(tmp_path):
+    def row(k, pid, verdict=None, expected=None, status="ok"):
+        return PlotRow(feature=k, id=pid, status=status, expected_after_ha=expected, verdict=verdict, plot_geometry=pixel_box(0, k - 1, 1, k))
+
+    rows = [
+        row(1, "b", "review", 0.3),
+        row(2, "a", "review", 0.3),
+        row(3, "z", "strong_evidence", 0.6),
+        row(4, "c", "low_evidence", 0.09),  # more than review row k, still after every review row
+        row(5, "d", "strong_evidence", 0.9),
+        row(6, None, status="missing_id"),
+        row(7, "e", status="outside_map"),
+        row(8, "f", "review", 0.30004),  # 0.3000 as the tables show it: a tie with a and b, broken by id
+        row(9, "g", "review", 0.30006),  # 0.3001: before them
+        row(10, "h", "low_evidence", 0.0),
+        row(11, "k", "review", 0.05),
+    ]
+    want = ["d", "z", "g", "a", "b", "f", "k", "c", "h", "e", None]
+    assert [r.id for r in sort_rows(rows)] == want == [r.id for r in sort_rows(rows[::-1])]
+    doc = {"kind": KIND, "plots": []}
+    files = write_outputs(rows, doc, tmp_path / "out", crs=ProjCRS.from_user_input(CRS))
+    assert [r.feature for r in rows] == list(range(1, 12))  # the caller's list is left as it was
+    assert pd.read_csv(files["csv"], keep_default_na=False)["id"].tolist() == [v or "" for v in want]
+    for kind in ("geojson", "gpkg"):
+        assert list(pyogrio.raw.read(files[kind])[3][0]) == want
+    # Every row keeps its own polygon through the sort.
+    _, gp, geoms = _layer_table(files["gpkg"])
+    for k, g in zip(gp["feature"], geoms, strict=True):
+        assert g.normalize().equals_exact(shapely.MultiPolygon([pixel_box(0, k - 1, 1, k)]).normalize(), 1e-6)
+    assert json.loads(files["json"].read_text()) == doc
+
+
+def test_outputs_replace_leftovers_and_earlier_runs(tmp_path):
+    maps = write_tile(tmp_path / "map")
+    out = tmp_path / "out"
+    out.mkdir()
+    for name in ("plots.geojson.partial", "plots.csv.partial"):
+        (out / name).write_bytes(b"left over from a run that was killed")
+    # A GeoPackage left over: GDAL would write the plots layer into it and keep its other layers.
+    write_plots(out / "plots.partial.gpkg", [pixel_box(0, 0, 1, 1)], ["old"])
+    pyogrio.raw.write(
+        out / "plots.partial.gpkg",
+        np.array([shapely.to_wkb(pixel_box(0, 0, 1, 1))], dtype=object),
+        [np.array(["x"], dtype=object)],
+        ["id"],
+        layer="extra",
+        geometry_type="Polygon",
+        crs=CRS,
+        driver="GPKG",
+    )
+    path = write_plots(tmp_path / "plots.gpkg", [pixel_box(1, 1, 3, 3), pixel_box(5, 5, 7, 7)], ["a", "b"])
+    for _ in range(2):  # the second run replaces the first's files, rather than adding to them
+        run(cfg_for(tmp_path, path, maps))
+        assert sorted(p.name for p in out.iterdir()) == ["plots.csv", "plots.geojson", "plots.gpkg", "plots.json"]
+        assert [tuple(layer) for layer in pyogrio.list_layers(out / "plots.gpkg")] == [("plots", "MultiPolygon")]
+        assert list(pyogrio.raw.read(out / "plots.gpkg")[3][0]) == ["a", "b"]
 
 
 def test_read_plots_json_and_its_one_line_errors(tmp_path):

@@ -29,13 +29,21 @@ hectares):
   assumes pixels independent (which would shrink as the plot grows). It is
   a range of the area under the map's model, not a sampling interval: the
   model's own errors are not in it; estimate those from a reference sample.
-* ``years``: area mapped as conversion (class 2) by onset year;
-  ``straddle_ha``: of it, the area in the cutoff's own year when the cutoff
-  falls inside a year (the map resolves years only, so those conversions may
-  lie either side of the date); ``mean_clear``: mean clear dates under the
-  plot, weighted by covered area.
+* ``converted_ha``: area mapped as conversion (class 2); ``years``: that
+  area by onset year (in the tables one column ``converted_ha_<year>`` per
+  year of the map, 0 where none; in plots.json ``{"<year>": ha}`` with the
+  years that have some); ``straddle_ha``: of it, the area in the cutoff's own
+  year when the cutoff falls inside a year (the map resolves years only, so
+  those conversions may lie either side of the date); ``mean_clear``: mean
+  clear dates under the plot, weighted by covered area.
 * ``verdict``: ``low_evidence``, ``review`` or ``strong_evidence`` by the
   rules of :class:`VerdictConfig`, and ``reasons`` in words.
+
+Outputs (:func:`write_outputs`): ``plots.csv``; ``plots.geojson`` (EPSG:4326,
+RFC 7946); ``plots.gpkg`` (layer ``plots``, the polygons in the plots file's
+own CRS), all three with the columns of :func:`table_columns` and their rows
+in :func:`sort_rows` order (most attention first); and ``plots.json``, the
+record, with its plots in file order.
 
 Plots that cannot be measured are listed with a problem (never dropped, never
 fatal): :data:`PROBLEMS`. The verdicts are probabilistic evidence to be
@@ -80,8 +88,8 @@ _ISO_DATE = re.compile(r"^\d{4}-\d{2}-\d{2}$")
 #: decimals first, so a pixel stored exactly at an interval bound falls on the
 #: side the rule says rather than on float noise (0.95 vs 0.9500000000000001).
 _DECIMALS = 9
-#: The outputs' columns, in order (CSV, GeoJSON properties, plots.json entries).
-COLUMNS: tuple[str, ...] = (
+#: The tables' columns before the per-year ones (CSV, GeoJSON and GeoPackage; :func:`table_columns`).
+LEAD_COLUMNS: tuple[str, ...] = (
     "id",
     "feature",
     "status",
@@ -92,12 +100,12 @@ COLUMNS: tuple[str, ...] = (
     "after_lo_ha",
     "after_hi_ha",
     "share_after",
-    "years",
-    "straddle_ha",
-    "mean_clear",
-    "verdict",
-    "reasons",
+    "converted_ha",
 )
+#: The tables' columns after the per-year ones.
+TAIL_COLUMNS: tuple[str, ...] = ("straddle_ha", "mean_clear", "verdict", "reasons")
+#: Layer name in plots.gpkg.
+GPKG_LAYER = "plots"
 _GEOD = Geod(ellps="WGS84")
 _WGS84 = CRS.from_epsg(4326)
 
@@ -138,6 +146,16 @@ class PlotsConfig:
     interval_level: float = 0.9
     verdict: VerdictConfig = field(default_factory=VerdictConfig)
     progress: bool = True
+
+
+def year_column(year: int) -> str:
+    """The tables' column of the area mapped as converted in onset year ``year``: ``converted_ha_2016``."""
+    return f"converted_ha_{int(year)}"
+
+
+def table_columns(years: Sequence[int]) -> list[str]:
+    """The tables' columns, in order: :data:`LEAD_COLUMNS`, one :func:`year_column` per year (ascending), :data:`TAIL_COLUMNS`."""
+    return [*LEAD_COLUMNS, *(year_column(y) for y in sorted(set(int(y) for y in years))), *TAIL_COLUMNS]
 
 
 def check_config(cfg: PlotsConfig) -> None:
@@ -443,7 +461,8 @@ class PlotRow:
     """One plot's line in the outputs (areas in ha). Problem rows have ``status`` = the problem and None numbers.
 
     ``feature`` is the 1-based feature number in the plots file; ``geometry``
-    the polygon in EPSG:4326 (None where the feature had none).
+    the polygon in EPSG:4326 and ``plot_geometry`` the same in the plots
+    file's CRS (None where the feature had none).
     """
 
     feature: int
@@ -456,12 +475,14 @@ class PlotRow:
     after_lo_ha: float | None = None
     after_hi_ha: float | None = None
     share_after: float | None = None
+    converted_ha: float | None = None
     years: dict[int, float] = field(default_factory=dict)
     straddle_ha: float | None = None
     mean_clear: float | None = None
     verdict: str | None = None
     reasons: list[str] = field(default_factory=list)
     geometry: Any = None
+    plot_geometry: Any = None
 
 
 def comonotone_range_ha(covered_m2: np.ndarray, p: np.ndarray, level: float) -> tuple[float, float]:
@@ -499,6 +520,7 @@ def measure(px: Pixels, area_ha: float, cutoff: Cutoff, level: float) -> dict[st
         "after_lo_ha": lo,
         "after_hi_ha": hi,
         "share_after": expected / mapped_ha if mapped_ha > 0 else None,
+        "converted_ha": float(cov[conv].sum()) / 1e4,
         "years": years,
         "straddle_ha": straddle,
         "mean_clear": float((px.clear * cov).sum()) / total if total > 0 else None,
@@ -563,10 +585,6 @@ def _round(x: float | None, nd: int = 4) -> float | None:
     return None if x is None or (isinstance(x, float) and np.isnan(x)) else round(float(x), nd)
 
 
-def _years_text(years: dict[int, float]) -> str:
-    return ";".join(f"{y}:{a:.2f}" for y, a in sorted(years.items()))
-
-
 def _record(r: PlotRow) -> dict[str, Any]:
     """The row as plots.json holds it (areas and shares to 4 decimals, mean_clear to 2)."""
     return {
@@ -587,35 +605,65 @@ def _record(r: PlotRow) -> dict[str, Any]:
     }
 
 
-def _table(rows: Sequence[PlotRow]) -> pd.DataFrame:
-    """Flat columns of :data:`COLUMNS` (years as "2019:0.81;2022:1.20", reasons joined by "; ")."""
+#: Verdicts by the attention they call for, most first: the strongest evidence of conversion after the cutoff, then review, then the rest.
+_ATTENTION: dict[str, int] = {v: k for k, v in enumerate(reversed(VERDICTS))}
+
+
+def _attention_key(r: PlotRow) -> tuple[int, bool, float, bool, str]:
+    e = _round(r.expected_after_ha)
+    return (_ATTENTION.get(r.verdict or "", len(_ATTENTION)), e is None, -(e or 0.0), r.id is None, r.id or "")
+
+
+def sort_rows(rows: Sequence[PlotRow]) -> list[PlotRow]:
+    """The rows in the tables' order: most attention first.
+
+    By verdict (``strong_evidence``, ``review``, ``low_evidence``, then plots
+    not measured), then ``expected_after_ha`` as the tables show it (4
+    decimals) descending, then plot id (as text; a missing id last).
+    """
+    return sorted(rows, key=_attention_key)
+
+
+def _table(rows: Sequence[PlotRow], years: Sequence[int]) -> pd.DataFrame:
+    """Flat columns of :func:`table_columns` in the rows' order: ``converted_ha_<year>`` for each of ``years`` (0 where none; blank on rows not measured), reasons joined by "; "."""
+    cols = table_columns(years)
     recs = []
     for r in rows:
         d = _record(r)
         d["id"] = r.id
         d["feature"] = r.feature
-        d["years"] = _years_text(r.years) if r.status == "ok" else None
+        d["converted_ha"] = _round(r.converted_ha)
+        measured = r.status == "ok"
+        for y in years:
+            d[year_column(y)] = _round(r.years.get(int(y), 0.0)) if measured else None
         d["reasons"] = "; ".join(r.reasons)
-        recs.append({k: d[k] for k in COLUMNS})
-    return pd.DataFrame.from_records(recs, columns=list(COLUMNS))
+        recs.append({k: d[k] for k in cols})
+    return pd.DataFrame.from_records(recs, columns=cols)
 
 
-def _write_geojson(rows: Sequence[PlotRow], table: pd.DataFrame, dest: Path) -> None:
-    """GeoJSON per RFC 7946 (EPSG:4326, x = longitude) with every column; rows without geometry get a null one."""
-    import pyogrio
+def _is_polygonal(g: Any) -> bool:
+    return g is not None and shapely.get_type_id(g) in (shapely.GeometryType.POLYGON, shapely.GeometryType.MULTIPOLYGON)
 
-    geoms = [r.geometry for r in rows]
-    wkb = np.array([None if g is None else shapely.to_wkb(g) for g in geoms], dtype=object)
-    polygonal = all(g is None or shapely.get_type_id(g) in (shapely.GeometryType.POLYGON, shapely.GeometryType.MULTIPOLYGON) for g in geoms)
-    field_data = []
+
+def _field_data(table: pd.DataFrame) -> list[np.ndarray]:
+    """The table's columns as pyogrio field arrays: ``feature`` as integers, text columns as objects (None for blank), the rest as floats (NaN, written as null, for blank)."""
+    out = []
     for c in table.columns:
         col = table[c]
-        if c in ("feature",):
-            field_data.append(col.to_numpy(np.int64))
-        elif c in ("id", "status", "years", "verdict", "reasons"):
-            field_data.append(np.array([None if v is None or (isinstance(v, float) and np.isnan(v)) else str(v) for v in col], dtype=object))
+        if c == "feature":
+            out.append(col.to_numpy(np.int64))
+        elif c in ("id", "status", "verdict", "reasons"):
+            out.append(np.array([None if v is None or (isinstance(v, float) and np.isnan(v)) else str(v) for v in col], dtype=object))
         else:
-            field_data.append(col.to_numpy(np.float64, na_value=np.nan))
+            out.append(col.to_numpy(np.float64, na_value=np.nan))
+    return out
+
+
+def _write_layer(dest: Path, geoms: Sequence[Any], table: pd.DataFrame, *, driver: str, crs: str, geometry_type: str, layer_options: dict[str, str] | None = None) -> None:
+    """One vector file of ``table``'s rows with ``geoms`` (None: a null geometry), through pyogrio."""
+    import pyogrio
+
+    wkb = np.array([None if g is None else shapely.to_wkb(g) for g in geoms], dtype=object)
     # pyogrio logs "Created N records" at INFO, which a script's log handler would print.
     io_log = logging.getLogger("pyogrio._io")
     level = io_log.level
@@ -624,29 +672,70 @@ def _write_geojson(rows: Sequence[PlotRow], table: pd.DataFrame, dest: Path) -> 
         pyogrio.raw.write(
             dest,
             wkb,
-            field_data,
+            _field_data(table),
             list(table.columns),
-            layer="plots",
-            driver="GeoJSON",
-            geometry_type="MultiPolygon" if polygonal else "Unknown",
-            promote_to_multi=polygonal,
-            crs="EPSG:4326",
-            layer_options={"RFC7946": "YES", "COORDINATE_PRECISION": "7"},
+            layer=GPKG_LAYER,
+            driver=driver,
+            geometry_type=geometry_type,
+            promote_to_multi=geometry_type == "MultiPolygon",
+            crs=crs,
+            layer_options=layer_options,
         )
     finally:
         io_log.setLevel(level)
 
 
-def write_outputs(result_rows: Sequence[PlotRow], doc: dict[str, Any], out_dir: Path) -> dict[str, Path]:
-    """Write plots.csv, plots.geojson and plots.json into ``out_dir``, each under a ``.partial`` name first."""
+def _write_geojson(rows: Sequence[PlotRow], table: pd.DataFrame, dest: Path) -> None:
+    """GeoJSON per RFC 7946 (EPSG:4326, x = longitude) with every column; rows without geometry get a null one."""
+    geoms = [r.geometry for r in rows]
+    polygonal = all(g is None or _is_polygonal(g) for g in geoms)
+    _write_layer(dest, geoms, table, driver="GeoJSON", crs="EPSG:4326", geometry_type="MultiPolygon" if polygonal else "Unknown", layer_options={"RFC7946": "YES", "COORDINATE_PRECISION": "7"})
+
+
+def _crs_text(crs: CRS) -> str:
+    """``EPSG:<code>`` where the CRS is exactly one, else its WKT."""
+    auth = crs.to_authority(min_confidence=100)
+    return f"{auth[0]}:{auth[1]}" if auth is not None else crs.to_wkt()
+
+
+def _write_gpkg(rows: Sequence[PlotRow], table: pd.DataFrame, dest: Path, crs: CRS | None) -> None:
+    """GeoPackage layer :data:`GPKG_LAYER` of MultiPolygons in ``crs`` (the plots' own geometries) with every column.
+
+    Rows without a polygon (no geometry, or a not_a_polygon problem) get a
+    null geometry, so the layer holds polygons only. ``crs`` None: the rows'
+    EPSG:4326 geometries.
+    """
+    geoms = [r.plot_geometry if crs is not None else r.geometry for r in rows]
+    geoms = [g if _is_polygonal(g) else None for g in geoms]
+    _write_layer(dest, geoms, table, driver="GPKG", crs=_crs_text(crs) if crs is not None else "EPSG:4326", geometry_type="MultiPolygon")
+
+
+def write_outputs(result_rows: Sequence[PlotRow], doc: dict[str, Any], out_dir: Path, *, years: Sequence[int] | None = None, crs: CRS | None = None) -> dict[str, Path]:
+    """Write plots.csv, plots.geojson, plots.gpkg and plots.json into ``out_dir``, each under a ``.partial`` name first (``plots.partial.gpkg``), replaced into place once all are written.
+
+    Args:
+        result_rows: the plots, in any order (the tables take :func:`sort_rows` order).
+        doc: plots.json's content, written as given.
+        out_dir: the folder.
+        years: the map's onset years, one ``converted_ha_<year>`` column each
+            (with any other year a row has); None: the years the rows have.
+        crs: the plots file's CRS, of the rows' ``plot_geometry`` (plots.gpkg);
+            None: plots.gpkg takes the EPSG:4326 geometries.
+    """
     out_dir.mkdir(parents=True, exist_ok=True)
-    names = {"csv": out_dir / "plots.csv", "geojson": out_dir / "plots.geojson", "json": out_dir / PLOTS_JSON}
-    tmps = {k: p.with_name(p.name + ".partial") for k, p in names.items()}
-    table = _table(result_rows)
+    names = {"csv": out_dir / "plots.csv", "geojson": out_dir / "plots.geojson", "gpkg": out_dir / "plots.gpkg", "json": out_dir / PLOTS_JSON}
+    # plots.partial.gpkg: GDAL warns about a GeoPackage not named *.gpkg.
+    tmps = {k: p.with_name(f"{p.stem}.partial{p.suffix}" if k == "gpkg" else p.name + ".partial") for k, p in names.items()}
+    found = {int(y) for r in result_rows for y in r.years}
+    all_years = sorted(found | {int(y) for y in (years or ())})
+    ordered = sort_rows(result_rows)
+    table = _table(ordered, all_years)
     try:
         table.to_csv(tmps["csv"], index=False, lineterminator="\n")
-        tmps["geojson"].unlink(missing_ok=True)  # GDAL will not overwrite a leftover
-        _write_geojson(result_rows, table, tmps["geojson"])
+        for k in ("geojson", "gpkg"):
+            tmps[k].unlink(missing_ok=True)  # GDAL will not overwrite a leftover
+        _write_geojson(ordered, table, tmps["geojson"])
+        _write_gpkg(ordered, table, tmps["gpkg"], crs)
         tmps["json"].write_text(json.dumps(doc, indent=1, ensure_ascii=False) + "\n")
         for k, p in names.items():
             os.replace(tmps[k], p)
@@ -692,7 +781,7 @@ def _earlier_cover(readers: Sequence[TileReader], k: int) -> Any:
 
 
 def run(cfg: PlotsConfig) -> PlotsResult:
-    """Measure every plot on the map and write plots.csv, plots.geojson and plots.json into ``cfg.out_dir``.
+    """Measure every plot on the map and write plots.csv, plots.geojson, plots.gpkg and plots.json into ``cfg.out_dir``.
 
     Raises:
         PlantationError: the config, the plots file or the map is unusable,
@@ -736,7 +825,7 @@ def run(cfg: PlotsConfig) -> PlotsResult:
                 continue
             m = measure(px, geodesic_area_ha(g84), cutoff, cfg.interval_level)
             v, reasons = verdict(m, cfg.verdict, cutoff)
-            rows[i] = PlotRow(feature=i + 1, id=plots.ids[i], status="ok", verdict=v, reasons=reasons, geometry=g84, **m)
+            rows[i] = PlotRow(feature=i + 1, id=plots.ids[i], status="ok", verdict=v, reasons=reasons, geometry=g84, plot_geometry=g, **m)
     finally:
         for rd in readers:
             rd.close()
@@ -744,7 +833,8 @@ def run(cfg: PlotsConfig) -> PlotsResult:
     problems.sort(key=lambda p: p.index)
     for p in problems:
         g = plots.geoms[p.index - 1]
-        rows[p.index - 1] = PlotRow(feature=p.index, id=p.id, status=p.problem, reasons=[p.detail], geometry=None if g is None or g.is_empty else reproject(g, to_wgs84))
+        g = None if g is None or g.is_empty else g
+        rows[p.index - 1] = PlotRow(feature=p.index, id=p.id, status=p.problem, reasons=[p.detail], geometry=None if g is None else reproject(g, to_wgs84), plot_geometry=g)
     ordered = [rows[i] for i in sorted(rows)]
     counts = {k: sum(r.verdict == k for r in ordered) for k in VERDICTS} | {"problem": len(problems)}
     doc = {
@@ -766,5 +856,5 @@ def run(cfg: PlotsConfig) -> PlotsResult:
         doc["probability_correction"] = mapped.correction
         doc["probability_correction_text"] = mapped.correction_text()
     out = Path(cfg.out_dir)
-    files = write_outputs(ordered, doc, out)
+    files = write_outputs(ordered, doc, out, years=mapped.years, crs=plots.crs)
     return PlotsResult(out_dir=out, files=files, rows=ordered, problems=problems, counts=counts, cutoff=cutoff, plots_file=str(cfg.plots), correction=mapped.correction_text())
