@@ -48,25 +48,47 @@ class MaskConfig:
 
     band: int | None = None
     variable: str | None = None
+    #: For ``format: stac``: the asset key of the QA layer (None: an asset
+    #: called qa, qa_pixel, scl, fmask or cloud_mask, if any). Product
+    #: folders use their product's own QA layer and published rule instead.
+    asset: str | None = None
     invalid_bits: list[int] = field(default_factory=lambda: [0, 1, 2])
     invalid_values: list[int] = field(default_factory=list)
 
     def content_key(self) -> dict[str, Any]:
-        """The rules as they decide which pixels are read (for a map's content key): ``invalid_values`` only when given, so maps made before it existed keep their key."""
+        """The rules as they decide which pixels are read (for a map's content key): ``invalid_values`` and ``asset`` only when given, so maps made before they existed keep their key."""
         out = asdict(self)
-        if not out["invalid_values"]:
-            del out["invalid_values"]
+        for key in ("invalid_values", "asset"):
+            if not out[key]:
+                del out[key]
         return out
 
 
 @dataclass
+class GridConfig:
+    """A tile's grid, for imagery that is reprojected onto it (product folders, STAC).
+
+    All None: the grid of the first scene's first band role.
+    """
+
+    #: CRS of the grid (``EPSG:32650``, a WKT or PROJ string).
+    crs: str | None = None
+    #: [left, bottom, right, top] in the grid's CRS units.
+    bounds: list[float] | None = None
+    #: Pixel size in the grid's CRS units (square pixels).
+    resolution: float | None = None
+
+
+@dataclass
 class TileConfig:
-    """One tile of a region: a folder of dated GeoTIFFs or one NetCDF/Zarr cube."""
+    """One tile of a region: a folder of dated GeoTIFFs, one NetCDF/Zarr cube, a folder of product scene folders, or a STAC file."""
 
     name: str = MISSING
     path: str = MISSING
     #: Optional truth rasters (simulated regions only), used by benchmarks.
     truth: str | None = None
+    #: The grid scenes are reprojected onto (``format: products`` or ``stac``).
+    grid: GridConfig = field(default_factory=GridConfig)
 
 
 @dataclass
@@ -144,7 +166,9 @@ class RegionConfig:
     """Everything the tool needs to know about one region's imagery."""
 
     name: str = MISSING
-    #: ``geotiff_folder`` (one GeoTIFF per date, date in the file name) or ``cube``.
+    #: ``geotiff_folder`` (one GeoTIFF per date, date in the file name),
+    #: ``cube``, ``products`` (Landsat C2 L2 / Sentinel-2 L2A scene folders)
+    #: or ``stac`` (an ItemCollection or static catalogue).
     format: str = "geotiff_folder"
     tiles: list[TileConfig] = field(default_factory=list)
     #: Band roles in file order; indices need blue, red, nir, swir1, swir2.

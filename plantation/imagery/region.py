@@ -6,7 +6,12 @@ A region is a list of tiles. Each tile is either
   ``YYYY-MM-DD`` somewhere in the file name, all on one grid, bands in the
   order the region config lists them (plus an optional QA band), or
 * a NetCDF (``.nc``) or Zarr (``.zarr``) cube with a variable of dims
-  ``(time, band, y, x)`` and a CF grid mapping that gives its CRS.
+  ``(time, band, y, x)`` and a CF grid mapping that gives its CRS, or
+* a folder of delivered scene folders (Landsat Collection 2 Level-2,
+  Sentinel-2 Level-2A; :mod:`plantation.imagery.products`), or a STAC
+  ItemCollection or static catalogue (:mod:`plantation.imagery.stac`), both
+  loaded by odc-stac onto the tile's grid (``tiles[].grid``, or the first
+  scene's), one date per solar day, with the products' own scaling and masks.
 
 Nothing is read at open time but file headers: values come as dask arrays
 chunked in space, so a tile larger than memory is processed window by window.
@@ -19,12 +24,13 @@ from __future__ import annotations
 import re
 import threading
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import date
 from pathlib import Path
 
 import dask
 import numpy as np
+import pystac
 import rasterio
 import rasterio.windows
 import xarray as xr
@@ -32,10 +38,14 @@ from affine import Affine
 from rasterio.crs import CRS
 
 from plantation.errors import ConfigError, InputNotFoundError, RegionError
+from plantation.imagery import products
+from plantation.imagery import stac as stac_io
 from plantation.imagery.config import RegionConfig, ScalingRule, TileConfig
 
 _DATE = re.compile(r"(\d{4})-(\d{2})-(\d{2})")
 RASTER_SUFFIXES = (".tif", ".tiff")
+#: The region formats the reader knows.
+FORMATS: tuple[str, ...] = ("geotiff_folder", "cube", "products", "stac")
 
 
 @dataclass(frozen=True)
@@ -121,6 +131,10 @@ class TileStack:
     valid: xr.DataArray
     grid: Grid
     reader: WindowReader | None = None
+    #: Every input file (product folders and STAC, where no window reader lists them).
+    sources: list[str] = field(default_factory=list)
+    #: The sensor of each date (product folders and STAC; empty otherwise).
+    sensors: list[str] = field(default_factory=list)
 
     def read(self, row: int, col: int, height: int, width: int) -> tuple[np.ndarray, np.ndarray]:
         """One window, inside the tile: float32 reflectance (time, band, h, w), NaN where invalid, and bool validity (time, h, w).
@@ -475,6 +489,66 @@ def _open_cube(tile: TileConfig, region: RegionConfig) -> TileStack:
     return _finish(tile.name, raw, invalid, dates, region, grid)
 
 
+def _tile_grid(tile: TileConfig, first: pystac.Item, role: str) -> Grid:
+    """The tile's grid: from ``tile.grid`` when given, else the first scene's ``role`` band."""
+    g = tile.grid
+    given = [g.crs is not None, g.bounds is not None, g.resolution is not None]
+    if any(given) and not all(given):
+        raise ConfigError(f"tiles[{tile.name}].grid: give crs, bounds and resolution together (or none: the first scene's grid)")
+    if not any(given):
+        crs, transform, h, w = stac_io.default_grid(first, role)
+        return Grid(crs, transform, h, w)
+    bounds, res = list(g.bounds or []), float(g.resolution or 0)
+    if len(bounds) != 4 or bounds[2] <= bounds[0] or bounds[3] <= bounds[1] or res <= 0:
+        raise ConfigError(f"tiles[{tile.name}].grid: bounds {bounds!r} must be [left, bottom, right, top] with left < right and bottom < top, resolution {res!r} above 0")
+    try:
+        crs = CRS.from_user_input(g.crs)
+    except rasterio.errors.CRSError as exc:
+        raise ConfigError(f"tiles[{tile.name}].grid.crs: {g.crs!r} is not a CRS ({exc})") from None
+    w, h = round((bounds[2] - bounds[0]) / res), round((bounds[3] - bounds[1]) / res)
+    return Grid(crs, Affine(res, 0.0, bounds[0], 0.0, -res, bounds[3]), h, w)
+
+
+def _from_items(tile: TileConfig, region: RegionConfig, items: list[pystac.Item], *, qa_bits: Sequence[int], qa_values: Sequence[int], qa_asset: str | None, where: str) -> TileStack:
+    """A TileStack of STAC items (a product folder's or a catalogue's) loaded onto the tile's grid, scaled by the assets' own scale and offset."""
+    end = _end_date(region)
+    items = [it for it in items if stac_io.solar_day(it) <= end]
+    if not items:
+        raise RegionError(f"{where}: no scene dated on or before region.end_date {region.end_date}")
+    grid = _tile_grid(tile, items[0], stac_io.role_assets(items[0], region.bands, qa_asset)[region.bands[0]])
+    loaded = stac_io.load_tile(items, region.bands, crs=grid.crs, transform=grid.transform, height=grid.height, width=grid.width, chunk=region.chunk, qa_asset=qa_asset, where=where)
+    invalid = loaded.nodata
+    if loaded.qa is not None:
+        invalid = invalid | qa_invalid(loaded.qa, qa_bits, qa_values)
+    times = np.array(loaded.dates, dtype="datetime64[ns]")
+    raw = loaded.raw.assign_coords(time=times, band=list(region.bands))
+    s = xr.DataArray(loaded.scale, dims=("time", "band"), coords={"time": times, "band": list(region.bands)})
+    o = xr.DataArray(loaded.offset, dims=("time", "band"), coords={"time": times, "band": list(region.bands)})
+    valid = ~invalid.assign_coords(time=times)
+    refl = (raw.astype(np.float32) * s + o).where(valid)
+    refl.name, valid.name = "reflectance", "valid"
+    for arr in (refl, valid):
+        arr.attrs.update(crs=grid.crs.to_string(), transform=tuple(grid.transform)[:6])
+    refl.attrs["units"] = "1"
+    return TileStack(name=tile.name, reflectance=refl, valid=valid, grid=grid, sources=loaded.files, sensors=loaded.sensors)
+
+
+def _open_products(tile: TileConfig, region: RegionConfig) -> TileStack:
+    folder = Path(tile.path)
+    if not folder.is_dir():
+        raise InputNotFoundError(f"{folder.absolute()}: tile {tile.name!r} folder of scene folders does not exist")
+    scenes = products.find_scenes(folder, region.bands)
+    sensor = scenes[0].sensor
+    items = [products.scene_item(s, region.bands) for s in scenes]
+    return _from_items(tile, region, items, qa_bits=sensor.qa_bits, qa_values=sensor.qa_values, qa_asset="qa", where=str(folder))
+
+
+def _open_stac(tile: TileConfig, region: RegionConfig) -> TileStack:
+    path = Path(tile.path)
+    items = stac_io.read_items(path)
+    return _from_items(tile, region, items, qa_bits=region.mask.invalid_bits, qa_values=region.mask.invalid_values, qa_asset=region.mask.asset, where=str(path))
+
+
 def _end_date(region: RegionConfig) -> date:
     """The last date the region reads (``region.end_date``; far in the future when unset)."""
     if region.end_date is None:
@@ -497,7 +571,11 @@ def open_tile(tile: TileConfig, region: RegionConfig) -> TileStack:
         return _open_geotiff_folder(tile, region)
     if region.format == "cube":
         return _open_cube(tile, region)
-    raise ConfigError(f"region.format: {region.format!r} is not one of ['geotiff_folder', 'cube']")
+    if region.format == "products":
+        return _open_products(tile, region)
+    if region.format == "stac":
+        return _open_stac(tile, region)
+    raise ConfigError(f"region.format: {region.format!r} is not one of {list(FORMATS)}")
 
 
 def open_region(region: RegionConfig) -> list[TileStack]:

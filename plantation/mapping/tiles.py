@@ -98,9 +98,13 @@ class TileJob:
 
 def input_signature(stack: TileStack, tile: TileConfig) -> list[list[Any]]:
     """Name, size and modification time of every input file of a tile."""
-    files = [Path(f) for f in stack.reader.files] if stack.reader is not None else [Path(tile.path)]
-    out = []
-    for f in files:
+    names = stack.reader.files if stack.reader is not None else stack.sources or [tile.path]
+    out: list[list[Any]] = []
+    for name in names:
+        if "://" in name:  # a remote asset: its address is all there is to go by
+            out.append([name])
+            continue
+        f = Path(name)
         st = f.stat()
         out.append([f.name, st.st_size, st.st_mtime_ns])
     return out
