@@ -32,7 +32,7 @@ from plantation.imagery.config import RegionConfig, TileConfig
 from plantation.imagery.region import TileStack, open_tile
 from plantation.mapping.folder import BAND, FORMAT, LAYERS, NODATA, NOTICE, RECALIBRATION, SCALE, TileResult, file_digest, recalibrate_stored, write_cog
 from plantation.mapping.quicklook import quicklook
-from plantation.mapping.styles import class_style, onset_style, write_style
+from plantation.mapping.styles import class_style, onset_style, p_after_cutoff_style, write_style
 from plantation.model.artefact import Artefact, load
 from plantation.model.inference import check_compatible, read_window, window_probabilities, windows
 from plantation.model.outcomes import summarise
@@ -292,6 +292,7 @@ def map_tile_task(job: TileJob, on_window: Callable[[int], None] | None = None) 
     mapped, by_year, after = map_tile(stack, art, job.settings, dest, region=job.region, on_window=on_window)
     write_style(class_style(BAND["class"]), out / f"{job.tile.name}.qml")
     write_style(onset_style(art.card.years, job.settings.cutoff_year, BAND["onset_year"]), out / f"{job.tile.name}.onset_year.qml")
+    write_style(p_after_cutoff_style(job.settings.cutoff_year, BAND["p_after_cutoff"]), out / f"{job.tile.name}.p_after_cutoff.qml")
     if job.settings.quicklook:
         quicklook(dest, out / f"{job.tile.name}.png", years=art.card.years, cutoff_year=job.settings.cutoff_year)
     g = stack.grid
