@@ -23,6 +23,7 @@ from plantation.model.calibration import (
     population_prior,
     prior_from_shares,
     reweight,
+    vanished_groups,
 )
 from plantation.model.outcomes import STATIC_OUTCOMES, group_probabilities
 from plantation.reference.labels import LABEL_NAMES
@@ -206,6 +207,49 @@ def test_bbse_on_groups_recovers_group_shares_and_keeps_the_year_mix(seed, soft)
     np.testing.assert_allclose(np.bincount(groups, weights=est, minlength=4), shares, atol=_BBSE_TOL)
     # Within the conversion group the estimate keeps the source's year mix exactly.
     np.testing.assert_allclose(est[3:] / est[3:].sum(), _YEAR_MIX, rtol=1e-9)
+
+
+def _flip_groups(y: np.ndarray, share: float, groups: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+    """``share`` of the outcomes moved to a random outcome of another label group (as an interpreter's wrong label)."""
+    out = y.copy()
+    for i in np.flatnonzero(rng.random(len(y)) < share):
+        other = rng.choice([g for g in range(4) if g != groups[y[i]]])
+        out[i] = rng.choice(np.flatnonzero(groups == other))
+    return out
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_wrong_validation_labels_make_bbse_lose_conversion_and_a_vanished_group_is_flagged(seed):
+    # BBSE measures the confusion matrix against the validation labels and assumes they are right
+    # (Lipton et al. 2018). Sample mix like the semi-real labels (36 % conversion), region 10 %.
+    ps, pt_prior = _outcome_prior(0.43, 0.36, 0.09, 0.12), _outcome_prior(0.7, 0.1, 0.1, 0.1)
+    pv, yv, pt, _ = _classifier_and_target(seed, _MEANS_Y, ps, pt_prior)
+    groups = outcome_groups(3 + _YEARS)
+    rng = np.random.default_rng(seed)
+    conversion = {}
+    for share in (0.0, 0.1, 0.3):
+        y = _flip_groups(yv, share, groups, rng)
+        est = bbse_prior(pv, y, pt, ps, groups=groups)
+        conversion[share] = np.bincount(groups, weights=est, minlength=4)[1]
+        assert vanished_groups(est, y) == ([] if share < 0.3 else ["conversion"])
+    # Clean labels recover the share; 10 % wrong ones already lose a third of it (0.055-0.058 over
+    # these seeds); at 30 % it is gone although every fourth validation label says conversion.
+    assert conversion[0.0] == pytest.approx(0.1, abs=0.01)
+    assert conversion[0.1] < 0.07
+    assert conversion[0.3] < 1e-4
+
+
+def test_vanished_groups_needs_labels_of_the_group_and_a_share_at_the_floor():
+    k = 3 + 2  # stable, old, other, two conversion years
+    floor = 1e-6
+    q = np.array([0.6, 0.2, 0.2 - 2 * floor, floor, floor])
+    assert vanished_groups(q, np.array([0, 3, 4])) == ["conversion"]
+    # No label of the group: the region may well have none.
+    assert vanished_groups(q, np.array([0, 1, 2])) == []
+    # A small share is a finding, not a contradiction.
+    q_small = np.array([0.6, 0.2, 0.199, 0.0005, 0.0005])
+    assert vanished_groups(q_small, np.array([0, 3, 4])) == []
+    assert len(q) == k
 
 
 # --- Recalibration from a probability sample --------------------------------------------------

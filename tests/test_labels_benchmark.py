@@ -73,3 +73,51 @@ def test_summary_and_plot_from_a_result(tmp_path):
     assert any("labels_saved 0.2" in line for line in lines)
     out = figure(doc, tmp_path / "labels.png")
     assert out.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+
+
+def _earlier(settings: dict) -> dict:
+    return {
+        "region": {"train": "a", "held_out": "b"},
+        "settings": settings,
+        "parts_done": ["active", "noise", "new_year"],
+        "rounds": {"labels": [400]},
+        "suggest_gain": {"year_exact": 0.01},
+        "warm_start": {"time_ratio": 0.4},
+        "noise": {"by_loss": {}},
+        "new_year": {"time_ratio": 0.45},
+        "seconds": 100.0,
+        "log": ["seed 0: 400 labels {}", "noise 0% loss ce seed 0: {}", "new year seed 0: extended {}"],
+    }
+
+
+def test_a_merged_run_keeps_the_parts_it_does_not_redo_and_refuses_other_settings(tmp_path):
+    import json
+
+    from plantation.benchmarks.labels import merged_start
+
+    path = tmp_path / "labels.json"
+    path.write_text(json.dumps(_earlier({"members": 2})))
+    doc = {"region": {"train": "a", "held_out": "b"}, "settings": {"members": 2}, "log": [], "parts_done": []}
+    out = merged_start(doc, path, ["noise"])
+    assert out["parts_done"] == ["active", "new_year"] and out["merged_from_earlier_run"] == ["active", "new_year"]
+    assert out["warm_start"] == {"time_ratio": 0.4} and out["new_year"] == {"time_ratio": 0.45} and "noise" not in out
+    # The redone part's log lines go; the kept parts' stay.
+    assert out["log"] == ["seed 0: 400 labels {}", "new year seed 0: extended {}"]
+    assert out["earlier_seconds"] == 100.0
+    with pytest.raises(ConfigError, match="settings"):
+        merged_start({**doc, "settings": {"members": 3}}, path, ["noise"])
+
+
+def test_scoring_with_known_shares_moves_the_models_prior_and_nothing_else():
+    from plantation.benchmarks.labels import prior_groups, with_shares
+    from plantation.model.artefact import Artefact
+    from tests.test_artefact import _card
+
+    card = _card()  # train prior: stable, old, other, two conversion years
+    card.calibration.temperature, card.calibration.prior_source, card.calibration.target_prior = 1.3, "bbse", [0.9, 0.05, 0.05, 0.0, 0.0]
+    art = Artefact(card, [], None)
+    shares = {"stable_forest": 0.7, "conversion": 0.1, "old_plantation": 0.05, "other": 0.15}
+    moved = with_shares(art, shares)
+    assert prior_groups(moved) == {"source": "shares", "conversion": 0.1}
+    assert moved.card.calibration.prior_groups() == pytest.approx(shares, abs=1e-5)
+    assert moved.card.calibration.temperature == 1.3 and art.card.calibration.prior_source == "bbse"

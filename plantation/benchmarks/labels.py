@@ -20,10 +20,16 @@ over-sampled) and labelled from the truth, as interpreters would label them.
 * **Label noise**: ``noise_labels`` pool points with ``noise_levels`` of
   them made wrong (half of the wrong conversions shifted by ±1–2 years, the
   rest and all other wrong labels flipped to another class), trained with
-  each loss of ``noise_losses``.
+  each loss of ``noise_losses``. Each model is scored twice: with the
+  region prior its training chose (``by_loss_own_prior``: by default black-box
+  shift estimation, which measures its confusion matrix against the same
+  wrong labels) and with the training region's true class shares
+  (``by_loss``: what the loss alone does, as for a user who gives
+  ``labels.population_shares``).
 * **Surrogate labels**: ``surrogate_pixels`` pixels labelled by the
   index-drop rule (:mod:`plantation.reference.rule`) plus 0, 100 or 400
-  trusted pool labels, against the 400 trusted labels alone.
+  trusted pool labels, against the 400 trusted labels alone; scored with
+  the training region's true shares and with each model's own prior.
 * **Warm start**: a model retrained from the previous round's model on a
   grown label set (``plantation retrain``'s fine-tune) against training
   afresh on the same labels: time and scores.
@@ -54,6 +60,7 @@ from plantation.errors import ConfigError
 from plantation.imagery.config import LabelsConfig, RegionConfig
 from plantation.imagery.region import TileStack, open_region
 from plantation.model.artefact import Artefact
+from plantation.model.calibration import prior_from_shares
 from plantation.model.inference import predict_tile
 from plantation.model.outcomes import summarise
 from plantation.model.training import Start, TrainConfig, fit, load_region_samples, model_card, network_spec, sample_splits
@@ -94,6 +101,8 @@ class LabelsBenchConfig(TrainConfig):
     out: str = "bench/results/labels.json"
     plot: str = "bench/results/labels.png"
     progress: bool = True
+    #: Keep the parts of an earlier result at ``out`` that this run does not redo (same design settings only).
+    merge: bool = False
 
 
 def train_part(cfg: LabelsBenchConfig) -> TrainConfig:
@@ -107,6 +116,8 @@ class Regions:
     eval_stacks: list[TileStack]
     truth_label: np.ndarray
     truth_year: np.ndarray
+    #: The training region's true area shares of the label groups (the prior a user who knew them would give).
+    train_shares: dict[str, float] = field(default_factory=dict)
 
 
 def regions(cfg: LabelsBenchConfig) -> Regions:
@@ -119,7 +130,13 @@ def regions(cfg: LabelsBenchConfig) -> Regions:
         with rasterio.open(str(t.truth)) as src:
             labs.append(src.read(1).ravel())
             yrs.append(src.read(2).ravel())
-    return Regions(built["train"], ev, stacks, np.concatenate(labs), np.concatenate(yrs))
+    train_cls = []
+    for t in built["train"].tiles:
+        with rasterio.open(str(t.truth)) as src:
+            train_cls.append(src.read(1).ravel())
+    counts = np.bincount(np.concatenate(train_cls), minlength=len(LABEL_NAMES) + 1)[1 : len(LABEL_NAMES) + 1].astype(np.float64)
+    shares = {n: float(c / counts.sum()) for n, c in zip(LABEL_NAMES, counts, strict=True)}
+    return Regions(built["train"], ev, stacks, np.concatenate(labs), np.concatenate(yrs), shares)
 
 
 def draw_pool(region: RegionConfig, n: int, oversampling: float, seed: int) -> pd.DataFrame:
@@ -201,6 +218,19 @@ def train(
         seconds = time.perf_counter() - t0
         card = model_card(tcl, samples, trained, labels)
     return Trained(Artefact(card, trained.members, trained.distilled), seconds, sample_splits(samples))
+
+
+def prior_groups(art: Artefact) -> dict[str, Any]:
+    """The region prior a model's probabilities carry: its source, conversion share, and whether an estimate was refused."""
+    cal = art.card.calibration
+    return {"source": cal.prior_source, "conversion": round(float(cal.prior_groups().get("conversion", float("nan"))), 4)}
+
+
+def with_shares(art: Artefact, shares: dict[str, float]) -> Artefact:
+    """``art`` with its probabilities moved to the label groups' ``shares`` (the training sample's mix within each group)."""
+    cal = art.card.calibration
+    q = prior_from_shares(shares, np.asarray(cal.train_prior))
+    return replace(art, card=replace(art.card, calibration=replace(cal, target_prior=[float(v) for v in q], prior_source="shares")))
 
 
 def score(art: Artefact, reg: Regions, cfg: LabelsBenchConfig) -> dict[str, float]:
@@ -342,6 +372,8 @@ def corrupt(table: pd.DataFrame, share: float, years: list[int], rng: np.random.
 def noise_part(cfg: LabelsBenchConfig, tc: TrainConfig, reg: Regions, pool: pd.DataFrame, log: list[str]) -> dict[str, Any]:
     years = list(range(int(pool.loc[pool.label == "conversion", "onset_year"].min()), int(pool.loc[pool.label == "conversion", "onset_year"].max()) + 1))
     res: dict[str, dict[str, list[dict[str, float]]]] = {loss: {str(lv): [] for lv in cfg.noise_levels} for loss in cfg.noise_losses}
+    own: dict[str, dict[str, list[dict[str, float]]]] = {loss: {str(lv): [] for lv in cfg.noise_levels} for loss in cfg.noise_losses}
+    priors: dict[str, dict[str, list[dict[str, Any]]]] = {loss: {str(lv): [] for lv in cfg.noise_levels} for loss in cfg.noise_losses}
     for seed in cfg.noise_seeds:
         rng = np.random.default_rng(np.random.SeedSequence([seed, 37]))
         base = pool.iloc[rng.choice(len(pool), cfg.noise_labels, replace=False)]
@@ -349,14 +381,33 @@ def noise_part(cfg: LabelsBenchConfig, tc: TrainConfig, reg: Regions, pool: pd.D
             noisy = corrupt(base, lv, years, np.random.default_rng(np.random.SeedSequence([seed, 41, int(lv * 100)])))
             for loss in cfg.noise_losses:
                 t = train(replace(tc, training=replace(tc.training, seed=seed, loss=loss)), noisy)
-                sc = score(t.art, reg, cfg)
+                sc, so = score(with_shares(t.art, reg.train_shares), reg, cfg), score(t.art, reg, cfg)
                 res[loss][str(lv)].append(sc)
-                log.append(f"noise {lv:.0%} loss {loss} seed {seed}: {sc}")
-    table = {loss: {lv: {k: round(float(np.median([s[k] for s in v])), 4) for k in SCORES} for lv, v in d.items()} for loss, d in res.items()}
+                own[loss][str(lv)].append(so)
+                priors[loss][str(lv)].append(prior_groups(t.art))
+                log.append(f"noise {lv:.0%} loss {loss} seed {seed}: {sc} with the true shares; {so} with its own prior {priors[loss][str(lv)][-1]}")
+
+    def medians(r: dict[str, dict[str, list[dict[str, float]]]]) -> dict[str, dict[str, dict[str, float]]]:
+        return {loss: {lv: {k: round(float(np.median([s[k] for s in v])), 4) for k in SCORES} for lv, v in d.items()} for loss, d in r.items()}
+
+    table, own_table = medians(res), medians(own)
     clean = {loss: table[loss][str(cfg.noise_levels[0])] for loss in table}
     at20 = str(0.2) if str(0.2) in next(iter(table.values())) else None
     loss_at_20 = {loss: round(table[loss][at20]["conversion_f1"] - clean["ce"]["conversion_f1"], 4) for loss in table} if at20 and "ce" in clean else {}
-    return {"levels": cfg.noise_levels, "labels": cfg.noise_labels, "seeds": cfg.noise_seeds, "by_loss": table, "conversion_f1_change_at_20pct_vs_clean_ce": loss_at_20}
+    # Against each loss's own clean run: what the noise costs that loss.
+    own_loss_at_20 = {loss: round(table[loss][at20]["conversion_f1"] - clean[loss]["conversion_f1"], 4) for loss in table} if at20 else {}
+    return {
+        "levels": cfg.noise_levels,
+        "labels": cfg.noise_labels,
+        "seeds": cfg.noise_seeds,
+        "prior": "the training region's true shares",
+        "true_shares": {k: round(v, 4) for k, v in reg.train_shares.items()},
+        "by_loss": table,
+        "conversion_f1_change_at_20pct_vs_clean_ce": loss_at_20,
+        "conversion_f1_change_at_20pct_vs_same_loss_clean": own_loss_at_20,
+        "by_loss_own_prior": own_table,
+        "own_prior": priors,
+    }
 
 
 def surrogate_part(cfg: LabelsBenchConfig, tc: TrainConfig, reg: Regions, pool: pd.DataFrame, log: list[str]) -> dict[str, Any]:
@@ -368,15 +419,20 @@ def surrogate_part(cfg: LabelsBenchConfig, tc: TrainConfig, reg: Regions, pool: 
     ``surrogate.weight`` each.
     """
     out: dict[str, list[dict[str, float]]] = {}
+    own: dict[str, list[dict[str, Any]]] = {}
     stacks = open_region(tc.region)
+
+    def record(name: str, t: Trained, seed: int) -> None:
+        out.setdefault(name, []).append(score(with_shares(t.art, reg.train_shares), reg, cfg))
+        own.setdefault(name, []).append(score(t.art, reg, cfg) | {"prior": prior_groups(t.art)})
+        log.append(f"{name} seed {seed}: {out[name][-1]} with the true shares; {own[name][-1]} with its own prior")
+
     for seed in cfg.surrogate_seeds:
         rng = np.random.default_rng(np.random.SeedSequence([seed, 43]))
         order = rng.permutation(len(pool))
         tcs = replace(tc, training=replace(tc.training, seed=seed))
         base = pool.iloc[order[: max(cfg.surrogate_trusted)]]
-        t = train(tcs, base)
-        out.setdefault(f"trusted_{len(base)}_alone", []).append(score(t.art, reg, cfg))
-        log.append(f"{len(base)} trusted alone seed {seed}: {out[f'trusted_{len(base)}_alone'][-1]}")
+        record(f"trusted_{len(base)}_alone", train(tcs, base), seed)
         for n in cfg.surrogate_trusted:
             if n == 0:
                 rule = draw_rule_labels(stacks, tc.region.bands, n=cfg.surrogate_pixels, seed=seed)
@@ -385,10 +441,9 @@ def surrogate_part(cfg: LabelsBenchConfig, tc: TrainConfig, reg: Regions, pool: 
                 t = train(replace(tcs, calibration=replace(tcs.calibration, prior="sample")), rule.assign(x=rx, y=ry))
             else:
                 t = train(replace(tcs, surrogate=replace(tcs.surrogate, pixels=cfg.surrogate_pixels, seed=seed)), base.iloc[:n])
-            out.setdefault(f"rule_plus_{n}_trusted", []).append(score(t.art, reg, cfg))
-            log.append(f"rule + {n} trusted seed {seed}: {out[f'rule_plus_{n}_trusted'][-1]}")
+            record(f"rule_plus_{n}_trusted", t, seed)
     doc: dict[str, Any] = {name: {k: round(float(np.median([s[k] for s in v])), 4) for k in SCORES} for name, v in out.items()}
-    return doc | {"rule_pixels": cfg.surrogate_pixels, "seeds": cfg.surrogate_seeds}
+    return doc | {"rule_pixels": cfg.surrogate_pixels, "seeds": cfg.surrogate_seeds, "prior": "the training region's true shares", "own_prior": own}
 
 
 def new_year_part(cfg: LabelsBenchConfig, tc: TrainConfig, reg: Regions, pool: pd.DataFrame, log: list[str]) -> dict[str, Any]:
@@ -454,6 +509,9 @@ def run(cfg: LabelsBenchConfig) -> dict[str, Any]:
     }
     doc["log"] = log
     doc["parts_done"] = []
+    if cfg.merge and Path(cfg.out).is_file():
+        doc = merged_start(doc, Path(cfg.out), cfg.parts)
+        log = doc["log"]
     for part in PARTS:
         if part not in cfg.parts:
             continue
@@ -469,6 +527,34 @@ def run(cfg: LabelsBenchConfig) -> dict[str, Any]:
         write_object(doc, cfg.out)
     figure(doc, Path(cfg.plot))
     return doc
+
+
+def merged_start(doc: dict[str, Any], earlier_path: Path, redo: list[str]) -> dict[str, Any]:
+    """``doc`` seeded with the parts of the result at ``earlier_path`` that this run does not redo.
+
+    Refused unless the earlier run had the same region, pool and training
+    settings: parts trained otherwise are not comparable.
+    """
+    earlier = json.loads(earlier_path.read_text())
+    for key in ("region", "settings"):
+        if earlier.get(key) != doc[key]:
+            raise ConfigError(f"{earlier_path}: merge=true: its {key!r} differs from this run's ({earlier.get(key)!r} against {doc[key]!r}); rerun every part instead")
+    keys = {"active": ("rounds", "suggest_gain", "labels_saved", "labels_to_reach_random_final", "suggest_beats_random_after_first", "warm_start")}
+    kept = [p for p in earlier.get("parts_done", []) if p not in redo]
+    out = dict(doc)
+    for part in kept:
+        for key in keys.get(part, (part,)):
+            if key in earlier:
+                out[key] = earlier[key]
+    out["parts_done"] = kept
+    out["log"] = [line for line in earlier.get("log", []) if not any(line.startswith(prefix) for prefix in _LOG_PREFIXES if _LOG_PART[prefix] in redo)]
+    out["merged_from_earlier_run"] = kept
+    out["earlier_seconds"] = earlier.get("seconds")
+    return out
+
+
+_LOG_PART = {"seed ": "active", "noise ": "noise", "rule_": "surrogate", "trusted_": "surrogate", "400 trusted": "surrogate", "rule + ": "surrogate", "new year ": "new_year"}
+_LOG_PREFIXES = tuple(_LOG_PART)
 
 
 def figure(doc: dict[str, Any], dest: Path) -> Path:

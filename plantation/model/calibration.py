@@ -358,6 +358,30 @@ def bbse_prior(
     return _normalised(_spread(q, src, grp) if groups is not None else q, floor)
 
 
+def vanished_groups(prior: np.ndarray, targets: np.ndarray, *, floor: float = 1e-6) -> list[str]:
+    """Label groups a region prior (k,) leaves at the floor although labelled points of the same region (``targets``, outcome indices) hold them.
+
+    Points labelled in a region prove each of their groups covers some of it,
+    so a prior with none of one is a contradiction, not a finding. Black-box
+    shift estimation reaches it when its assumptions fail: wrong labels among
+    the validation points (the confusion matrix is then measured against
+    them, Lipton et al. 2018 assume it is not), or a sample whose p(x | label)
+    is not the region's. A group counts as vanished when its share is at most
+    ``floor`` per outcome (the least :func:`bbse_prior` keeps).
+
+    Returns:
+        The names (:data:`GROUP_NAMES`) of the vanished groups, in that order.
+    """
+    q = np.asarray(prior, dtype=np.float64)
+    k = len(q)
+    grp = outcome_groups(k)
+    share = np.bincount(grp, weights=q, minlength=len(GROUP_NAMES))
+    size = np.bincount(grp, minlength=len(GROUP_NAMES))
+    held = np.bincount(grp[_targets(targets, k, "vanished_groups")], minlength=len(GROUP_NAMES))
+    # 1.5 × the floor per outcome: the floor, renormalised, can sit a hair above it.
+    return [GROUP_NAMES[g] for g in range(len(GROUP_NAMES)) if held[g] > 0 and share[g] <= 1.5 * floor * size[g]]
+
+
 _RECAL_EPS = 1e-6
 
 

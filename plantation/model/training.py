@@ -427,6 +427,18 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
     # The metrics above are of the sample-mix probabilities on stratified points; the card's prior applies from here on.
     source = resolve_prior(cfg.calibration, cfg.region.labels)
     q = target_prior(source, cfg, cal, samples, np.exp(val_lp), nets=nets, stacks=stacks, labels=labels)
+    refused: dict[str, Any] | None = None
+    gone = calibration.vanished_groups(q, samples.target) if source == "bbse" and q is not None else []
+    if gone:
+        # A map with no conversion anywhere would answer nothing; the sample's mix over-states conversion, but says so on the card.
+        estimate = np.bincount(calibration.outcome_groups(len(q)), weights=q)
+        refused = {"source": source, "vanished": gone, "estimate_groups": {n: round(float(v), 6) for n, v in zip(calibration.GROUP_NAMES, estimate, strict=True)}}
+        log.warning(
+            "calibration.prior: bbse estimated no %s in the region although the labels hold some (wrong labels, or points not drawn like the region's pixels); "
+            "the sample's mix is kept instead: give region.labels.population_shares or inclusion_column",
+            " or ".join(gone),
+        )
+        q, source = None, "sample"
     if q is not None:
         cal.target_prior = [float(v) for v in q]
     cal.prior_source = source
@@ -441,6 +453,8 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
         "sample_prior_groups": Calibration(train_prior=cal.train_prior).prior_groups(),
         "metrics_prior": "sample",
     }
+    if refused is not None:
+        record["refused"] = refused
     metrics["prior"] = record
     metrics["validation"]["prior"] = record
     log.info("probabilities for the %s prior: %s", source, record["target_prior_groups"])
