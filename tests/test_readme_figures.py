@@ -16,6 +16,7 @@ from plantation.benchmarks.readme import (
     demo_plots_block,
     demo_plots_truth_block,
     demo_timing_block,
+    labels_block,
     mapping_speed_block,
     markdown_table,
     read_memory_block,
@@ -25,7 +26,7 @@ from plantation.benchmarks.readme import (
 from plantation.errors import PlantationError
 from plantation.imagery.config import RegionConfig
 
-NAMES = ("demo-assessment", "demo-plots", "demo-plots-truth", "read-memory", "mapping-speed", "demo-timing", "accuracy-benchmark", "network-ablation")
+NAMES = ("demo-assessment", "demo-plots", "demo-plots-truth", "read-memory", "mapping-speed", "demo-timing", "accuracy-benchmark", "network-ablation", "labels-benchmark")
 
 
 def est(estimate: float, lo: float, hi: float, **extra: float) -> dict[str, float]:
@@ -348,3 +349,58 @@ def test_ablation_block_puts_each_design_side_by_side():
     assert "| `year_exact` | 0.600 (0.590–0.610) | 0.650 (0.640–0.660) | 0.710 | 0.700 (0.690–0.710) |" in text
     assert "| seconds to map the held-out region | 60 | 60 | 20 | 60 |" in text
     assert "`a.json`, `b.json`, `c.json`" in text
+
+
+def _labels_doc() -> dict:
+    curve = {"year_exact": [0.6, 0.7], "conversion_f1": [0.8, 0.85], "per_seed": {"year_exact": [[0.6, 0.7], [0.58, 0.72]], "conversion_f1": [[0.8, 0.85], [0.79, 0.86]]}}
+    random = {"year_exact": [0.6, 0.65], "conversion_f1": [0.8, 0.82], "per_seed": {"year_exact": [[0.6, 0.65], [0.58, 0.66]], "conversion_f1": [[0.8, 0.82], [0.79, 0.83]]}}
+    f1 = {"ce": {"0.0": 0.80, "0.2": 0.74}, "sce": {"0.0": 0.81, "0.2": 0.78}}
+    own = {loss: {lv: [{"source": "bbse", "conversion": 0.1}] for lv in d} for loss, d in f1.items()}
+    return {
+        "settings": {"members": 2, "max_epochs": 40, "seeds": [0, 1], "threads": 2},
+        "rounds": {"labels": [400, 600], "suggest": curve, "random": random},
+        "suggest_beats_random_after_first": [True],
+        "labels_saved": 0.31,
+        "labels_to_reach_random_final": 414.0,
+        "warm_start": {"time_ratio": 0.42, "score_difference": {"year_exact": 0.004, "conversion_f1": -0.012}},
+        "new_year": {"year_exact_difference": -0.01, "time_ratio": 0.47},
+        "noise": {
+            "levels": [0.0, 0.2],
+            "labels": 1000,
+            "seeds": [0],
+            "by_loss": {loss: {lv: {"conversion_f1": v, "year_exact": 0.5} for lv, v in d.items()} for loss, d in f1.items()},
+            "by_loss_own_prior": {loss: {lv: {"conversion_f1": v - 0.01, "year_exact": 0.5} for lv, v in d.items()} for loss, d in f1.items()},
+            "own_prior": own,
+            "conversion_f1_change_at_20pct_vs_clean_ce": {"ce": -0.06, "sce": -0.02},
+        },
+        "surrogate": {
+            "trusted_400_alone": {"conversion_f1": 0.78, "year_exact": 0.55},
+            "rule_plus_100_trusted": {"conversion_f1": 0.79, "year_exact": 0.5},
+            "rule_pixels": 4000,
+            "seeds": [0],
+            "own_prior": {"trusted_400_alone": [{"conversion_f1": 0.7}], "rule_plus_100_trusted": [{"conversion_f1": 0.6}]},
+        },
+    }
+
+
+def line_of(body: str, start: str) -> str:
+    """The table line of ``body`` whose first cell starts with ``start``."""
+    hits = [line for line in body.splitlines() if line.startswith(f"| {start}")]
+    assert len(hits) == 1, body
+    return hits[0]
+
+
+def test_labels_block_says_which_targets_are_met():
+    body = labels_block(_labels_doc(), source="l.json")
+    assert line_of(body, "suggested labels ahead") == "| suggested labels ahead of random at every round after the first | 600 labels: yes | met |"
+    assert line_of(body, "random's final") == "| random's final `year_exact` reached with ≥ 30% fewer labels | 31% fewer (414 of 600) | met |"
+    # The best loss at 20 %: sce, 0.02 below clean ce.
+    assert line_of(body, "at 20% wrong labels").endswith("| sce: -0.020 (clean `ce` 0.800) | met |")
+    assert line_of(body, "rule labels + 100").endswith("| 0.790 against 0.780 | met |")
+    # conversion_f1 0.012 lower is more than the 0.01 counted as equal.
+    assert line_of(body, "a warm start").endswith("| missed |")
+    assert line_of(body, "the new-year extension").endswith("| `year_exact` -0.010, time × 0.47 | met |")
+    assert row(body, "600") == "| 600 | 0.700 (0.700–0.720) | 0.850 (0.850–0.860) | 0.650 (0.650–0.660) | 0.820 (0.820–0.830) |"
+    assert row(body, "20%") == "| 20% | 0.740 | 0.780 | 0.730 (0.100, bbse) | 0.770 (0.100, bbse) |"
+    assert row(body, "trusted 400 alone") == "| trusted 400 alone | 0.780 | 0.550 | 0.700 |"
+

@@ -19,7 +19,8 @@ The blocks and their sources:
   and ``<map_dir>/summary.json`` (:class:`plantation.mapping.job.MapSummary`);
 * ``read-memory``: ``<results_dir>/read_memory.json`` (:mod:`plantation.benchmarks.reading`);
 * ``mapping-speed``: ``<results_dir>/speed.json`` (:mod:`plantation.benchmarks.speed`);
-* ``accuracy-benchmark``: ``<results_dir>/accuracy.json`` (:mod:`plantation.benchmarks.accuracy`).
+* ``accuracy-benchmark``: ``<results_dir>/accuracy.json`` (:mod:`plantation.benchmarks.accuracy`);
+* ``labels-benchmark``: ``<results_dir>/labels.json`` (:mod:`plantation.benchmarks.labels`).
 
 Every block ends with one line saying where its figures come from and whether
 they repeat to the digit on one machine (seeded, deterministic training;
@@ -490,6 +491,104 @@ def accuracy_block(doc: dict[str, Any], *, source: str) -> str:
     return _body(table, note)
 
 
+#: Labels benchmark: the issue's targets, in words.
+LABELS_TARGETS: dict[str, str] = {
+    "beats": "suggested labels ahead of random at every round after the first",
+    "saved": "random's final `year_exact` reached with ≥ 30% fewer labels",
+    "noise": "at 20% wrong labels, the best loss within 0.03 `conversion_f1` of clean labels",
+    "surrogate": "rule labels + 100 trusted ahead of 400 trusted alone on `conversion_f1`",
+    "warm": "a warm start in under half the time of training afresh, scores equal (within 0.01) or better",
+    "new_year": "the new-year extension within 0.02 `year_exact` of training afresh, in under half its time",
+}
+
+
+def _range(per_seed: Sequence[Sequence[float]], i: int) -> str:
+    vals = [run[i] for run in per_seed]
+    return f"({_fmt(min(vals), '.3f')}–{_fmt(max(vals), '.3f')})"
+
+
+def labels_block(doc: dict[str, Any], *, source: str) -> str:
+    """The labels benchmark: learning curves, the targets, labels made wrong, and rule labels.
+
+    Args:
+        doc: ``labels.json`` as :func:`plantation.benchmarks.labels.run` writes it (every part done).
+        source: its path as the README shows it.
+    """
+    r = doc["rounds"]
+    curve_rows = []
+    for i, n in enumerate(r["labels"]):
+        row = [str(n)]
+        for s in ("suggest", "random"):
+            for k in ("year_exact", "conversion_f1"):
+                row.append(f"{_fmt(r[s][k][i], '.3f')} {_range(r[s]['per_seed'][k], i)}")
+        curve_rows.append(row)
+    curves = markdown_table(["labels", "suggested: `year_exact`", "suggested: `conversion_f1`", "random: `year_exact`", "random: `conversion_f1`"], curve_rows)
+
+    nz = doc["noise"]
+    levels = [str(v) for v in nz["levels"]]
+    losses = list(nz["by_loss"])
+    clean = nz["by_loss"]["ce"][levels[0]]["conversion_f1"]
+    at20 = nz["conversion_f1_change_at_20pct_vs_clean_ce"]
+    best = max(at20, key=lambda k: at20[k])
+    noise_rows = []
+    for lv in levels:
+        row = [f"{_fmt(100 * float(lv), '.0f')}%"]
+        row += [_fmt(nz["by_loss"][loss][lv]["conversion_f1"], ".3f") for loss in losses]
+        row += [
+            f"{_fmt(nz['by_loss_own_prior'][loss][lv]['conversion_f1'], '.3f')} ({_fmt(nz['own_prior'][loss][lv][0]['conversion'], '.3f')}, {nz['own_prior'][loss][lv][0]['source']})"
+            for loss in losses
+        ]
+        noise_rows.append(row)
+    noise = markdown_table(
+        ["wrong labels", *(f"{loss}: true shares" for loss in losses), *(f"{loss}: own prior (its conversion share, source)" for loss in losses)],
+        noise_rows,
+    )
+
+    sg = doc["surrogate"]
+    names = [k for k, v in sg.items() if isinstance(v, dict) and "conversion_f1" in v]
+    sur_rows = [[k.replace("_", " "), _fmt(sg[k]["conversion_f1"], ".3f"), _fmt(sg[k]["year_exact"], ".3f"), _fmt(sg["own_prior"][k][0]["conversion_f1"], ".3f")] for k in names]
+    surrogate = markdown_table(["labels", "`conversion_f1`", "`year_exact`", "`conversion_f1`, own prior"], sur_rows)
+    trusted = next(k for k in names if k.startswith("trusted_"))
+    plus100 = sg.get("rule_plus_100_trusted")
+
+    ws, ny = doc["warm_start"], doc["new_year"]
+    warm_ok = ws["time_ratio"] < 0.5 and min(ws["score_difference"].values()) >= -0.01
+    beats = doc["suggest_beats_random_after_first"]
+    target_rows = [
+        [LABELS_TARGETS["beats"], ", ".join(f"{n} labels: {'yes' if b else 'no'}" for n, b in zip(r["labels"][1:], beats, strict=True)), _met(all(beats))],
+        [LABELS_TARGETS["saved"], f"{_fmt(100 * doc['labels_saved'], '.0f')}% fewer ({_fmt(doc['labels_to_reach_random_final'], ',.0f')} of {r['labels'][-1]})", _met(doc["labels_saved"] >= 0.30)],
+        [LABELS_TARGETS["noise"], f"{best}: {_fmt(at20[best], '+.3f')} (clean `ce` {_fmt(clean, '.3f')})", _met(at20[best] >= -0.03)],
+        [
+            LABELS_TARGETS["surrogate"],
+            f"{_fmt(plus100['conversion_f1'], '.3f')} against {_fmt(sg[trusted]['conversion_f1'], '.3f')}" if plus100 else "not run",
+            _met(bool(plus100) and plus100["conversion_f1"] > sg[trusted]["conversion_f1"]),
+        ],
+        [
+            LABELS_TARGETS["warm"],
+            f"time × {_fmt(ws['time_ratio'], '.2f')}; `year_exact` {_fmt(ws['score_difference']['year_exact'], '+.3f')}, `conversion_f1` {_fmt(ws['score_difference']['conversion_f1'], '+.3f')}",
+            _met(warm_ok),
+        ],
+        [
+            LABELS_TARGETS["new_year"],
+            f"`year_exact` {_fmt(ny['year_exact_difference'], '+.3f')}, time × {_fmt(ny['time_ratio'], '.2f')}",
+            _met(abs(ny["year_exact_difference"]) <= 0.02 and ny["time_ratio"] < 0.5),
+        ],
+    ]
+    targets = markdown_table(["target", "measured", ""], target_rows)
+    st = doc["settings"]
+    table = (
+        f"{targets}\n\n**What to label next** (held-out region scored wall to wall; medians over seeds {st['seeds']}, range in brackets):\n\n{curves}"
+        f"\n\n**Labels made wrong** ({nz['labels']} labels, seed {nz['seeds']}; `conversion_f1` with the training region's true class shares, "
+        f"then with the prior each model chose for itself):\n\n{noise}"
+        f"\n\n**Rule labels** ({sg['rule_pixels']:,} pixels labelled by the index-drop rule, seed {sg['seeds']}; true class shares, then each model's own prior):\n\n{surrogate}"
+    )
+    note = (
+        f"Generated by `{COMMAND}` from `{source}`: {st['members']} members per model, at most {st['max_epochs']} epochs, on {st['threads']} threads. "
+        "Scores are reproducible to the digit on one machine with the same library versions; times vary between machines and runs."
+    )
+    return _body(table, note)
+
+
 #: Ablation rows: key of a method's results, label, decimals.
 _ABLATION_ROWS: tuple[tuple[str, str, int], ...] = (
     ("year_exact", "`year_exact`", 3),
@@ -617,6 +716,7 @@ def blocks(cfg: ReadmeConfig) -> list[Block]:
     metrics, summary = train / "metrics.json", maps / "summary.json"
     read, speed, accuracy, plot_truth = results / "read_memory.json", results / "speed.json", results / "accuracy.json", results / "farmplots.json"
     per_date, no_ranges = results / "ablation" / "per_date.json", results / "ablation" / "year_steps_no_ranges.json"
+    labels = results / "labels.json"
     return [
         Block("demo-assessment", ((assessment, "plantation assess"),), lambda d: demo_assessment_block(d[0], source=assessment.as_posix())),
         Block("demo-plots", ((plots, "plantation farmplots"),), lambda d: demo_plots_block(d[0], source=plots.as_posix())),
@@ -634,6 +734,7 @@ def blocks(cfg: ReadmeConfig) -> list[Block]:
             ((per_date, "git checkout 1900564 && plantation benchmark-accuracy"), (no_ranges, f"plantation benchmark-accuracy {NO_RANGES}"), (accuracy, "plantation benchmark-accuracy")),
             lambda d: ablation_block(d, sources=[p.as_posix() for p in (per_date, no_ranges, accuracy)]),
         ),
+        Block("labels-benchmark", ((labels, "plantation benchmark-labels"),), lambda d: labels_block(d[0], source=labels.as_posix())),
     ]
 
 
