@@ -403,4 +403,3 @@ def test_labels_block_says_which_targets_are_met():
     assert row(body, "600") == "| 600 | 0.700 (0.700–0.720) | 0.850 (0.850–0.860) | 0.650 (0.650–0.660) | 0.820 (0.820–0.830) |"
     assert row(body, "20%") == "| 20% | 0.740 | 0.780 | 0.730 (0.100, bbse) | 0.770 (0.100, bbse) |"
     assert row(body, "trusted 400 alone") == "| trusted 400 alone | 0.780 | 0.550 | 0.700 |"
-
