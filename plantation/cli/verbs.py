@@ -80,12 +80,14 @@ def list_runs(cfg: DictConfig) -> None:
 
 
 def map_region(cfg: DictConfig) -> None:
+    from plantation.mapping.catalog import COLLECTION
     from plantation.mapping.folder import NOTICE
     from plantation.mapping.job import MapConfig, run
 
     summary = run(to_object(cfg, MapConfig))
     print("\n".join(summary.lines()))
     print(f"maps in {summary.out_dir} (open the .tif files in QGIS; summary.json has these totals)")
+    print(f"STAC collection {Path(summary.out_dir) / COLLECTION} (the whole region as one layer set in QGIS or any STAC client)")
     print(NOTICE)
 
 

@@ -3,7 +3,8 @@
 Tiles are tasks on dask.distributed (a LocalCluster, or a running scheduler)
 or run one after another in this process; both go through
 :func:`plantation.mapping.tiles.map_tile_task`, so they give the same files.
-Only this process writes ``manifest.json``, after a tile's files are in place.
+Only this process writes ``manifest.json``, after a tile's files are in place,
+and after each manifest the region's STAC Collection (:mod:`plantation.mapping.catalog`).
 """
 
 from __future__ import annotations
@@ -19,6 +20,7 @@ from typing import Any
 from plantation.errors import ConfigError, PlantationError
 from plantation.imagery.config import RegionConfig
 from plantation.imagery.region import open_region, open_tile
+from plantation.mapping.catalog import write_collection
 from plantation.mapping.folder import NOTICE, RECALIBRATION, Manifest, TileResult, file_digest, open_map
 from plantation.mapping.tiles import Settings, TileJob, input_signature, map_tile_task, tile_key
 from plantation.model.artefact import Artefact, load
@@ -189,13 +191,19 @@ def _progress(total: int, unit: str, desc: str, enabled: bool, position: int = 0
     return tqdm(total=total, unit=unit, desc=desc, disable=not enabled, unit_scale=unit == "px", position=position, leave=position == 0, dynamic_ncols=True)
 
 
+def _record(manifest: Manifest, result: TileResult, cfg: MapConfig) -> None:
+    """Record a finished tile in the manifest, then rewrite the map folder's STAC Collection over the tiles it lists."""
+    manifest.record(result)
+    write_collection(Path(cfg.out_dir), manifest.tiles, name=cfg.region.name)
+
+
 def _run_here(jobs: list[TileJob], manifest: Manifest, cfg: MapConfig, pixels_of: dict[str, int]) -> list[TileResult]:
     results = []
     tiles_bar = _progress(len(jobs), "tile", "tiles", cfg.progress)
     for job in jobs:
         with _progress(pixels_of[job.tile.name], "px", f"tile {job.tile.name}", cfg.progress, position=1) as bar:
             res = map_tile_task(job, on_window=bar.update)
-        manifest.record(res)
+        _record(manifest, res, cfg)
         results.append(res)
         tiles_bar.update(1)
     tiles_bar.close()
@@ -219,7 +227,7 @@ def _run_dask(jobs: list[TileJob], manifest: Manifest, cfg: MapConfig, pixels_of
             t0, done_px = time.perf_counter(), 0
             for fut in as_completed(futures):
                 res = fut.result()
-                manifest.record(res)
+                _record(manifest, res, cfg)
                 results.append(res)
                 done_px += res.pixels
                 bar.set_postfix_str(f"{done_px / max(time.perf_counter() - t0, 1e-9):,.0f} px/s, {done_px:,}/{total_px:,} px")
@@ -255,6 +263,9 @@ def run(cfg: MapConfig) -> MapSummary:
         results = _run_dask(jobs, manifest, cfg, pixels_of)
     else:
         results = _run_here(jobs, manifest, cfg, pixels_of)
+    if not results and manifest.tiles:
+        # Nothing mapped now: the Collection still covers the finished tiles (a folder mapped before it was written).
+        write_collection(out, manifest.tiles, name=cfg.region.name)
     every = results + done
     years = sorted({y for r in every for y in r.converted_ha})
     summary = MapSummary(
