@@ -6,7 +6,10 @@ import numpy as np
 import pytest
 
 from plantation.errors import ConfigError, RegionError
+from plantation.imagery.config import HarmoniseConfig, RegionConfig, ScalingRule, SensorRule, TileConfig
 from plantation.imagery.harmonise import ETM, MSI, OLI, canonical_sensor, coefficients, harmonise
+from plantation.imagery.region import open_region, open_tile
+from tests.test_products import QA_CLEAR, _region, landsat_scene, s2_product
 
 BANDS = ["blue", "green", "red", "nir", "swir1", "swir2"]
 
@@ -52,3 +55,135 @@ def test_unknown_unnamed_sensors_and_references_are_refused_in_one_line():
         harmonise(x, [OLI, OLI], BANDS, reference="msi")
     with pytest.raises(ValueError, match=r"does not match 3 dates"):
         harmonise(x, [OLI, OLI, OLI], BANDS)
+
+
+# Readers: the sensor of each date, one sorted series, the adjustment in the lazy and windowed paths.
+
+
+#: Landsat Collection 2 Level-2 reflectance of a stored DN (USGS product guide).
+def _landsat(dn: float) -> float:
+    return dn * 0.0000275 - 0.2
+
+
+def _mixed_folder(root):
+    """Scenes of three sensors in one tile folder, out of order by name: ETM+, MSI, OLI, and OLI with MSI on one day."""
+    qa = np.full((6, 6), QA_CLEAR, np.uint16)
+    cloudy = qa.copy()
+    cloudy[0, 0] = QA_CLEAR | 1 << 3  # cloud: a bit flag only the Landsat rule reads
+    landsat_scene(root, "20190105", np.full((6, 6), 10000), qa, sensor="LE07")
+    landsat_scene(root, "20190121", np.full((6, 6), 10000), cloudy, sensor="LC08")
+    landsat_scene(root, "20190301", np.full((6, 6), 12000), qa, sensor="LC09")
+    # SCL 5 (not vegetated) is valid by the scene classes; read as Landsat bits it would be fill (bit 0).
+    s2_product(root, "20190110T023031", "0213", 1500, 2500, np.full((4, 4), 5))
+    s2_product(root, "20190301T023031", "0213", 1700, 2700, np.full((4, 4), 5))
+
+
+def test_a_product_folder_of_three_sensors_is_one_sorted_harmonised_series_with_each_dates_sensor(tmp_path):
+    _mixed_folder(tmp_path)
+    region = _region(tmp_path, harmonise=HarmoniseConfig(enabled=True))
+    st = open_tile(region.tiles[0], region)
+    assert [str(d) for d in st.dates] == ["2019-01-05", "2019-01-10", "2019-01-21", "2019-03-01"]
+    # One date per solar day: on 1 March the reference sensor's scene is kept, Sentinel-2's left out.
+    assert st.sensors == [ETM, MSI, OLI, OLI]
+    refl, valid = st.reflectance.values, st.valid.values
+    blue = [_landsat(10000) * 0.8474 + 0.0003, 0.15 * 0.9778 - 0.004, _landsat(10000), _landsat(12000)]
+    np.testing.assert_allclose(refl[:, 0, 1, 1], blue, rtol=1e-5)
+    # nir: Landsat DN + 300 (fourth band), MSI band 8A at 20 m.
+    nir = [_landsat(10300) * 0.8462 + 0.0412, 0.25 * 0.9983 - 0.0001, _landsat(10300), _landsat(12300)]
+    np.testing.assert_allclose(refl[:, 3, 1, 1], nir, rtol=1e-5)
+    # Each sensor's QA by its own rule.
+    assert valid[1, 1, 1] and not valid[2, 0, 0] and valid[2, 1, 1]
+
+
+def test_harmonisation_off_leaves_a_product_folder_of_several_sensors_refused(tmp_path):
+    _mixed_folder(tmp_path)
+    region = _region(tmp_path)
+    with pytest.raises(RegionError, match=r"several sensors \['landsat_etm', 'landsat_oli', 'sentinel2_msi'\].*region.harmonise.enabled: true") as e:
+        open_tile(region.tiles[0], region)
+    assert "\n" not in str(e.value)
+
+
+def test_one_sensor_product_folders_read_as_before_with_or_without_harmonisation(tmp_path):
+    landsat_scene(tmp_path, "20190105", np.full((6, 6), 10000), np.full((6, 6), QA_CLEAR, np.uint16))
+    plain, harmonised = _region(tmp_path), _region(tmp_path, harmonise=HarmoniseConfig(enabled=True))
+    a, b = (open_tile(r.tiles[0], r) for r in (plain, harmonised))
+    np.testing.assert_array_equal(a.reflectance.values, b.reflectance.values)
+    assert a.sensors == b.sensors == [OLI]
+
+
+def _rules():
+    return [SensorRule(pattern="scene_2015-*", sensor="etm+"), SensorRule(pattern="*", sensor="oli")]
+
+
+def test_geotiff_folder_sensors_come_from_file_name_rules_and_default_to_one_unnamed_sensor(make_region):
+    region = make_region()
+    assert open_tile(region.tiles[0], region).sensors == [""] * 5
+    region = make_region(sensors=_rules())
+    assert open_tile(region.tiles[0], region).sensors == [ETM, ETM, OLI, OLI, OLI]
+    region = make_region(sensors=[SensorRule(pattern="scene_2016-*", sensor="oli")])
+    with pytest.raises(RegionError, match=r"scene_2015-02-14.tif matches no region.sensors pattern \['scene_2016-\*'\]"):
+        open_tile(region.tiles[0], region)
+    region = make_region(sensors=[SensorRule(pattern="*", sensor="")])
+    with pytest.raises(ConfigError, match=r"region.sensors\[0\]: no sensor named"):
+        open_tile(region.tiles[0], region)
+
+
+def test_geotiff_folder_harmonised_lazy_and_windowed_reads_agree_and_equal_the_pure_function(make_region, tiny_values):
+    qa = np.zeros((5, 8, 8), np.int16)
+    qa[0, 2, 3] = 1  # cloud on an ETM+ date
+    rules = [ScalingRule(start=None, scale=1e-4, offset=0.0), ScalingRule(start="2016-01-01", scale=1e-4, offset=-0.1)]
+    vals = tiny_values.copy()
+    vals[2:] += 1000
+    plain = open_tile((r := make_region(values=vals, qa=qa, scaling=rules, sensors=_rules())).tiles[0], r)
+    region = make_region(values=vals, qa=qa, scaling=rules, sensors=_rules(), harmonise=HarmoniseConfig(enabled=True, reference="OLI"))
+    st = open_tile(region.tiles[0], region)
+    assert st.reader is not None
+    lazy = st.reflectance.values
+    for r0, c0, h, w in [(0, 0, 8, 8), (1, 2, 5, 3), (7, 7, 1, 1)]:
+        refl, valid = st.read(r0, c0, h, w)
+        np.testing.assert_array_equal(refl, lazy[:, :, r0 : r0 + h, c0 : c0 + w])
+        np.testing.assert_array_equal(valid, st.valid.values[:, r0 : r0 + h, c0 : c0 + w])
+    want = harmonise(plain.reflectance.values, plain.sensors, BANDS)
+    np.testing.assert_allclose(lazy, want, rtol=1e-6, equal_nan=True)
+    assert np.isnan(lazy[0, :, 2, 3]).all()
+    np.testing.assert_array_equal(lazy[2:], plain.reflectance.values[2:])  # OLI dates untouched
+    assert not np.allclose(lazy[:2], plain.reflectance.values[:2])
+
+
+def test_harmonising_an_unnamed_sensor_is_refused_naming_the_key(make_region):
+    region = make_region(harmonise=HarmoniseConfig(enabled=True))
+    with pytest.raises(RegionError, match=r"date 1: its sensor is not named.*region.sensors"):
+        open_tile(region.tiles[0], region)
+
+
+def test_a_cube_takes_each_dates_sensor_from_its_sensor_coordinate(tmp_path, tiny_values):
+    import rioxarray  # noqa: F401
+    import xarray as xr
+
+    from tests.conftest import BANDS as CUBE_BANDS
+    from tests.conftest import CRS, DATES, TRANSFORM
+
+    da = xr.DataArray(
+        tiny_values,
+        dims=("time", "band", "y", "x"),
+        coords={"time": np.array(DATES, dtype="datetime64[ns]"), "band": CUBE_BANDS, "sensor": ("time", ["LE07", "LE07", "msi", "oli", "oli"])},
+    )
+    da = da.rio.write_crs(CRS).rio.write_transform(TRANSFORM)
+    da = da.assign_coords(x=TRANSFORM.c + 30.0 * (np.arange(8) + 0.5), y=TRANSFORM.f - 30.0 * (np.arange(8) + 0.5))
+    path = tmp_path / "cube.nc"
+    da.to_dataset(name="reflectance").to_netcdf(path)
+    region = RegionConfig(name="c", format="cube", tiles=[TileConfig(name="t1", path=str(path))], bands=BANDS, scaling=[ScalingRule(scale=1e-4)], chunk=4, harmonise=HarmoniseConfig(enabled=True))
+    st = open_tile(region.tiles[0], region)
+    assert st.sensors == [ETM, ETM, MSI, OLI, OLI]
+    np.testing.assert_allclose(st.reflectance.values[2, 2], (tiny_values[2, 2] * 1e-4) * 0.9765 + 0.0009, rtol=1e-5)
+
+
+def test_tiles_with_other_sensors_on_a_date_are_refused(make_region, tmp_path):
+    from tests.conftest import DATES, write_stack
+
+    other = write_stack(tmp_path / "t2", DATES, np.full((5, 6, 8, 8), 500, np.int16), np.zeros((5, 8, 8), np.int16))
+    (other / f"scene_{DATES[0]}.tif").rename(other / f"etm_scene_{DATES[0]}.tif")
+    region = make_region(sensors=[SensorRule(pattern="etm_*", sensor="etm"), SensorRule(pattern="*", sensor="oli")])
+    region.tiles.append(TileConfig(name="t2", path=str(other)))
+    with pytest.raises(RegionError, match=r"t2: date 2015-02-14 is landsat_etm, tile 't1''s is landsat_oli; all tiles need the same sensor on each date"):
+        open_region(region)

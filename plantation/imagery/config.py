@@ -92,6 +92,32 @@ class TileConfig:
 
 
 @dataclass
+class SensorRule:
+    """The sensor of a GeoTIFF folder's files (or a cube's dates) whose file name matches ``pattern``.
+
+    Product folders and STAC items name each scene's sensor themselves and
+    take no rule.
+    """
+
+    #: A glob on the file name (``LE07_*``, ``*_S2*``); ``*``: every file.
+    pattern: str = "*"
+    #: The sensor's name: ``landsat_oli`` (Landsat 8 and 9), ``landsat_etm``
+    #: (Landsat 7), ``sentinel2_msi`` (Sentinel-2A/B/C), the short names
+    #: ``oli``, ``etm``, ``msi``, or any other name (not harmonised).
+    sensor: str = MISSING
+
+
+@dataclass
+class HarmoniseConfig:
+    """Whether each date's reflectance is adjusted to a reference sensor with published coefficients (:mod:`plantation.imagery.harmonise`)."""
+
+    #: False: every date as stored (the default, and the reading before this existed).
+    enabled: bool = False
+    #: The sensor every date is brought to; only ``oli`` has published tables towards it.
+    reference: str = "oli"
+
+
+@dataclass
 class PopulationShares:
     """Share of the region's area in each label group, where known from elsewhere (a published statistic, an earlier assessment).
 
@@ -185,3 +211,10 @@ class RegionConfig:
     #: Last acquisition date read (ISO ``YYYY-MM-DD``); later dates are left
     #: out as if not delivered yet. None: every date.
     end_date: str | None = None
+    #: The sensor of each date of a GeoTIFF folder or cube: rules tried in
+    #: order on each file's name, the first match wins (a cube's ``sensor``
+    #: coordinate along time, when it has one, wins over them). Empty: one
+    #: unnamed sensor. Product folders and STAC name their scenes' sensors.
+    sensors: list[SensorRule] = field(default_factory=list)
+    #: Adjust each date to a reference sensor (``{enabled: true, reference: oli}``).
+    harmonise: HarmoniseConfig = field(default_factory=HarmoniseConfig)

@@ -13,6 +13,20 @@ A region is a list of tiles. Each tile is either
   loaded by odc-stac onto the tile's grid (``tiles[].grid``, or the first
   scene's), one date per solar day, with the products' own scaling and masks.
 
+Each date's sensor is recorded (``TileStack.sensors``): product folders and
+STAC items name it; a GeoTIFF folder's or cube's files take it from
+``region.sensors`` (rules on file names; none: one unnamed sensor). Dates of
+several sensors in one tile make one series sorted by date. The rule of one
+date per day stays: a GeoTIFF folder or cube refuses a repeated date, and a
+solar day with scenes of several sensors in a product folder or STAC file is
+one date of one sensor (see :func:`plantation.imagery.stac.load_tile`). With
+``region.harmonise.enabled`` every date is adjusted to the reference sensor
+(:mod:`plantation.imagery.harmonise`) in the lazy arrays and the windowed
+reads alike. Delivered products of several sensors are refused unless
+harmonised (their reflectance is the sensors' own); a GeoTIFF folder or cube
+may mix named sensors without it (its files may come harmonised already, as
+HLS products do).
+
 Nothing is read at open time but file headers: values come as dask arrays
 chunked in space, so a tile larger than memory is processed window by window.
 Stored integers become reflectance (unitless, float32) through the region's
@@ -23,9 +37,10 @@ from __future__ import annotations
 
 import re
 import threading
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from datetime import date
+from fnmatch import fnmatchcase
 from pathlib import Path
 
 import dask
@@ -38,9 +53,10 @@ from affine import Affine
 from rasterio.crs import CRS
 
 from plantation.errors import ConfigError, InputNotFoundError, RegionError
+from plantation.imagery import harmonise as harmonise_io
 from plantation.imagery import products
 from plantation.imagery import stac as stac_io
-from plantation.imagery.config import RegionConfig, ScalingRule, TileConfig
+from plantation.imagery.config import RegionConfig, ScalingRule, SensorRule, TileConfig
 
 _DATE = re.compile(r"(\d{4})-(\d{2})-(\d{2})")
 RASTER_SUFFIXES = (".tif", ".tiff")
@@ -133,7 +149,8 @@ class TileStack:
     reader: WindowReader | None = None
     #: Every input file (product folders and STAC, where no window reader lists them).
     sources: list[str] = field(default_factory=list)
-    #: The sensor of each date (product folders and STAC; empty otherwise).
+    #: The sensor of each date, aligned with :attr:`dates` (``""``: unnamed;
+    #: empty for a stack built without one, see :meth:`date_sensors`).
     sensors: list[str] = field(default_factory=list)
 
     def read(self, row: int, col: int, height: int, width: int) -> tuple[np.ndarray, np.ndarray]:
@@ -154,6 +171,10 @@ class TileStack:
     def dates(self) -> np.ndarray:
         """Acquisition dates as ``datetime64[D]``, ascending."""
         return np.asarray(self.reflectance["time"].values, dtype="datetime64[D]")
+
+    def date_sensors(self) -> list[str]:
+        """The sensor of each date (``""`` for every date of a stack built without sensors)."""
+        return list(self.sensors) if self.sensors else [harmonise_io.UNNAMED] * len(self.dates)
 
     @property
     def years(self) -> np.ndarray:
@@ -178,7 +199,9 @@ class WindowReader:
         scale: np.ndarray,
         offset: np.ndarray,
         invalid_values: Sequence[int] = (),
+        adjust: tuple[np.ndarray, np.ndarray] | None = None,
     ) -> None:
+        """``adjust``: (slope, intercept) float32 (dates, bands) of the cross-sensor adjustment applied after scaling (None: none)."""
         self.files = [str(f) for f in files]
         self.n_bands = n_bands
         self.qa_band = qa_band
@@ -187,6 +210,7 @@ class WindowReader:
         self.nodata = nodata
         self.scale = np.asarray(scale, np.float32)
         self.offset = np.asarray(offset, np.float32)
+        self.adjust = None if adjust is None else (np.asarray(adjust[0], np.float32), np.asarray(adjust[1], np.float32))
         self._local = threading.local()
 
     def __getstate__(self) -> dict:
@@ -235,6 +259,10 @@ class WindowReader:
             out = refl[i]
             np.multiply(data, self.scale[i], out=out, casting="unsafe")
             out += self.offset[i]
+            if self.adjust is not None:
+                # The same float32 operations, in the same order, as the lazy arrays.
+                out *= self.adjust[0][i][:, None, None]
+                out += self.adjust[1][i][:, None, None]
             out[:, bad] = np.nan
             valid[i] = ~bad
         return refl, valid
@@ -338,8 +366,46 @@ def _grid_of(src: rasterio.io.DatasetReader, path: Path) -> Grid:
     return Grid(src.crs, src.transform, src.height, src.width)
 
 
-def _finish(name: str, raw: xr.DataArray, invalid: xr.DataArray, dates: list[date], region: RegionConfig, grid: Grid) -> TileStack:
-    """Apply scaling, NaN out invalid pixels, attach coordinates and CRS."""
+def sensors_of_files(names: Sequence[str], rules: Sequence[SensorRule], where: str) -> list[str]:
+    """The sensor of each file name by ``region.sensors`` (first matching rule; no rules: unnamed).
+
+    Raises:
+        ConfigError: a rule without a sensor.
+        RegionError: a file matches no rule.
+    """
+    if not rules:
+        return [harmonise_io.UNNAMED] * len(names)
+    for i, r in enumerate(rules):
+        if not str(r.sensor or "").strip():
+            raise ConfigError(f"region.sensors[{i}]: no sensor named for pattern {r.pattern!r}")
+    out = []
+    for n in names:
+        hit = next((r for r in rules if fnmatchcase(n, str(r.pattern))), None)
+        if hit is None:
+            raise RegionError(f"{where}: {n} matches no region.sensors pattern {[r.pattern for r in rules]}; add a rule for it (pattern '*' for every file)")
+        out.append(harmonise_io.canonical_sensor(hit.sensor))
+    return out
+
+
+def harmonise_coefficients(sensors: Sequence[str], region: RegionConfig) -> tuple[np.ndarray, np.ndarray] | None:
+    """(slope, intercept) float32 (dates, bands) that bring each date to ``region.harmonise.reference``, or None when harmonisation is off."""
+    if not region.harmonise.enabled:
+        return None
+    return harmonise_io.coefficients(sensors, region.bands, region.harmonise.reference)
+
+
+def _adjusted(refl: xr.DataArray, adjust: tuple[np.ndarray, np.ndarray] | None) -> xr.DataArray:
+    """``refl`` (time, band, y, x) × slope + intercept per date and band, lazily (unchanged when ``adjust`` is None)."""
+    if adjust is None:
+        return refl
+    coords = {"time": refl["time"].values, "band": refl["band"].values}
+    slope = xr.DataArray(adjust[0], dims=("time", "band"), coords=coords)
+    intercept = xr.DataArray(adjust[1], dims=("time", "band"), coords=coords)
+    return refl * slope + intercept
+
+
+def _finish(name: str, raw: xr.DataArray, invalid: xr.DataArray, dates: list[date], region: RegionConfig, grid: Grid, sensors: list[str]) -> TileStack:
+    """Apply scaling and the cross-sensor adjustment, NaN out invalid pixels, attach coordinates and CRS."""
     scale, offset = scaling_for_dates(dates, region.scaling)
     times = np.array(dates, dtype="datetime64[ns]")
     raw = raw.assign_coords(time=times, band=list(region.bands))
@@ -347,7 +413,7 @@ def _finish(name: str, raw: xr.DataArray, invalid: xr.DataArray, dates: list[dat
     s = xr.DataArray(scale.astype(np.float32), dims="time", coords={"time": times})
     o = xr.DataArray(offset.astype(np.float32), dims="time", coords={"time": times})
     # Convert once to float32: the loaders would otherwise widen to float64.
-    refl = raw.astype(np.float32) * s + o
+    refl = _adjusted(raw.astype(np.float32) * s + o, harmonise_coefficients(sensors, region))
     valid = ~invalid
     refl = refl.where(valid)
     refl.name = "reflectance"
@@ -355,7 +421,7 @@ def _finish(name: str, raw: xr.DataArray, invalid: xr.DataArray, dates: list[dat
     for arr in (refl, valid):
         arr.attrs.update(crs=grid.crs.to_string(), transform=tuple(grid.transform)[:6])
     refl.attrs["units"] = "1"
-    return TileStack(name=name, reflectance=refl, valid=valid, grid=grid)
+    return TileStack(name=name, reflectance=refl, valid=valid, grid=grid, sensors=list(sensors))
 
 
 def _open_geotiff_folder(tile: TileConfig, region: RegionConfig) -> TileStack:
@@ -414,7 +480,8 @@ def _open_geotiff_folder(tile: TileConfig, region: RegionConfig) -> TileStack:
     if qa_band:
         invalid = invalid | qa_invalid(cube.isel(band=qa_band - 1), region.mask.invalid_bits, region.mask.invalid_values)
     invalid = invalid.drop_vars("band", errors="ignore")
-    stack = _finish(tile.name, raw.drop_vars("band"), invalid, dates, region, grid)
+    sensors = sensors_of_files([by_date[d].name for d in dates], region.sensors, str(folder))
+    stack = _finish(tile.name, raw.drop_vars("band"), invalid, dates, region, grid, sensors)
     scale, offset = scaling_for_dates(dates, region.scaling)
     stack.reader = WindowReader(
         [by_date[d] for d in dates],
@@ -425,6 +492,7 @@ def _open_geotiff_folder(tile: TileConfig, region: RegionConfig) -> TileStack:
         scale,
         offset,
         invalid_values=region.mask.invalid_values if qa_band else [],
+        adjust=harmonise_coefficients(sensors, region),
     )
     return stack
 
@@ -483,10 +551,14 @@ def _open_cube(tile: TileConfig, region: RegionConfig) -> TileStack:
         if region.mask.variable not in ds:
             raise RegionError(f"{path}: no QA variable {region.mask.variable!r}")
         invalid = invalid | qa_invalid(ds[region.mask.variable].sortby("time").sel(time=da["time"]), region.mask.invalid_bits, region.mask.invalid_values)
+    if "sensor" in da.coords and da["sensor"].dims == ("time",):
+        sensors = [harmonise_io.canonical_sensor(str(v)) for v in da["sensor"].values]
+    else:
+        sensors = sensors_of_files([path.name] * len(dates), region.sensors, str(path))
     keep = ["time", "y", "x"]
     invalid = invalid.drop_vars([c for c in invalid.coords if c not in keep])
     raw = da.drop_vars([c for c in da.coords if c not in keep])
-    return _finish(tile.name, raw, invalid, dates, region, grid)
+    return _finish(tile.name, raw, invalid, dates, region, grid, sensors)
 
 
 def _tile_grid(tile: TileConfig, first: pystac.Item, role: str) -> Grid:
@@ -509,23 +581,49 @@ def _tile_grid(tile: TileConfig, first: pystac.Item, role: str) -> Grid:
     return Grid(crs, Affine(res, 0.0, bounds[0], 0.0, -res, bounds[3]), h, w)
 
 
-def _from_items(tile: TileConfig, region: RegionConfig, items: list[pystac.Item], *, qa_bits: Sequence[int], qa_values: Sequence[int], qa_asset: str | None, where: str) -> TileStack:
-    """A TileStack of STAC items (a product folder's or a catalogue's) loaded onto the tile's grid, scaled by the assets' own scale and offset."""
+def _from_items(tile: TileConfig, region: RegionConfig, items: list[pystac.Item], *, qa_rule: Callable[[str], tuple[Sequence[int], Sequence[int]]], qa_asset: str | None, where: str) -> TileStack:
+    """A TileStack of STAC items (a product folder's or a catalogue's) loaded onto the tile's grid, scaled by the assets' own scale and offset.
+
+    ``qa_rule``: a sensor's name → (invalid QA bits, invalid QA values) for its dates.
+    """
     end = _end_date(region)
     items = [it for it in items if stac_io.solar_day(it) <= end]
     if not items:
         raise RegionError(f"{where}: no scene dated on or before region.end_date {region.end_date}")
     grid = _tile_grid(tile, items[0], stac_io.role_assets(items[0], region.bands, qa_asset)[region.bands[0]])
-    loaded = stac_io.load_tile(items, region.bands, crs=grid.crs, transform=grid.transform, height=grid.height, width=grid.width, chunk=region.chunk, qa_asset=qa_asset, where=where)
+    prefer = harmonise_io.reference_sensor(region.harmonise.reference) if region.harmonise.enabled else None
+    loaded = stac_io.load_tile(
+        items,
+        region.bands,
+        crs=grid.crs,
+        transform=grid.transform,
+        height=grid.height,
+        width=grid.width,
+        chunk=region.chunk,
+        qa_asset=qa_asset,
+        where=where,
+        mixed=region.harmonise.enabled,
+        prefer=prefer,
+    )
     invalid = loaded.nodata
     if loaded.qa is not None:
-        invalid = invalid | qa_invalid(loaded.qa, qa_bits, qa_values)
+        rules = {s: qa_rule(s) for s in dict.fromkeys(loaded.sensors)}
+        if len(rules) == 1:
+            bits, values = next(iter(rules.values()))
+            invalid = invalid | qa_invalid(loaded.qa, bits, values)
+        else:
+            # Each sensor's QA layer by its own rule (Landsat bit flags, Sentinel-2 scene classes).
+            qa_bad = xr.zeros_like(invalid)
+            for sensor, (bits, values) in rules.items():
+                on = xr.DataArray(np.array([x == sensor for x in loaded.sensors]), dims="time")
+                qa_bad = xr.where(on, qa_invalid(loaded.qa, bits, values), qa_bad)
+            invalid = invalid | qa_bad
     times = np.array(loaded.dates, dtype="datetime64[ns]")
     raw = loaded.raw.assign_coords(time=times, band=list(region.bands))
     s = xr.DataArray(loaded.scale, dims=("time", "band"), coords={"time": times, "band": list(region.bands)})
     o = xr.DataArray(loaded.offset, dims=("time", "band"), coords={"time": times, "band": list(region.bands)})
     valid = ~invalid.assign_coords(time=times)
-    refl = (raw.astype(np.float32) * s + o).where(valid)
+    refl = _adjusted(raw.astype(np.float32) * s + o, harmonise_coefficients(loaded.sensors, region)).where(valid)
     refl.name, valid.name = "reflectance", "valid"
     for arr in (refl, valid):
         arr.attrs.update(crs=grid.crs.to_string(), transform=tuple(grid.transform)[:6])
@@ -538,15 +636,19 @@ def _open_products(tile: TileConfig, region: RegionConfig) -> TileStack:
     if not folder.is_dir():
         raise InputNotFoundError(f"{folder.absolute()}: tile {tile.name!r} folder of scene folders does not exist")
     scenes = products.find_scenes(folder, region.bands)
-    sensor = scenes[0].sensor
     items = [products.scene_item(s, region.bands) for s in scenes]
-    return _from_items(tile, region, items, qa_bits=sensor.qa_bits, qa_values=sensor.qa_values, qa_asset="qa", where=str(folder))
+
+    def rule(sensor: str) -> tuple[Sequence[int], Sequence[int]]:
+        return products.SENSORS[sensor].qa_bits, products.SENSORS[sensor].qa_values
+
+    return _from_items(tile, region, items, qa_rule=rule, qa_asset="qa", where=str(folder))
 
 
 def _open_stac(tile: TileConfig, region: RegionConfig) -> TileStack:
     path = Path(tile.path)
     items = stac_io.read_items(path)
-    return _from_items(tile, region, items, qa_bits=region.mask.invalid_bits, qa_values=region.mask.invalid_values, qa_asset=region.mask.asset, where=str(path))
+    bits, values = list(region.mask.invalid_bits), list(region.mask.invalid_values)
+    return _from_items(tile, region, items, qa_rule=lambda _sensor: (bits, values), qa_asset=region.mask.asset, where=str(path))
 
 
 def _end_date(region: RegionConfig) -> date:
@@ -579,10 +681,10 @@ def open_tile(tile: TileConfig, region: RegionConfig) -> TileStack:
 
 
 def open_region(region: RegionConfig) -> list[TileStack]:
-    """Open every tile of a region. Tiles must share CRS and dates.
+    """Open every tile of a region. Tiles must share CRS, dates and the sensor of each date.
 
     Raises:
-        RegionError: a tile's CRS or dates differ from the first tile's.
+        RegionError: a tile's CRS, dates or sensors differ from the first tile's.
     """
     if not region.tiles:
         raise ConfigError(f"region {region.name!r}: no tiles listed")
@@ -596,4 +698,8 @@ def open_region(region: RegionConfig) -> list[TileStack]:
             raise RegionError(f"{t.path}: CRS {s.grid.crs.to_string()} differs from tile {ref.name!r}'s {ref.grid.crs.to_string()}")
         if not np.array_equal(s.dates, ref.dates):
             raise RegionError(f"{t.path}: dates differ from tile {ref.name!r}'s; all tiles need the same dates")
+        if s.date_sensors() != ref.date_sensors():
+            i = next(i for i, (a, b) in enumerate(zip(s.date_sensors(), ref.date_sensors(), strict=True)) if a != b)
+            have, want = harmonise_io.describe(s.date_sensors()[i]), harmonise_io.describe(ref.date_sensors()[i])
+            raise RegionError(f"{t.path}: date {s.dates[i]} is {have}, tile {ref.name!r}'s is {want}; all tiles need the same sensor on each date")
     return stacks

@@ -15,8 +15,9 @@ from __future__ import annotations
 
 import datetime as dt
 import json
+import logging
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -27,6 +28,9 @@ from affine import Affine
 from rasterio.crs import CRS
 
 from plantation.errors import InputNotFoundError, RegionError
+from plantation.imagery.harmonise import canonical_sensor
+
+log = logging.getLogger(__name__)
 
 #: STAC ``eo:bands`` common names → band roles; earlier names win when an item has both (``nir08``, OLI's band 5 and MSI's 8A, before the broad ``nir``).
 COMMON_NAMES: dict[str, str] = {"coastal": "coastal", "blue": "blue", "green": "green", "red": "red", "nir08": "nir", "nir": "nir", "swir16": "swir1", "swir22": "swir2"}
@@ -125,14 +129,18 @@ def solar_day(item: pystac.Item) -> dt.date:
 
 
 def sensor_of(item: pystac.Item) -> str:
-    """The item's sensor: the ``plantation:sensor`` property of product folders, else instruments or platform."""
+    """The item's sensor: the ``plantation:sensor`` property of product folders, else instruments or platform.
+
+    Named as :func:`~plantation.imagery.harmonise.canonical_sensor` names it
+    (instruments ``oli`` and ``tirs`` → ``landsat_oli``).
+    """
     p = item.properties
     if p.get("plantation:sensor"):
-        return str(p["plantation:sensor"])
+        return canonical_sensor(str(p["plantation:sensor"]))
     inst = p.get("instruments")
     if inst:
-        return "+".join(sorted(str(i).lower() for i in inst))
-    return str(p.get("platform") or p.get("constellation") or "unknown")
+        return canonical_sensor("+".join(sorted(str(i).lower() for i in inst)))
+    return canonical_sensor(str(p.get("platform") or p.get("constellation") or "unknown"))
 
 
 @dataclass
@@ -153,6 +161,8 @@ class LoadedTile:
     sensors: list[str]
     #: Every file read (for a map's content key).
     files: list[str]
+    #: Items left out because another sensor's scenes make their solar day's date.
+    left_out: list[str] = field(default_factory=list)
 
 
 def default_grid(item: pystac.Item, asset_key: str) -> tuple[CRS, Affine, int, int]:
@@ -166,20 +176,50 @@ def default_grid(item: pystac.Item, asset_key: str) -> tuple[CRS, Affine, int, i
     return CRS.from_user_input(code), Affine(*t[:6]), int(h), int(w)
 
 
-def load_tile(items: Sequence[pystac.Item], roles: Sequence[str], *, crs: CRS, transform: Affine, height: int, width: int, chunk: int, qa_asset: str | None = None, where: str = "") -> LoadedTile:
+def load_tile(
+    items: Sequence[pystac.Item],
+    roles: Sequence[str],
+    *,
+    crs: CRS,
+    transform: Affine,
+    height: int,
+    width: int,
+    chunk: int,
+    qa_asset: str | None = None,
+    where: str = "",
+    mixed: bool = False,
+    prefer: str | None = None,
+) -> LoadedTile:
     """Load ``items`` onto a grid, one date per solar day, lazily (dask, ``chunk`` pixels a side).
 
+    ``mixed``: items of several sensors are allowed (the caller harmonises
+    them). One date per solar day holds: a day with scenes of several
+    sensors keeps the scenes of one, ``prefer`` when it is among them, else
+    the first by name; the others are listed in ``left_out``.
+
     Raises:
-        RegionError: items of several sensors (no cross-sensor adjustment is
-            applied yet), scenes of one day with different scaling, or an
-            asset odc-stac cannot use.
+        RegionError: items of several sensors without ``mixed``, scenes of
+            one day with different scaling, or an asset odc-stac cannot use.
     """
     import odc.stac
     from odc.geo.geobox import GeoBox
 
     sensors = sorted({sensor_of(it) for it in items})
-    if len(sensors) > 1:
-        raise RegionError(f"{where}: scenes of several sensors {sensors}; dates from different sensors need a cross-sensor adjustment that is not available yet: give one sensor per region")
+    if len(sensors) > 1 and not mixed:
+        raise RegionError(f"{where}: scenes of several sensors {sensors}; their reflectance differs by sensor: set region.harmonise.enabled: true to adjust each date to OLI")
+    by_day: dict[dt.date, list[pystac.Item]] = {}
+    for it in items:
+        by_day.setdefault(solar_day(it), []).append(it)
+    kept: list[pystac.Item] = []
+    left_out: list[str] = []
+    for day in sorted(by_day):
+        names = sorted({sensor_of(it) for it in by_day[day]})
+        keep = prefer if prefer in names else names[0]
+        kept += [it for it in by_day[day] if sensor_of(it) == keep]
+        left_out += [it.id for it in by_day[day] if sensor_of(it) != keep]
+    if left_out:
+        log.warning("%s: %d scene(s) left out, another sensor's scenes make their day's date: %s", where, len(left_out), ", ".join(left_out))
+    items = kept
     renamed: dict[dt.date, list[pystac.Item]] = {}
     scales: dict[dt.date, tuple[list[float], list[float]]] = {}
     files: list[str] = []
@@ -223,4 +263,5 @@ def load_tile(items: Sequence[pystac.Item], roles: Sequence[str], *, crs: CRS, t
     nodata = nodata.drop_vars([c for c in nodata.coords if c not in keep])
     if qa is not None:
         qa = qa.drop_vars([c for c in qa.coords if c not in keep])
-    return LoadedTile(raw, qa, nodata, days, scale, offset, sensors * len(days), files)
+    day_sensor = [sensor_of(renamed[d][0]) for d in days]
+    return LoadedTile(raw, qa, nodata, days, scale, offset, day_sensor, files, left_out)
