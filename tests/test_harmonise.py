@@ -187,3 +187,155 @@ def test_tiles_with_other_sensors_on_a_date_are_refused(make_region, tmp_path):
     region.tiles.append(TileConfig(name="t2", path=str(other)))
     with pytest.raises(RegionError, match=r"t2: date 2015-02-14 is landsat_etm, tile 't1''s is landsat_oli; all tiles need the same sensor on each date"):
         open_region(region)
+
+
+# The network's sensor feature, the card's sensors and the refusal of foreign sensors.
+
+#: A small network; the figures below were measured on the network as it was
+#: before sensors existed (same seed and inputs, torch 2.13 on CPU): the
+#: single-sensor network must stay exactly that one.
+NET = {
+    "n_channels": 10,
+    "date_year": [0, 0, 0, 1, 1, 2, 2, 2],
+    "day_of_year": [0.1, 0.4, 0.8, 0.2, 0.6, 0.05, 0.5, 0.9],
+    "neighbourhood": 3,
+    "date_width": 8,
+    "conv_width": 8,
+    "hidden": 8,
+    "amplitude": True,
+}
+BEFORE_PARAMETERS = 4780
+BEFORE_FIRST_LOGITS = [0.09246186912059784, -0.0926927998661995, 0.21626879274845123, -0.0007829917594790459]
+BEFORE_SUM = 0.8429152369499207
+
+
+def _net_outputs(**kw):
+    import torch
+
+    from plantation.model.network import ConvRecurrentNet
+
+    torch.manual_seed(7)
+    net = ConvRecurrentNet(**(NET | kw)).eval()
+    g = torch.Generator().manual_seed(3)
+    x = torch.rand(4, 8, 10, 3, 3, generator=g)
+    v = torch.rand(4, 8, 3, 3, generator=g) > 0.3
+    with torch.no_grad():
+        return net, net(x, v)
+
+
+def test_a_single_sensor_network_is_the_network_built_before_sensors_existed():
+    for kw in ({}, {"n_sensors": 1, "date_sensor": [0] * 8}):
+        net, out = _net_outputs(**kw)
+        assert sum(p.numel() for p in net.parameters()) == BEFORE_PARAMETERS
+        assert "sensor" not in net.state_dict()
+        np.testing.assert_allclose(out[0, :4].numpy(), BEFORE_FIRST_LOGITS, rtol=1e-6, atol=1e-7)
+        assert float(out.sum()) == pytest.approx(BEFORE_SUM, abs=1e-5)
+
+
+def test_with_two_sensors_each_date_embedding_reads_a_one_hot_of_its_sensor():
+    net, out = _net_outputs(n_sensors=2, date_sensor=[0, 0, 1, 1, 0, 1, 0, 1])
+    assert sum(p.numel() for p in net.parameters()) == BEFORE_PARAMETERS + NET["date_width"] * 2
+    np.testing.assert_array_equal(net.state_dict()["sensor"].numpy()[:3], [[1, 0], [1, 0], [0, 1]])
+    _, other = _net_outputs(n_sensors=2, date_sensor=[1, 1, 0, 0, 1, 0, 1, 0])
+    assert not np.allclose(out.numpy(), other.numpy())
+    with pytest.raises(ValueError, match=r"date_sensor must give each of the 8 dates a sensor index in \[0, 2\)"):
+        _net_outputs(n_sensors=2, date_sensor=[0, 2, 0, 0, 0, 0, 0, 0])
+    with pytest.raises(ValueError, match="date_sensor must give"):
+        _net_outputs(n_sensors=2)
+
+
+def test_the_network_spec_gains_sensor_inputs_only_with_more_than_one_sensor():
+    from dataclasses import replace
+
+    from plantation.model.training import TrainConfig, network_spec, trained_sensors
+    from tests.test_splits import tiny_patches
+
+    ps = tiny_patches(8, years=(2015, 2016, 2017))
+    ps.split[:] = 0
+    one = replace(ps, sensors=(OLI, OLI, OLI))
+    spec = network_spec(one, TrainConfig())
+    assert "n_sensors" not in spec and "date_sensor" not in spec and trained_sensors(one) == [OLI]
+    two = replace(ps, sensors=(ETM, OLI, MSI))
+    spec = network_spec(two, TrainConfig())
+    assert trained_sensors(two) == [ETM, OLI, MSI] and spec["n_sensors"] == 3 and spec["date_sensor"] == [0, 1, 2]
+    assert network_spec(ps, TrainConfig()).keys() == network_spec(one, TrainConfig()).keys()  # sensors unknown: as one sensor
+
+
+def test_patches_carry_each_dates_sensor_through_subset_and_concat():
+    from dataclasses import replace
+
+    from tests.test_splits import tiny_patches
+
+    a = replace(tiny_patches(3), sensors=(ETM, OLI))
+    assert a.subset(np.array([0, 2])).sensors == (ETM, OLI)
+    assert a.concat(tiny_patches(2, start=3)).sensors == (ETM, OLI)
+    with pytest.raises(ValueError, match="the sensors of the dates differ"):
+        a.concat(replace(tiny_patches(2, start=3), sensors=(OLI, OLI)))
+
+
+def test_cards_record_sensors_and_cards_written_before_them_still_read(tmp_path):
+    import json
+
+    from plantation.model.card import FORMAT, read_card, write_card
+    from tests.test_artefact import _card
+
+    card = _card(1)
+    card.sensors = [ETM, OLI]
+    write_card(tmp_path / "new", card)
+    assert read_card(tmp_path / "new").sensors == [ETM, OLI]
+    old = json.loads((tmp_path / "new" / "model.json").read_text())
+    del old["sensors"]
+    (tmp_path / "old").mkdir()
+    (tmp_path / "old" / "model.json").write_text(json.dumps(old))
+    back = read_card(tmp_path / "old")
+    assert back.sensors == [] and back.format == FORMAT
+
+
+def _artefact_for(card_sensors, spec_extra=None):
+    import torch
+
+    from plantation.model import artefact
+    from plantation.model.network import ConvRecurrentNet
+    from tests.conftest import DATES
+    from tests.test_artefact import SPEC, _card
+
+    spec = SPEC | {"n_channels": 10, "date_year": [0, 0, 1, 1, 2], "day_of_year": [0.1, 0.6, 0.1, 0.6, 0.6]} | (spec_extra or {})
+    card = _card(1)
+    card.network, card.bands, card.indices, card.dates, card.years = spec, BANDS, ["NDVI", "EVI", "NBR", "NDMI"], DATES, [2015, 2016, 2017]
+    card.sensors = card_sensors
+    torch.manual_seed(0)
+    return artefact.Artefact(card, [ConvRecurrentNet(**spec).eval()])
+
+
+def test_the_artefact_refuses_a_region_of_sensors_it_was_not_trained_on(make_region):
+    from plantation.model.inference import check_compatible
+
+    oli_only = make_region(sensors=[SensorRule(pattern="*", sensor="oli")])
+    mixed = make_region(sensors=[SensorRule(pattern="scene_2015-*", sensor="msi"), SensorRule(pattern="*", sensor="oli")])
+    unnamed = make_region()
+    stack = open_tile(oli_only.tiles[0], oli_only)
+    check_compatible(_artefact_for([OLI]), stack)
+    check_compatible(_artefact_for([]), stack)  # a card from before sensors were recorded: nothing to check
+    with pytest.raises(RegionError, match=r"tile 't1': sensor\(s\) \[sentinel2_msi\] are not among the model's \[landsat_oli\]") as e:
+        check_compatible(_artefact_for([OLI]), open_tile(mixed.tiles[0], mixed))
+    assert "\n" not in str(e.value)
+    with pytest.raises(RegionError, match=r"sensor\(s\) \[unnamed\] are not among the model's \[landsat_etm, landsat_oli\]"):
+        check_compatible(_artefact_for([ETM, OLI]), open_tile(unnamed.tiles[0], unnamed))
+    with pytest.raises(RegionError, match=r"sensor\(s\) \[landsat_oli\] are not among the model's \[unnamed\]"):
+        check_compatible(_artefact_for([""]), stack)
+    # A two-sensor model reads each date's sensor: the same sensors on other dates are refused too.
+    two = _artefact_for([OLI, MSI], {"n_sensors": 2, "date_sensor": [1, 1, 0, 0, 0]})
+    check_compatible(two, open_tile(mixed.tiles[0], mixed))
+    swapped = make_region(sensors=[SensorRule(pattern="scene_2017-*", sensor="msi"), SensorRule(pattern="*", sensor="oli")])
+    swapped_stack = open_tile(swapped.tiles[0], swapped)
+    with pytest.raises(RegionError, match=r"tile 't1': date 2015-02-14 is landsat_oli, the model was trained with sentinel2_msi on that date"):
+        check_compatible(two, swapped_stack)
+
+
+def test_the_weights_of_a_single_sensor_parent_do_not_carry_into_a_two_sensor_network():
+    from plantation.errors import ConfigError as CE
+    from plantation.model.transfer import transfer_spec
+
+    parent = NET | {"mean": [0.0] * 10, "std": [1.0] * 10}
+    with pytest.raises(CE, match=r"n_sensors None in the parent, 2 now"):
+        transfer_spec(parent, parent | {"n_sensors": 2, "date_sensor": [0, 1] * 4}, parent_years=[2015, 2016, 2017], child_years=[2015, 2016, 2017])

@@ -3,8 +3,9 @@
 A model folder holds ``model.safetensors`` (the weights, read by
 :mod:`plantation.model.artefact`), ``model.json`` (everything needed to build
 the inputs and read the outputs: band roles, scaling rules, indices, dates and
-years, the network's constructor arguments with normalisation statistics, the
-calibration, the cutoff year and the package version) and, after training,
+years, the sensors of the training imagery, the network's constructor
+arguments with normalisation statistics, the calibration, the cutoff year and
+the package version) and, after training,
 ``validation.json`` (reliability and interval coverage on the held-out test
 split). This module reads and writes the card and never imports torch, so the
 assessment and the report can describe a model without loading it.
@@ -18,7 +19,7 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
-from plantation.errors import FileFormatError, InputNotFoundError
+from plantation.errors import FileFormatError, InputNotFoundError, RegionError
 from plantation.model.calibration import GROUP_NAMES, outcome_groups
 from plantation.model.outcomes import mass_for_coverage
 
@@ -110,7 +111,53 @@ class ModelCard:
     #: trained and how closely it follows the ensemble on the validation
     #: split (see :mod:`plantation.model.distillation`).
     distilled: dict[str, Any] = field(default_factory=dict)
+    #: The sensors of the training imagery's dates, sorted (``""``: a sensor
+    #: nobody named); with more than one, the order of the network's sensor
+    #: one-hot. Empty: not recorded (cards written before it existed), no check.
+    sensors: list[str] = field(default_factory=list)
     format: str = FORMAT
+
+
+def _sensor_names(sensors: list[str] | set[str]) -> str:
+    return "[" + ", ".join(s if s else "unnamed" for s in sorted(sensors)) + "]"
+
+
+def check_sensors(card: ModelCard, sensors: list[str], where: str) -> None:
+    """Refuse imagery with a sensor the model was not trained on (nothing is checked for a card that records none).
+
+    Args:
+        sensors: the sensor of each date of the imagery (``""``: unnamed).
+        where: the culprit, first in the message (``tile 't01'``, ``region 'x'``).
+
+    Raises:
+        RegionError: a sensor not among ``card.sensors``, naming both lists.
+    """
+    if not card.sensors:
+        return
+    foreign = set(sensors) - set(card.sensors)
+    if foreign:
+        raise RegionError(
+            f"{where}: sensor(s) {_sensor_names(foreign)} are not among the model's {_sensor_names(card.sensors)}; use imagery of the model's sensors (named by region.sensors) or train on these"
+        )
+
+
+def check_date_sensors(card: ModelCard, dates: list[str], sensors: list[str], where: str) -> None:
+    """Refuse imagery whose sensor on some date differs from the training imagery's on that date, where the network reads each date's sensor (more than one sensor).
+
+    Args:
+        dates, sensors: the imagery's dates (the model's) and the sensor of each.
+
+    Raises:
+        RegionError: a date of another sensor, naming it.
+    """
+    check_sensors(card, sensors, where)
+    index = card.network.get("date_sensor")
+    if not index or len(card.sensors) < 2:
+        return
+    for d, s, i in zip(dates, sensors, index, strict=False):
+        if s != card.sensors[int(i)]:
+            have, want = s or "unnamed", card.sensors[int(i)] or "unnamed"
+            raise RegionError(f"{where}: date {d} is {have}, the model was trained with {want} on that date; map imagery with the model's sensor on each date")
 
 
 def resolve_model(path: str | Path) -> Path:

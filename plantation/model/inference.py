@@ -18,6 +18,7 @@ from plantation.errors import RegionError
 from plantation.imagery.config import ScalingRule
 from plantation.imagery.region import TileStack
 from plantation.model.artefact import Artefact, calibrated_mutual_information
+from plantation.model.card import check_date_sensors
 from plantation.model.network import split_epistemic
 from plantation.model.patches import features
 
@@ -47,11 +48,11 @@ def windows(height: int, width: int, size: int) -> Iterator[tuple[int, int, int,
 
 
 def check_compatible(art: Artefact, stack: TileStack, scaling: Sequence[ScalingRule] | None = None) -> None:
-    """The tile must have the model's dates and bands (and, when given, its scaling rules).
+    """The tile must have the model's dates, bands and sensors (and, when given, its scaling rules).
 
     Raises:
-        RegionError: dates, band roles or scaling rules differ, naming the
-            first difference.
+        RegionError: dates, band roles, sensors or scaling rules differ,
+            naming the first difference.
     """
     dates = [str(d) for d in stack.dates]
     if dates != art.card.dates:
@@ -62,6 +63,7 @@ def check_compatible(art: Artefact, stack: TileStack, scaling: Sequence[ScalingR
     bands = [str(b) for b in stack.reflectance["band"].values]
     if bands != art.card.bands:
         raise RegionError(f"tile {stack.name!r}: bands {bands} differ from the model's {art.card.bands}")
+    check_date_sensors(art.card, dates, stack.date_sensors(), f"tile {stack.name!r}")
     if scaling is not None:
         have = [asdict(r) for r in scaling]
         if have != art.card.scaling:

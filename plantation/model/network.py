@@ -3,7 +3,8 @@
 Four stages, each chosen because the outcome is a year:
 
 1. **Date embedding.** Each observed date of each pixel (bands, indices and
-   the season as sin/cos of the day of year) goes through a small shared
+   the season as sin/cos of the day of year; with imagery of several
+   sensors, a one-hot of the date's sensor) goes through a small shared
    two-layer perceptron.
 2. **Yearly summary.** Per pixel and year, the mean and the maximum of the
    embeddings of the dates observed in that year, the mean of their
@@ -64,6 +65,13 @@ class ConvRecurrentNet(nn.Module):
         estimate of the ensemble's epistemic term (a network distilled from
         an ensemble, :mod:`plantation.model.distillation`); raw, made
         non-negative by :func:`split_epistemic`.
+    n_sensors: sensors in the series. With more than one, each date's
+        embedding also reads a one-hot of its sensor (``date_sensor``), so
+        that the network can tell a sensor's offset from a change on the
+        ground; with one (the default) the network is exactly the one built
+        before sensors existed.
+    date_sensor: (time,) index of each date's sensor in [0, n_sensors);
+        needed when ``n_sensors`` > 1.
     """
 
     def __init__(
@@ -81,10 +89,14 @@ class ConvRecurrentNet(nn.Module):
         std: Sequence[float] | None = None,
         epistemic: bool = False,
         amplitude: bool = False,
+        n_sensors: int = 1,
+        date_sensor: Sequence[int] | None = None,
     ) -> None:
         super().__init__()
         if neighbourhood < 1 or neighbourhood % 2 == 0:
             raise ValueError(f"neighbourhood must be odd and positive, got {neighbourhood!r}")
+        if n_sensors < 1:
+            raise ValueError(f"n_sensors must be at least 1, got {n_sensors!r}")
         dy = torch.as_tensor(np.asarray(date_year), dtype=torch.long)
         if dy.ndim != 1 or len(dy) == 0 or int(dy.min()) != 0 or torch.any(dy[1:] < dy[:-1]) or torch.any(dy[1:] - dy[:-1] > 1):
             raise ValueError("date_year must be a non-decreasing (time,) index starting at 0 with every year present")
@@ -98,6 +110,13 @@ class ConvRecurrentNet(nn.Module):
         self.register_buffer("date_year", dy)
         doy = torch.as_tensor(np.asarray(day_of_year), dtype=torch.float32)
         self.register_buffer("season", torch.stack([torch.sin(2 * np.pi * doy), torch.cos(2 * np.pi * doy)], -1))
+        self.n_sensors = n_sensors
+        if n_sensors > 1:
+            ds = torch.as_tensor(np.asarray(date_sensor if date_sensor is not None else []), dtype=torch.long)
+            if ds.shape != dy.shape or int(ds.min()) < 0 or int(ds.max()) >= n_sensors:
+                raise ValueError(f"date_sensor must give each of the {len(dy)} dates a sensor index in [0, {n_sensors})")
+            # Constant per date like the season: the sensor enters the date embedding through its own weight block.
+            self.register_buffer("sensor", nn.functional.one_hot(ds, n_sensors).float())
         self.register_buffer("mean", torch.as_tensor(np.zeros(n_channels) if mean is None else np.asarray(mean), dtype=torch.float32))
         self.register_buffer("std", torch.as_tensor(np.ones(n_channels) if std is None else np.asarray(std), dtype=torch.float32))
         counts = torch.bincount(dy, minlength=self.n_years)
@@ -105,7 +124,7 @@ class ConvRecurrentNet(nn.Module):
         self._slices = [(int(s), int(s + c)) for s, c in zip(torch.cumsum(counts, 0) - counts, counts, strict=True)]
         self.register_buffer("dates_in_year", counts.float())
 
-        self.date_embed = nn.Sequential(nn.Linear(n_channels + 2, date_width), nn.GELU(), nn.Linear(date_width, date_width), nn.GELU())
+        self.date_embed = nn.Sequential(nn.Linear(n_channels + 2 + (n_sensors if n_sensors > 1 else 0), date_width), nn.GELU(), nn.Linear(date_width, date_width), nn.GELU())
         summary = 2 * date_width + (2 if amplitude else 1) * n_channels + 1
         layers: list[nn.Module] = []
         width = summary
@@ -151,10 +170,11 @@ class ConvRecurrentNet(nn.Module):
         z = z.permute(0, 1, 3, 4, 2)  # channels last: (b, t, h, w, c)
         v = valid.unsqueeze(-1)
         z = torch.where(v, torch.nan_to_num(z, nan=0.0), torch.zeros((), dtype=z.dtype))
-        # The season enters through its own weight block rather than a concatenation.
+        # The season (and the sensor) enter through their own weight block rather than a concatenation.
         lin = self.date_embed[0]
         c = self.n_channels
-        e = nn.functional.linear(z, lin.weight[:, :c]) + nn.functional.linear(self.season, lin.weight[:, c:], lin.bias)[:, None, None, :]
+        per_date = self.season if self.n_sensors == 1 else torch.cat([self.season, self.sensor], -1)
+        e = nn.functional.linear(z, lin.weight[:, :c]) + nn.functional.linear(per_date, lin.weight[:, c:], lin.bias)[:, None, None, :]
         e = self.date_embed[1:](e)  # (b, t, h, w, D)
         vf = v.to(e.dtype)
         out = []

@@ -66,6 +66,8 @@ class PatchSet:
         weight: float32 (n,) per-sample loss weight (e.g. below 1 for
             automatically labelled pixels), or None: every sample weighs 1.
             :meth:`subset` and :meth:`concat` carry it.
+        sensors: the sensor of each date (``""``: unnamed), or empty where
+            unknown.
     """
 
     x: np.ndarray
@@ -79,6 +81,7 @@ class PatchSet:
     dates: np.ndarray
     outcomes: Outcomes
     weight: np.ndarray | None = None
+    sensors: tuple[str, ...] = ()
 
     def __post_init__(self) -> None:
         if self.weight is not None:
@@ -100,7 +103,7 @@ class PatchSet:
         """The samples where ``mask`` (bool (n,) or indices) selects (arrays are views or copies; metadata shared)."""
         m = np.asarray(mask)
         w = None if self.weight is None else self.weight[m]
-        return PatchSet(self.x[m], self.valid[m], self.target[m], self.tile[m], self.row[m], self.col[m], self.split[m], self.channels, self.dates, self.outcomes, w)
+        return PatchSet(self.x[m], self.valid[m], self.target[m], self.tile[m], self.row[m], self.col[m], self.split[m], self.channels, self.dates, self.outcomes, w, self.sensors)
 
     def concat(self, other: PatchSet) -> PatchSet:
         """These samples followed by ``other``'s (e.g. automatically labelled pixels added to the training split).
@@ -117,6 +120,8 @@ class PatchSet:
             raise ValueError(f"PatchSet.concat: channels {tuple(other.channels)} differ from {tuple(self.channels)}; cut both sets with the same bands and indices")
         if not np.array_equal(np.asarray(self.dates, "datetime64[D]"), np.asarray(other.dates, "datetime64[D]")):
             raise ValueError(f"PatchSet.concat: the dates differ ({len(other.dates)} against {len(self.dates)}); cut both sets from the same imagery")
+        if self.sensors and other.sensors and tuple(self.sensors) != tuple(other.sensors):
+            raise ValueError("PatchSet.concat: the sensors of the dates differ; cut both sets from the same imagery")
         if self.outcomes != other.outcomes:
             raise ValueError(f"PatchSet.concat: outcomes for years {other.outcomes.years} differ from {self.outcomes.years}; cut both sets from the same imagery")
         if self.x.shape[1:] != other.x.shape[1:] or self.valid.shape[1:] != other.valid.shape[1:]:
@@ -134,6 +139,7 @@ class PatchSet:
             dates=self.dates,
             outcomes=self.outcomes,
             weight=w,
+            sensors=self.sensors or other.sensors,
         )
 
     def part(self, name: str) -> PatchSet:
@@ -433,4 +439,5 @@ def build_patches(
         channels=channel_names(bands, index_names),
         dates=dates,
         outcomes=outcomes,
+        sensors=tuple(stacks[0].date_sensors()),
     )

@@ -261,6 +261,9 @@ def network_spec(samples: PatchSet, cfg: TrainConfig) -> dict[str, Any]:
     """Constructor arguments of the network (plain lists and numbers, for JSON and checkpoints)."""
     mean, std = feature_statistics(samples.part("train"))
     years = year_of(samples.dates)
+    sensors = trained_sensors(samples)
+    # One sensor: no sensor input, the network of a single-sensor region is the one built before sensors existed.
+    by_sensor: dict[str, Any] = {"n_sensors": len(sensors), "date_sensor": [sensors.index(s) for s in samples.sensors]} if len(sensors) > 1 else {}
     return {
         "n_channels": len(samples.channels),
         "date_year": (years - years.min()).tolist(),
@@ -273,7 +276,13 @@ def network_spec(samples: PatchSet, cfg: TrainConfig) -> dict[str, Any]:
         "dropout": cfg.network.dropout,
         "mean": [float(v) for v in mean],
         "std": [float(v) for v in std],
+        **by_sensor,
     }
+
+
+def trained_sensors(samples: PatchSet) -> list[str]:
+    """The sensors of the samples' dates, sorted (the card's ``sensors``, the order of the network's sensor one-hot); empty where unknown."""
+    return sorted(set(samples.sensors))
 
 
 def member_logits(nets: list[ConvRecurrentNet], s: PatchSet, batch: int = 512) -> torch.Tensor:
@@ -751,6 +760,7 @@ def model_card(cfg: TrainConfig, samples: PatchSet, trained: TrainedModel, label
         labels_fingerprint=labels.fingerprint,
         package_version=__version__,
         distilled=trained.metrics["distillation"] if trained.distilled is not None else {},
+        sensors=trained_sensors(samples),
     )
 
 

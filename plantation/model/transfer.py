@@ -24,9 +24,9 @@ from plantation.errors import ConfigError
 from plantation.model.network import ConvRecurrentNet
 
 #: Buffers that describe the series rather than what was learnt.
-SERIES_BUFFERS: tuple[str, ...] = ("date_year", "season", "dates_in_year")
+SERIES_BUFFERS: tuple[str, ...] = ("date_year", "season", "dates_in_year", "sensor")
 #: Constructor arguments that must match for weights to carry over.
-SHAPE_KEYS: tuple[str, ...] = ("n_channels", "neighbourhood", "date_width", "amplitude", "conv_width", "hidden")
+SHAPE_KEYS: tuple[str, ...] = ("n_channels", "neighbourhood", "date_width", "amplitude", "conv_width", "hidden", "n_sensors")
 
 
 def transfer_spec(parent: dict[str, Any], child: dict[str, Any], *, parent_years: list[int], child_years: list[int]) -> dict[str, Any]:

@@ -40,7 +40,7 @@ from omegaconf import MISSING
 from plantation.errors import ConfigError, InputNotFoundError
 from plantation.model import artefact as art_io
 from plantation.model import runs
-from plantation.model.card import read_card, resolve_model
+from plantation.model.card import check_sensors, read_card, resolve_model
 from plantation.model.config import CalibrationConfig
 from plantation.model.network import ConvRecurrentNet
 from plantation.model.outcomes import Outcomes
@@ -121,7 +121,7 @@ def compare_models(old: art_io.Artefact, new_members: list[ConvRecurrentNet], ne
     old_outcomes = Outcomes(tuple(int(y) for y in card.years))
     known = points.target < old_outcomes.size
     mine = points.subset(known)
-    theirs = replace(mine, x=mine.x[:, idx], valid=mine.valid[:, idx], dates=points.dates[idx], outcomes=old_outcomes)
+    theirs = replace(mine, x=mine.x[:, idx], valid=mine.valid[:, idx], dates=points.dates[idx], outcomes=old_outcomes, sensors=tuple(np.asarray(points.sensors)[idx]) if points.sensors else ())
     old_cal = replace(card.calibration, target_prior=[])
     new_cal = replace(new_cal, target_prior=[])
     out: dict[str, Any] = {"points": int(known.sum()), "left_out_new_years": int((~known).sum()), "noise_sds": noise_sds, "metrics": {}}
@@ -213,6 +213,7 @@ def run(cfg: RetrainConfig, resolved_config: str | None = None, echo: Callable[[
     inherit = runs.split_of_points(old_points) if old_points is not None else None
     loaded = load_region_samples(tc, inherit=inherit)
     stacks, labels, samples = loaded
+    check_sensors(card, stacks[0].date_sensors(), f"region {cfg.region.name!r}")
     if old_points is not None:
         pixel = abs(stacks[0].grid.transform.a)
         diff = diff_labels(old_points, labels.points, move_px=cfg.retrain.move_px, pixel_size=pixel)
