@@ -179,6 +179,10 @@ def test_items_follow_the_tiles_bytes(region, model_dir, tmp_path, mapped):  # n
     for it in pystac.Collection.from_file(str(mapped / COLLECTION)).get_items():
         assert it.assets["data"].extra_fields["file:checksum"] == "1220" + manifest[it.id]["sha256"]
         assert it.properties["plantation:min_clear_dates"] == 6
+    # Unchanged tiles: their Items are read, not written again.
+    stamps = {p.name: p.stat().st_mtime_ns for p in (mapped / ITEMS).iterdir()}
+    write_collection(mapped, name="tinymap")
+    assert {p.name: p.stat().st_mtime_ns for p in (mapped / ITEMS).iterdir()} == stamps
     # A damaged Item is written again; an Item of a tile the manifest no longer lists is removed.
     (mapped / ITEMS / "t0.json").write_text("{")
     (mapped / ITEMS / "t9.json").write_text("{}")
@@ -187,9 +191,18 @@ def test_items_follow_the_tiles_bytes(region, model_dir, tmp_path, mapped):  # n
     assert sorted(p.name for p in (mapped / ITEMS).iterdir()) == ["t0.json", "t1.json"]
 
 
-def test_a_folder_without_finished_tiles_is_refused(tmp_path):
+def test_a_folder_without_finished_tiles_is_refused_and_a_tile_that_does_not_open_is_left_out(tmp_path, mapped):
     with pytest.raises(FileFormatError, match="no finished tile"):
         write_collection(tmp_path)
+    # A damaged tile without an Item (a folder mapped before the Collection existed): the others are still described.
+    shutil.rmtree(mapped / ITEMS)
+    (mapped / "t1.tif").write_bytes(b"not a tiff")
+    write_collection(mapped, name="tinymap")
+    assert [it.id for it in pystac.Collection.from_file(str(mapped / COLLECTION)).get_items()] == ["t0"]
+    (mapped / "t0.tif").unlink()
+    shutil.rmtree(mapped / ITEMS)
+    with pytest.raises(FileFormatError, match="no tile listed in its manifest opens"):
+        write_collection(mapped, name="tinymap")
 
 
 def test_the_catalogue_module_does_not_import_torch():

@@ -37,38 +37,45 @@ No ``eo`` extension: the layers are map products, not reflectance.
 Statistics are left out: for class and year bands they say nothing, and for
 scaled bands readers disagree whether they are of stored or scaled values.
 
-An Item is rebuilt only when its tile's bytes changed (its ``file:checksum``
-against the manifest's sha256), so rewriting the Collection after each tile
-reads the headers of new tiles only. Built from the same tiles, a resumed run
-and a clean one give the same files. Never imports torch.
+An Item is written only when its tile's bytes changed (its ``file:checksum``
+against the manifest's sha256): a :class:`Catalogue` remembers what it wrote,
+so after each tile the job writes that tile's Item and ``collection.json``
+only, whatever the number of tiles; a new process reads the Items already
+there once. Built from the same tiles, a resumed run and a clean one give the
+same files. The files are written as JSON by this module (pystac builds the
+objects and their extension fields); links and hrefs are relative, set here.
+Never imports torch.
 """
 
 from __future__ import annotations
 
 import json
+import logging
 import os
 import re
 from collections.abc import Mapping
+from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
 import pystac
 import rasterio
+import rasterio.errors
 import rio_stac
 from pystac.extensions.classification import Classification, ClassificationExtension
 from pystac.extensions.file import FileExtension
 from pystac.extensions.projection import ProjectionExtension
 from pystac.extensions.raster import RasterBand, RasterExtension
-from pystac.layout import TemplateLayoutStrategy
-from pystac.stac_io import DefaultStacIO
-from pystac.utils import datetime_to_str
+from pystac.utils import datetime_to_str, make_relative_href
 
 from plantation.errors import FileFormatError
 from plantation.mapping import folder as map_folder
 from plantation.mapping.folder import BAND, LAYERS, MANIFEST, NOTICE, read_manifest
 from plantation.mapping.styles import CLASS_STYLE
 from plantation.reference.labels import LABEL_CODES
+
+log = logging.getLogger(__name__)
 
 #: The Collection's file name in a map folder.
 COLLECTION = "collection.json"
@@ -223,102 +230,146 @@ def tile_item(folder: Path, name: str, entry: Mapping[str, Any]) -> pystac.Item:
     return item
 
 
-def _checksum(item: pystac.Item) -> str | None:
-    data = item.assets.get("data")
-    return None if data is None else data.extra_fields.get("file:checksum")
-
-
-def _kept_item(path: Path, entry: Mapping[str, Any]) -> pystac.Item | None:
-    """The Item written before for a tile whose bytes have not changed since (None: build it again)."""
-    if not path.is_file():
-        return None
+def _write_text(dest: Path, text: str) -> None:
+    """Write ``text`` to ``dest`` under a temporary name, then rename it."""
+    dest.parent.mkdir(parents=True, exist_ok=True)
+    tmp = dest.with_name(f".{dest.name}.partial")
     try:
-        # As written: pystac's migration would drop proj:epsg, kept here for readers of the projection extension's v1.
-        item = pystac.Item.from_dict(json.loads(path.read_text()), href=str(path), migrate=False)
-    except (OSError, ValueError, KeyError, TypeError, AttributeError, pystac.STACError):
-        return None
-    if _checksum(item) != "1220" + str(entry.get("sha256", "")):
-        return None
-    item.make_asset_hrefs_absolute()
-    item.clear_links()
-    return item
+        tmp.write_text(text)
+        os.replace(tmp, dest)
+    finally:
+        tmp.unlink(missing_ok=True)
 
 
-class _AtomicIO(DefaultStacIO):
-    """pystac's file writer, each file written under a temporary name and then renamed."""
+def _dumps(doc: dict[str, Any]) -> str:
+    return json.dumps(doc, indent=1, ensure_ascii=False) + "\n"
 
-    def write_text_to_href(self, href: str, txt: str) -> None:
-        dest = Path(href)
-        dest.parent.mkdir(parents=True, exist_ok=True)
-        tmp = dest.with_name(f".{dest.name}.partial")
+
+@dataclass
+class _Summary:
+    """What the Collection needs of one written Item."""
+
+    checksum: str
+    bbox: list[float]
+    years: list[int]
+    properties: dict[str, Any]
+
+
+class Catalogue:
+    """The STAC Collection of one map folder, kept in step with its manifest by :meth:`update`.
+
+    It remembers the Items it has written or read, so that an update writes
+    only the Items of tiles whose bytes changed, and the Collection: the
+    mapping job keeps one for a run and updates it after every tile.
+    """
+
+    def __init__(self, folder: str | Path, *, name: str | None = None) -> None:
+        self.folder = Path(folder).absolute()
+        self.name = name or self.folder.name
+        self._known: dict[str, _Summary] = {}
+
+    @property
+    def path(self) -> Path:
+        """``collection.json`` of the folder."""
+        return self.folder / COLLECTION
+
+    def item_path(self, tile: str) -> Path:
+        return self.folder / ITEMS / f"{tile}.json"
+
+    def update(self, tiles: Mapping[str, Mapping[str, Any]] | None = None) -> Path:
+        """Write the Items of new or changed tiles, then ``collection.json`` over exactly ``tiles``; returns its path.
+
+        Each file is written under a temporary name and renamed, the Items
+        before the Collection; Items of tiles not listed are removed after.
+
+        Args:
+            tiles: the manifest's tile entries (default: read ``manifest.json``).
+
+        Raises:
+            FileFormatError: no tile, or a tile's file or entry is not a map tile's.
+        """
+        if tiles is None:
+            raw = read_manifest(self.folder)
+            tiles = raw["tiles"] if raw is not None else {}
+        if not tiles:
+            raise FileFormatError(f"{self.folder}: no finished tile to catalogue; map the region with `plantation map`")
+        for tile in sorted(tiles):
+            want = "1220" + str(tiles[tile].get("sha256", ""))
+            known = self._known.get(tile)
+            if known is None or known.checksum != want:
+                try:
+                    self._known[tile] = self._read(tile, want) or self._write_item(tile, tiles[tile])
+                except (rasterio.errors.RasterioIOError, FileNotFoundError) as exc:
+                    # A tile being mapped again after damage: described once it is finished.
+                    log.warning("%s: tile %r left out of the STAC Collection, its file does not open (%s)", self.folder, tile, exc)
+                    self._known.pop(tile, None)
+        self._known = {t: self._known[t] for t in sorted(tiles) if t in self._known}
+        if not self._known:
+            raise FileFormatError(f"{self.folder}: no tile listed in its manifest opens; map the region again with `plantation map`")
+        _write_text(self.path, _dumps(self._collection()))
+        for stale in (self.folder / ITEMS).glob("*.json"):
+            if stale.stem not in self._known:
+                stale.unlink(missing_ok=True)
+        return self.path
+
+    def _links(self, item: bool) -> list[dict[str, Any]]:
+        root = f"../{COLLECTION}" if item else f"./{COLLECTION}"
+        return [{"rel": rel, "href": root, "type": pystac.MediaType.JSON} for rel in (("root", "collection", "parent") if item else ("root",))]
+
+    def _read(self, tile: str, checksum: str) -> _Summary | None:
+        """The Item written before for a tile whose bytes have not changed since, and for this Collection (None: write it again)."""
+        path = self.item_path(tile)
         try:
-            tmp.write_text(txt)
-            os.replace(tmp, dest)
-        finally:
-            tmp.unlink(missing_ok=True)
+            doc = json.loads(path.read_text())
+            if doc["assets"]["data"]["file:checksum"] != checksum or doc.get("collection") != self.name or doc["links"] != self._links(item=True):
+                return None
+            return _Summary(checksum, [float(v) for v in doc["bbox"]], [int(y) for y in doc["properties"][PREFIX + "years"]], dict(doc["properties"]))
+        except (OSError, ValueError, KeyError, TypeError, AttributeError):
+            return None
 
+    def _write_item(self, tile: str, entry: Mapping[str, Any]) -> _Summary:
+        path = self.item_path(tile)
+        item = tile_item(self.folder, tile, entry)
+        item.collection_id = self.name
+        for asset in item.assets.values():
+            asset.href = make_relative_href(asset.href, str(path))
+        doc = item.to_dict(include_self_link=False, transform_hrefs=False)
+        doc["links"] = self._links(item=True)
+        _write_text(path, _dumps(doc))
+        return _Summary(str(item.assets["data"].extra_fields["file:checksum"]), list(item.bbox or []), list(item.properties[PREFIX + "years"]), dict(item.properties))
 
-def build_collection(folder: str | Path, tiles: Mapping[str, Mapping[str, Any]] | None = None, *, name: str | None = None) -> pystac.Collection:
-    """The Collection over the tiles of a map folder (its manifest's, or ``tiles``), hrefs set for saving in the folder."""
-    folder = Path(folder).absolute()
-    if tiles is None:
-        raw = read_manifest(folder)
-        tiles = raw["tiles"] if raw is not None else {}
-    if not tiles:
-        raise FileFormatError(f"{folder}: no finished tile to catalogue; map the region with `plantation map`")
-    items = []
-    for tile in sorted(tiles):
-        entry = tiles[tile]
-        items.append(_kept_item(folder / ITEMS / f"{tile}.json", entry) or tile_item(folder, tile, entry))
-    bboxes = [it.bbox for it in items if it.bbox]
-    spatial = pystac.SpatialExtent([[min(b[0] for b in bboxes), min(b[1] for b in bboxes), max(b[2] for b in bboxes), max(b[3] for b in bboxes)]])
-    years = sorted({y for it in items for y in it.properties.get(PREFIX + "years", [])})
-    temporal = pystac.TemporalExtent([list(_period(years))])
-    cid = name or folder.name
-    shared: dict[str, Any] = {}
-    for key in SHARED:
-        values = {json.dumps(it.properties.get(PREFIX + key), sort_keys=True) for it in items}
-        if len(values) == 1 and PREFIX + key in items[0].properties:
-            shared[PREFIX + key] = items[0].properties[PREFIX + key]
-    collection = pystac.Collection(
-        id=cid,
-        title=f"{cid}: year of conversion of natural forest to tree-crop plantation",
-        description=(
-            "Per-pixel map of natural forest converted to tree-crop plantation, one Cloud-Optimized GeoTIFF per tile "
-            "(layers: " + ", ".join(n for n, _, _ in LAYERS) + "), written by `plantation map`. " + NOTICE
-        ),
-        extent=pystac.Extent(spatial, temporal),
-        license="other",
-        catalog_type=pystac.CatalogType.SELF_CONTAINED,
-        extra_fields={PREFIX + "tiles": len(items), **shared},
-    )
-    collection.add_asset("manifest", pystac.Asset(href=f"./{MANIFEST}", title="what made each tile (manifest.json)", media_type=pystac.MediaType.JSON, roles=["metadata"]))
-    for item in items:
-        collection.add_item(item)
-    collection.normalize_hrefs(str(folder), strategy=TemplateLayoutStrategy(item_template=ITEMS))
-    collection.make_all_asset_hrefs_relative()
-    return collection
+    def _collection(self) -> dict[str, Any]:
+        known = list(self._known.values())
+        boxes = [k.bbox for k in known]
+        spatial = pystac.SpatialExtent([[min(b[0] for b in boxes), min(b[1] for b in boxes), max(b[2] for b in boxes), max(b[3] for b in boxes)]])
+        temporal = pystac.TemporalExtent([list(_period(sorted({y for k in known for y in k.years})))])
+        shared: dict[str, Any] = {}
+        for key in SHARED:
+            values = {json.dumps(k.properties.get(PREFIX + key), sort_keys=True) for k in known}
+            if len(values) == 1 and PREFIX + key in known[0].properties:
+                shared[PREFIX + key] = known[0].properties[PREFIX + key]
+        collection = pystac.Collection(
+            id=self.name,
+            title=f"{self.name}: year of conversion of natural forest to tree-crop plantation",
+            description=(
+                "Per-pixel map of natural forest converted to tree-crop plantation, one Cloud-Optimized GeoTIFF per tile "
+                "(layers: " + ", ".join(n for n, _, _ in LAYERS) + "), written by `plantation map`. " + NOTICE
+            ),
+            extent=pystac.Extent(spatial, temporal),
+            license="other",
+            catalog_type=pystac.CatalogType.SELF_CONTAINED,
+            extra_fields={PREFIX + "tiles": len(known), **shared},
+        )
+        collection.add_asset("manifest", pystac.Asset(href=f"./{MANIFEST}", title="what made each tile (manifest.json)", media_type=pystac.MediaType.JSON, roles=["metadata"]))
+        doc = collection.to_dict(include_self_link=False, transform_hrefs=False)
+        doc["links"] = self._links(item=False) + [{"rel": "item", "href": f"./{ITEMS}/{tile}.json", "type": pystac.MediaType.GEOJSON} for tile in self._known]
+        return doc
 
 
 def write_collection(folder: str | Path, tiles: Mapping[str, Mapping[str, Any]] | None = None, *, name: str | None = None) -> Path:
-    """Write ``collection.json`` and ``stac/<tile>.json`` for the map folder's finished tiles; returns the Collection's path.
+    """Write ``collection.json`` and ``stac/<tile>.json`` for a map folder's finished tiles (its manifest's, or ``tiles``); returns the Collection's path.
 
-    Each file is written under a temporary name and renamed, the Items
-    before the Collection; Items of tiles no longer listed are removed after.
-
-    Args:
-        folder: the map folder.
-        tiles: the manifest's tile entries (default: read ``manifest.json``).
-        name: the Collection's id (default: the folder's name).
-
-    Raises:
-        FileFormatError: no tile, or a tile's file or entry is not a map tile's.
+    A one-off :meth:`Catalogue.update`: Items already written for unchanged
+    tiles are kept. ``name`` is the Collection's id (default: the folder's name).
     """
-    folder = Path(folder).absolute()
-    collection = build_collection(folder, tiles, name=name)
-    collection.save(pystac.CatalogType.SELF_CONTAINED, stac_io=_AtomicIO())
-    keep = {f"{item.id}.json" for item in collection.get_items()}
-    for stale in (folder / ITEMS).glob("*.json"):
-        if stale.name not in keep:
-            stale.unlink(missing_ok=True)
-    return folder / COLLECTION
+    return Catalogue(folder, name=name).update(tiles)

@@ -20,7 +20,7 @@ from typing import Any
 from plantation.errors import ConfigError, PlantationError
 from plantation.imagery.config import RegionConfig
 from plantation.imagery.region import open_region, open_tile
-from plantation.mapping.catalog import write_collection
+from plantation.mapping.catalog import Catalogue
 from plantation.mapping.folder import NOTICE, RECALIBRATION, Manifest, TileResult, file_digest, open_map
 from plantation.mapping.tiles import Settings, TileJob, input_signature, map_tile_task, tile_key
 from plantation.model.artefact import Artefact, load
@@ -191,26 +191,26 @@ def _progress(total: int, unit: str, desc: str, enabled: bool, position: int = 0
     return tqdm(total=total, unit=unit, desc=desc, disable=not enabled, unit_scale=unit == "px", position=position, leave=position == 0, dynamic_ncols=True)
 
 
-def _record(manifest: Manifest, result: TileResult, cfg: MapConfig) -> None:
-    """Record a finished tile in the manifest, then rewrite the map folder's STAC Collection over the tiles it lists."""
+def _record(manifest: Manifest, catalogue: Catalogue, result: TileResult) -> None:
+    """Record a finished tile in the manifest, then bring the map folder's STAC Collection in step with it."""
     manifest.record(result)
-    write_collection(Path(cfg.out_dir), manifest.tiles, name=cfg.region.name)
+    catalogue.update(manifest.tiles)
 
 
-def _run_here(jobs: list[TileJob], manifest: Manifest, cfg: MapConfig, pixels_of: dict[str, int]) -> list[TileResult]:
+def _run_here(jobs: list[TileJob], manifest: Manifest, catalogue: Catalogue, cfg: MapConfig, pixels_of: dict[str, int]) -> list[TileResult]:
     results = []
     tiles_bar = _progress(len(jobs), "tile", "tiles", cfg.progress)
     for job in jobs:
         with _progress(pixels_of[job.tile.name], "px", f"tile {job.tile.name}", cfg.progress, position=1) as bar:
             res = map_tile_task(job, on_window=bar.update)
-        _record(manifest, res, cfg)
+        _record(manifest, catalogue, res)
         results.append(res)
         tiles_bar.update(1)
     tiles_bar.close()
     return results
 
 
-def _run_dask(jobs: list[TileJob], manifest: Manifest, cfg: MapConfig, pixels_of: dict[str, int]) -> list[TileResult]:
+def _run_dask(jobs: list[TileJob], manifest: Manifest, catalogue: Catalogue, cfg: MapConfig, pixels_of: dict[str, int]) -> list[TileResult]:
     from distributed import Client, LocalCluster, as_completed
 
     cluster = None
@@ -227,7 +227,7 @@ def _run_dask(jobs: list[TileJob], manifest: Manifest, cfg: MapConfig, pixels_of
             t0, done_px = time.perf_counter(), 0
             for fut in as_completed(futures):
                 res = fut.result()
-                _record(manifest, res, cfg)
+                _record(manifest, catalogue, res)
                 results.append(res)
                 done_px += res.pixels
                 bar.set_postfix_str(f"{done_px / max(time.perf_counter() - t0, 1e-9):,.0f} px/s, {done_px:,}/{total_px:,} px")
@@ -253,6 +253,7 @@ def run(cfg: MapConfig) -> MapSummary:
     jobs, done, _art, settings = plan(cfg)
     out = Path(cfg.out_dir)
     manifest = Manifest(out / "manifest.json")
+    catalogue = Catalogue(out, name=cfg.region.name)
     pixels_of = {}
     for j in jobs:
         g = open_tile(j.tile, j.region).grid
@@ -260,12 +261,12 @@ def run(cfg: MapConfig) -> MapSummary:
     if not jobs:
         results: list[TileResult] = []
     elif cfg.engine.workers or cfg.engine.scheduler:
-        results = _run_dask(jobs, manifest, cfg, pixels_of)
+        results = _run_dask(jobs, manifest, catalogue, cfg, pixels_of)
     else:
-        results = _run_here(jobs, manifest, cfg, pixels_of)
+        results = _run_here(jobs, manifest, catalogue, cfg, pixels_of)
     if not results and manifest.tiles:
         # Nothing mapped now: the Collection still covers the finished tiles (a folder mapped before it was written).
-        write_collection(out, manifest.tiles, name=cfg.region.name)
+        catalogue.update(manifest.tiles)
     every = results + done
     years = sorted({y for r in every for y in r.converted_ha})
     summary = MapSummary(
