@@ -4,7 +4,7 @@
 Item per finished tile sits in ``stac/<tile>.json``. The catalogue is
 self-contained (pystac's ``SELF_CONTAINED``: no self links, every href
 relative), so the folder can be moved or copied whole. The mapping job
-rewrites it (:func:`write_collection`) every time it writes the manifest,
+updates it (:meth:`Catalogue.update`) every time it writes the manifest,
 over exactly the tiles the manifest lists, each file under a temporary name
 and then renamed.
 
@@ -16,7 +16,7 @@ Each Item describes one tile's COG, read from the file itself:
   date);
 - the projection extension v2 (``proj:code``, ``proj:shape``,
   ``proj:transform``, ``proj:bbox``), with ``proj:epsg`` kept beside
-  ``proj:code`` for readers of the extension's v1 (odc-stac among them);
+  ``proj:code`` for readers that know only the extension's v1;
 - on the ``data`` asset (role ``data``), STAC 1.1 ``bands`` (each layer's
   name from :data:`plantation.mapping.folder.LAYERS` and its meaning from
   that module's layer table) and the raster extension's ``raster:bands``
