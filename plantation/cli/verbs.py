@@ -190,7 +190,9 @@ def benchmark_read(cfg: DictConfig) -> None:
     rc = to_object(cfg, ReadConfig)
     res = run(rc)
     print(json.dumps(res, indent=1))
-    _write_json(res, rc.result)
+    for part, dest in (("memory", rc.result), ("compare", rc.compare.result)):
+        if res[part] is not None:
+            print(f"written to {dest}")
 
 
 def benchmark_plots(cfg: DictConfig) -> None:
