@@ -14,8 +14,10 @@ from affine import Affine
 from omegaconf import OmegaConf
 from pyproj import Transformer
 
+from plantation.benchmarks.reading import QA_PIXEL_CLEAR, write_landsat_scene, write_s2_product
 from plantation.errors import InputNotFoundError, LabelError, RegionError
 from plantation.imagery.config import RegionConfig
+from plantation.imagery.products import MSI, OLI
 from plantation.imagery.region import open_region
 from plantation.reference.labels import read_labels
 from plantation.reference.starter import CHECK, RegionFileExistsError, inspect, render, write
@@ -315,3 +317,82 @@ def test_not_found_names_the_absolute_path(two_tiles, tmp_path, monkeypatch):
     with pytest.raises(InputNotFoundError) as exc:
         inspect("r", two_tiles, Path("labels.csv"))
     assert "labels file does not exist" in _one_line(exc, tmp_path / "labels.csv")
+
+
+# ---------------------------------------------------------------- delivered product folders
+
+#: QA_PIXEL with the cloud bit (3) set: invalid by Landsat's published rule.
+CLOUD = QA_PIXEL_CLEAR | 1 << 3
+
+
+def oli_scene(root: Path, day: str, dn: int, qa: np.ndarray | None = None, transform: Affine = TRANSFORM) -> Path:
+    """An 8 x 8 Landsat 8 C2 L2 scene folder: every band ``dn`` (+100 a band), clear QA_PIXEL unless given."""
+    bands = {OLI.bands[b]: np.full((8, 8), dn + 100 * i, np.uint16) for i, b in enumerate(BANDS)}
+    return write_landsat_scene(root, day, bands, np.full((8, 8), QA_PIXEL_CLEAR) if qa is None else qa, crs=CRS, transform=transform)
+
+
+def s2_product(root: Path, stamp: str, dn: int) -> Path:
+    """A Sentinel-2 L2A product over the same 240 m square as the Landsat scenes: 10 m bands 24 x 24, 20 m bands 12 x 12, SCL vegetation."""
+    bands = {MSI.bands[b]: np.full((24, 24) if MSI.bands[b] in ("B02", "B03", "B04") else (12, 12), dn, np.uint16) for b in BANDS}
+    return write_s2_product(root, stamp, bands, np.full((12, 12), 4, np.uint8), crs=CRS, top_left=(TRANSFORM.c, TRANSFORM.f))
+
+
+def test_a_folder_of_landsat_scene_folders_becomes_a_products_region_read_with_the_published_rules(tmp_path):
+    qa = np.full((8, 8), QA_PIXEL_CLEAR)
+    qa[2, 3] = CLOUD
+    scenes = tmp_path / "delivered" / "p118r060"
+    oli_scene(scenes, "2019-01-05", 10000, qa)
+    oli_scene(scenes, "2019-06-14", 10000)
+    oli_scene(scenes, "2020-03-02", 12000)
+    out = write("landsat", scenes, None, tmp_path / "landsat.yaml")
+    text = out.read_text()
+    assert keys_without_comment(text) == []
+    assert "format: products" in text
+    said = " ".join(line.strip().lstrip("#").strip() for line in text.splitlines() if line.strip().startswith("#"))
+    assert "3 scene(s) (3 landsat_oli)" in said and "3 dates from 2019-01-05 to 2020-03-02" in said
+    assert "p118r060: 3 scene folder(s) (3 landsat_oli) acquired 2019-01-05 to 2020-03-02." in said
+    cfg = load_region_file(out)
+    assert cfg.format == "products" and [(t.name, t.path) for t in cfg.tiles] == [("p118r060", str(scenes))]
+    assert cfg.bands == BANDS and not cfg.harmonise.enabled
+    st = open_region(cfg)[0]
+    assert [str(d) for d in st.dates] == ["2019-01-05", "2019-06-14", "2020-03-02"] and st.sensors == ["landsat_oli"] * 3
+    # The products' own scaling (DN 10000 → 0.075) and QA_PIXEL rule, not the GeoTIFF defaults written beside them.
+    np.testing.assert_allclose(st.reflectance.values[0, 0, 0, 0], 10000 * 0.0000275 - 0.2, rtol=1e-5)
+    assert not st.valid.values[0, 2, 3] and st.valid.values[0].sum() == 63
+
+
+def test_landsat_and_sentinel2_tiles_name_their_sensors_and_harmonise(tmp_path):
+    region = tmp_path / "region"
+    oli_scene(region / "west", "2021-05-02", 10000)
+    oli_scene(region / "west", "2022-07-21", 10000)
+    s2_product(region / "west", "20220301T023031", 2500)
+    starter = inspect("mixed", region, None)
+    assert starter.region.format == "products" and starter.region.harmonise.enabled
+    assert [t.sensors for t in starter.tiles] == [{"landsat_oli": 2, "sentinel2_msi": 1}]
+    assert [str(d) for d in starter.tiles[0].dates] == ["2021-05-02", "2022-03-01", "2022-07-21"]
+    notes = " ".join(starter.notes["tiles"] + starter.notes["harmonise"])
+    assert "west: 3 scene folder(s) (2 landsat_oli, 1 sentinel2_msi) acquired 2021-05-02 to 2022-07-21." in notes
+    assert "2 sensors (landsat_oli, sentinel2_msi)" in notes
+    assert any(c.startswith(f"{CHECK} west's scenes come on 2 grids") for c in starter.checks)  # 30 m Landsat, 10 m Sentinel-2
+    text = render(starter, tmp_path)
+    assert keys_without_comment(text) == [] and "harmonise:\n" in text and "  enabled: true" in text
+    (tmp_path / "mixed.yaml").write_text(text)
+    st = open_region(load_region_file(tmp_path / "mixed.yaml"))[0]
+    assert st.sensors == ["landsat_oli", "sentinel2_msi", "landsat_oli"]
+
+
+def test_product_folders_beside_geotiff_folders_or_one_scene_folder_are_refused(tmp_path, tiny_values, qa):
+    region = tmp_path / "region"
+    oli_scene(region / "a", "2019-01-05", 10000)
+    write_stack(region / "b", DATES, tiny_values, qa)
+    with pytest.raises(RegionError) as exc:
+        inspect("r", region, None)
+    assert "holds both folders of product scenes (a) and of GeoTIFFs" in _one_line(exc, region)
+    scene = next((region / "a").iterdir())
+    with pytest.raises(RegionError) as exc:
+        inspect("r", scene, None)
+    assert "one scene folder; point --imagery at the folder holding the scene folders" in _one_line(exc, scene)
+    (region / "a" / "readme.txt").write_text("delivered 2019")
+    with pytest.raises(RegionError) as exc:
+        inspect("r", region / "a", None)
+    assert "holds ['readme.txt'] beside the scene folders" in _one_line(exc, region / "a")

@@ -17,7 +17,13 @@ Layouts understood for the imagery folder:
   in an ``imagery/`` sub-folder (a ``truth.tif`` beside ``imagery/`` is kept
   as the tile's truth raster, as in simulated regions);
 * cubes: NetCDF (``.nc``) files or Zarr (``.zarr``) stores, one per tile,
-  named after the file stem; the folder may also be one cube itself.
+  named after the file stem; the folder may also be one cube itself;
+* delivered products: Landsat Collection 2 Level-2 scene folders and
+  Sentinel-2 Level-2A product folders, recognised by their published names
+  (:func:`plantation.imagery.products.is_scene_folder`), directly in the
+  folder (one tile named after it) or in one sub-folder per tile; the region
+  file reads them with ``format: products``, each product's own scaling and
+  QA rule, and harmonises the dates when the scenes come from several sensors.
 
 Nothing but headers (and, for float GeoTIFFs, one decimated read of the
 first file to sanity-check the value range) is read.
@@ -42,7 +48,8 @@ from omegaconf import OmegaConf
 from rasterio.crs import CRS
 
 from plantation.errors import ConfigError, InputNotFoundError, LabelError, PlantationError, RegionError
-from plantation.imagery.config import LabelsConfig, MaskConfig, RegionConfig, ScalingRule, TileConfig
+from plantation.imagery import products
+from plantation.imagery.config import HarmoniseConfig, LabelsConfig, MaskConfig, RegionConfig, ScalingRule, TileConfig
 from plantation.imagery.region import RASTER_SUFFIXES, open_region, parse_date_from_name
 from plantation.reference.labels import read_labels, read_table
 
@@ -77,7 +84,7 @@ _PLAIN = re.compile(r"[A-Za-z_./][A-Za-z0-9_./:-]*")
 _YAML_WORDS = {"null", "true", "false", "yes", "no", "on", "off", "y", "n", ".nan", ".inf", "~"}
 _WIDTH = 100
 #: Keys of :attr:`Starter.notes` in the order :func:`render` writes them.
-_KEY_ORDER = ("tiles", "cube_variable", "bands", "nodata", "mask.band", "mask.variable", "scaling", "labels.path", "labels.crs")
+_KEY_ORDER = ("tiles", "cube_variable", "bands", "nodata", "mask.band", "mask.variable", "scaling", "harmonise", "labels.path", "labels.crs")
 
 
 class RegionFileExistsError(PlantationError, FileExistsError):
@@ -90,10 +97,11 @@ class TileFacts:
 
     Attributes:
         name: tile name (sub-folder name, or the cube's file stem).
-        path: absolute path of the tile's GeoTIFF folder or cube.
-        format: ``geotiff_folder`` or ``cube``.
-        files: the GeoTIFFs in date order (empty for a cube).
-        dates: acquisition dates, ascending (from the file names, or the cube's time axis).
+        path: absolute path of the tile's GeoTIFF folder, cube, or folder of scene folders.
+        format: ``geotiff_folder``, ``cube`` or ``products``.
+        files: the GeoTIFFs in date order, or the scene folders in acquisition order (empty for a cube).
+        dates: acquisition dates, ascending (from the file names, or the cube's time axis; for
+            product folders, the reader's dates: one per solar day).
         count: bands per file (reflectance + QA) or the cube's band-axis length.
         dtype: stored data type of the reflectance (a cube's encoded type, before CF decoding).
         nodata: the files' nodata tag (a cube's ``_FillValue``), None when absent.
@@ -107,6 +115,8 @@ class TileFacts:
         qa_variable: the cube's integer (time, y, x) QA variable, if any.
         decoded_scale: True when the cube carries CF ``scale_factor``/``add_offset`` (applied on reading).
         candidates: other (time, band, y, x) variables of the cube, for messages.
+        sensors: product folders: scenes per sensor (``landsat_oli``, ``landsat_etm``, ``sentinel2_msi``).
+        grids: product folders: how many distinct grids the scenes' first bands come on.
     """
 
     name: str
@@ -127,6 +137,8 @@ class TileFacts:
     qa_variable: str | None = None
     decoded_scale: bool = False
     candidates: list[str] = field(default_factory=list)
+    sensors: dict[str, int] = field(default_factory=dict)
+    grids: int = 1
 
     def pixel_size(self) -> str:
         """Pixel width x height with the CRS's unit, e.g. ``30 x 30 m``."""
@@ -206,11 +218,16 @@ def inspect(name: str, imagery: str | Path, labels: str | Path | None = None) ->
     found, skipped = _discover(root)
     if skipped:
         notes["tiles"] = [f"Skipped sub-folder(s) without GeoTIFFs or cubes: {', '.join(skipped)}."]
-    tiles = [_inspect_cube(n, p) if kind == "cube" else _inspect_geotiff_tile(n, p, truth) for n, p, kind, truth in found]
+    tiles = [_inspect_cube(n, p) if kind == "cube" else _inspect_products_tile(n, p) if kind == "products" else _inspect_geotiff_tile(n, p, truth) for n, p, kind, truth in found]
     _check_tiles_agree(tiles)
 
     first = tiles[0]
-    if first.format == "cube":
+    harmonise = HarmoniseConfig()
+    if first.format == "products":
+        bands, mask, nodata, scaling = list(DEFAULT_BANDS), MaskConfig(), None, [ScalingRule()]
+        notes["bands"], harmonise, notes["harmonise"] = _product_bands_and_sensors(tiles)
+        notes["tiles"] = notes.get("tiles", []) + _product_notes(tiles)
+    elif first.format == "cube":
         bands, notes["bands"] = _cube_bands(first)
         mask = MaskConfig(band=None, variable=first.qa_variable)
         notes["mask.variable"] = [
@@ -219,8 +236,9 @@ def inspect(name: str, imagery: str | Path, labels: str | Path | None = None) ->
     else:
         bands, qa_band, notes["bands"], notes["mask.band"] = _infer_bands(first.count, first.dtype, first.descriptions)
         mask = MaskConfig(band=qa_band)
-    nodata, notes["nodata"] = _infer_nodata(tiles)
-    scaling, notes["scaling"] = _infer_scaling(first, len(bands))
+    if first.format != "products":
+        nodata, notes["nodata"] = _infer_nodata(tiles)
+        scaling, notes["scaling"] = _infer_scaling(first, len(bands))
 
     region = RegionConfig(
         name=name,
@@ -232,14 +250,18 @@ def inspect(name: str, imagery: str | Path, labels: str | Path | None = None) ->
         scaling=scaling,
         cube_variable=first.cube_variable or "reflectance",
         labels=LabelsConfig(path=None, crs=None),
+        harmonise=harmonise,
     )
     if first.format == "cube" and first.candidates:
         notes["cube_variable"] = [f"{CHECK} the cube also holds (time, band, y, x) variable(s) {first.candidates}; {first.cube_variable!r} was picked."]
     # The reader's own checks (grids within a tile, CRS and dates across tiles, band counts): what it refuses, we refuse.
     stacks = open_region(region)
-    for st in stacks:
+    for st, t in zip(stacks, tiles, strict=True):
         if st.reader is not None:
             st.reader.close()
+        if t.format == "products":
+            # The reader's dates: one per solar day, same-day scenes mosaicked.
+            t.dates = [date.fromisoformat(str(d)) for d in st.dates]
 
     counts = None
     if labels_path is None:
@@ -268,6 +290,10 @@ def _discover(root: Path) -> tuple[list[tuple[str, Path, str, Path | None]], lis
         return [(root.stem, root, "cube", None)], []
     if not root.is_dir():
         raise RegionError(f"{root}: neither a folder nor a NetCDF (.nc) / Zarr (.zarr) cube; point --imagery at a folder of dated GeoTIFFs or of tiles")
+    if products.is_scene_folder(root):
+        raise RegionError(f"{root}: one scene folder; point --imagery at the folder holding the scene folders ({root.parent})")
+    if _has_scenes(root):
+        return [(root.name, root, "products", None)], []
     here = _tile_in(root)
     if here is not None:
         # A folder named "imagery" belongs to the tile folder above it (the toy layout).
@@ -283,6 +309,9 @@ def _discover(root: Path) -> tuple[list[tuple[str, Path, str, Path | None]], lis
     for p in entries:
         if not p.is_dir() or _is_cube(p):
             continue
+        if _has_scenes(p):
+            folders.append((p.name, p, "products", None))
+            continue
         tile = _tile_in(p)
         if tile is None:
             skipped.append(p.name)
@@ -290,6 +319,11 @@ def _discover(root: Path) -> tuple[list[tuple[str, Path, str, Path | None]], lis
             folders.append((p.name, tile[0], "geotiff_folder", tile[1]))
     if cubes and folders:
         raise RegionError(f"{root}: holds both cubes ({cubes[0][1].name}, ...) and GeoTIFF tile folders ({folders[0][1]}, ...); a region is one format, split them into two folders")
+    kinds = {kind for _, _, kind, _ in folders}
+    if len(kinds) > 1:
+        scenes = next(p for _, p, k, _ in folders if k == "products")
+        tifs = next(p for _, p, k, _ in folders if k != "products")
+        raise RegionError(f"{root}: holds both folders of product scenes ({scenes.name}) and of GeoTIFFs ({tifs}); a region is one format, split them into two folders")
     found = cubes or folders
     if not found:
         raise RegionError(
@@ -302,6 +336,11 @@ def _discover(root: Path) -> tuple[list[tuple[str, Path, str, Path | None]], lis
             clash = [p.name for m, p, *_ in found if m == n]
             raise RegionError(f"{root}: cubes {clash} would both be tile {n!r}; rename one")
     return found, skipped
+
+
+def _has_scenes(folder: Path) -> bool:
+    """Whether ``folder`` holds Landsat C2 L2 or Sentinel-2 L2A scene folders (the products reader's recogniser)."""
+    return any(products.is_scene_folder(p) for p in folder.iterdir())
 
 
 def _tile_in(folder: Path) -> tuple[Path, Path | None] | None:
@@ -388,6 +427,73 @@ def _inspect_geotiff_tile(name: str, folder: Path, truth: Path | None) -> TileFa
         descriptions=[d or None for d in ref["descriptions"]],
         truth=truth,
     )
+
+
+def _inspect_products_tile(name: str, folder: Path) -> TileFacts:
+    """A folder of scene folders, found and checked by the products reader's own :func:`~plantation.imagery.products.find_scenes`; the grid is the first scene's blue band's, as the reader takes it."""
+    scenes = products.find_scenes(folder, [])
+    others = sorted(p.name for p in folder.iterdir() if not p.name.startswith(".") and not products.is_scene_folder(p))
+    if others:
+        raise RegionError(f"{folder}: holds {others[:3]} beside the scene folders; the products reader reads only scene folders named as delivered (LC08_L2SP_..., S2A_MSIL2A_...): move the rest out")
+    heads = []
+    for sc in scenes:
+        bid = sc.sensor.bands[DEFAULT_BANDS[0]]
+        path = sc.files.get(bid)
+        if path is None:
+            raise RegionError(f"{sc.folder}: no file for band {bid} ({DEFAULT_BANDS[0]}) in the scene folder (expected names like {sc.id}_{bid}...)")
+        try:
+            with rasterio.open(path) as src:
+                heads.append((src.crs, src.transform, src.height, src.width, src.dtypes[0], path))
+        except rasterio.errors.RasterioIOError as exc:
+            raise RegionError(f"{path}: cannot read as a raster ({str(exc).splitlines()[0]}); remove or replace the scene") from None
+    crs, transform, height, width, dtype, first = heads[0]
+    if crs is None:
+        raise RegionError(f"{first}: the file has no CRS; assign one (e.g. gdal_edit.py -a_srs EPSG:XXXX)")
+    sensors: dict[str, int] = {}
+    for sc in scenes:
+        sensors[sc.sensor.name] = sensors.get(sc.sensor.name, 0) + 1
+    return TileFacts(
+        name=name,
+        path=folder,
+        format="products",
+        files=[sc.folder for sc in scenes],
+        dates=sorted({sc.acquired.date() for sc in scenes}),
+        count=len(DEFAULT_BANDS),
+        dtype=dtype,
+        nodata=None,
+        crs=crs,
+        transform=transform,
+        height=height,
+        width=width,
+        descriptions=[None] * len(DEFAULT_BANDS),
+        sensors=sensors,
+        grids=len({(str(c), tuple(t), h, w) for c, t, h, w, *_ in heads}),
+    )
+
+
+def _product_bands_and_sensors(tiles: Sequence[TileFacts]) -> tuple[list[str], HarmoniseConfig, list[str]]:
+    """Comment lines on the band roles of product folders, the harmonisation they need (several sensors) and its comment lines."""
+    sensors = sorted({s for t in tiles for s in t.sensors})
+    per = "; ".join(f"{s}: " + ", ".join(f"{r} {products.SENSORS[s].bands[r]}" for r in DEFAULT_BANDS) for s in sensors)
+    band_notes = [f"The roles the products reader finds by each product's band names ({per})."]
+    if len(sensors) > 1:
+        return band_notes, HarmoniseConfig(enabled=True), [f"The scenes come from {len(sensors)} sensors ({', '.join(sensors)}): every date is adjusted to OLI with the published coefficients."]
+    return band_notes, HarmoniseConfig(), [f"One sensor ({sensors[0]}): every date as delivered."]
+
+
+def _product_notes(tiles: Sequence[TileFacts]) -> list[str]:
+    """What the scene folders are: per tile, scenes per sensor and the date range; a CHECK where a tile's scenes come on several grids."""
+    out = []
+    for t in tiles:
+        what = ", ".join(f"{n} {s}" for s, n in sorted(t.sensors.items()))
+        scenes = len(t.files)
+        out.append(f"{t.name}: {scenes} scene folder(s) ({what}) acquired {t.dates[0]} to {t.dates[-1]}.")
+        if t.grids > 1:
+            out.append(
+                f"{CHECK} {t.name}'s scenes come on {t.grids} grids (several path/rows, MGRS tiles or resolutions); "
+                "they are read onto the first scene's grid: add tiles[].grid (crs, bounds, resolution) covering the area to map."
+            )
+    return out
 
 
 def _inspect_cube(name: str, path: Path) -> TileFacts:
@@ -699,12 +805,20 @@ def render(starter: Starter, dest_folder: str | Path) -> str:
     n = starter.notes
     when = starter.inspected_at.astimezone(UTC).strftime("%Y-%m-%d %H:%M UTC")
     years = sorted({d.year for d in first.dates})
-    kind = "NetCDF/Zarr cube(s)" if r.format == "cube" else "GeoTIFF folder(s)"
+    kind = {"cube": "NetCDF/Zarr cube(s)", "products": "folder(s) of delivered scene folders"}.get(r.format, "GeoTIFF folder(s)")
+    if r.format == "products":
+        sensors: dict[str, int] = {}
+        for t in starter.tiles:
+            for k, v in t.sensors.items():
+                sensors[k] = sensors.get(k, 0) + v
+        layers = f"{sum(len(t.files) for t in starter.tiles)} scene(s) ({', '.join(f'{n} {s}' for s, n in sorted(sensors.items()))}), {first.dtype} files"
+    else:
+        layers = f"{first.count} band(s) of {first.dtype}"
     out: list[str] = []
     out += _comment(f"Region {r.name!r}, started by `plantation new-region` on {when} from the headers of its files.")
     head = [
         f"Imagery: {_rel(starter.imagery, base)} - {len(starter.tiles)} tile(s) ({', '.join(t.name for t in starter.tiles)}) as {kind}; "
-        f"{first.count} band(s) of {first.dtype}; CRS {_crs_text(first.crs)} ({_crs_name(first.crs)}); "
+        f"{layers}; CRS {_crs_text(first.crs)} ({_crs_name(first.crs)}); "
         f"{len(first.dates)} dates from {first.dates[0]} to {first.dates[-1]} (years {years[0]}-{years[-1]}).",
         f"Labels: {_rel(starter.labels, base)}." if starter.labels else "Labels: none given.",
         "Every value below was read from those files or is a default said to be one. The reader opened the imagery (and placed the labels) with these values when the file was written.",
@@ -716,11 +830,14 @@ def render(starter: Starter, dest_folder: str | Path) -> str:
 
     out += _comment("Names the region in the outputs of the survey, train and map jobs.")
     out += [f"name: {_scalar(r.name)}"]
-    out += _comment(["geotiff_folder: one GeoTIFF per date, date YYYY-MM-DD in the file name.", "cube: one NetCDF (.nc) or Zarr (.zarr) per tile, dims (time, band, y, x)."])
+    formats = ["geotiff_folder: one GeoTIFF per date, date YYYY-MM-DD in the file name.", "cube: one NetCDF (.nc) or Zarr (.zarr) per tile, dims (time, band, y, x)."]
+    if r.format == "products":
+        formats.append("products: a folder of Landsat Collection 2 Level-2 and Sentinel-2 Level-2A scene folders per tile, as delivered.")
+    out += _comment(formats)
     out += [f"format: {r.format}"]
     tile_text = [
         "One entry per tile: its name, its "
-        + ("cube" if r.format == "cube" else "folder of dated GeoTIFFs")
+        + {"cube": "cube", "products": "folder of scene folders"}.get(r.format, "folder of dated GeoTIFFs")
         + (", and the truth raster (simulated regions only)" if any(t.truth for t in r.tiles) else "")
         + ".",
         "Every tile shares one CRS and the same dates; each may have its own grid.",
@@ -736,19 +853,57 @@ def render(starter: Starter, dest_folder: str | Path) -> str:
     if r.format == "cube":
         out += _comment(["Name of the (time, band, y, x) reflectance variable in each cube.", *n.get("cube_variable", [])])
         out += [f"cube_variable: {_scalar(r.cube_variable)}"]
-    out += _comment(["Band roles in the order they are stored" + (" in each file" if r.format != "cube" else "") + "; the indices need blue, red, nir, swir1, swir2.", *n["bands"]])
+    if r.format == "products":
+        out += _comment(["Band roles read from each scene; the indices need blue, red, nir, swir1, swir2.", *n["bands"]])
+    else:
+        out += _comment(["Band roles in the order they are stored" + (" in each file" if r.format != "cube" else "") + "; the indices need blue, red, nir, swir1, swir2.", *n["bands"]])
     out += ["bands: [" + ", ".join(_scalar(b) for b in r.bands) + "]"]
-    out += _comment(['Stored value for "no data" (null: each file\'s own nodata tag).', *n["nodata"]])
+    if r.format == "products":
+        out += _comment('Stored value for "no data": unused for product folders, which carry each product\'s published fill value.')
+    else:
+        out += _comment(['Stored value for "no data" (null: each file\'s own nodata tag).', *n["nodata"]])
     out += [f"nodata: {_scalar(r.nodata)}"]
-    out += _comment("Where the quality (QA) information of each date lives.") + ["mask:"]
-    if r.format == "cube":
+    if r.format == "products":
+        rule = "Unused for product folders: each scene's own QA layer with its published rule (Landsat QA_PIXEL bits 0, 1, 3, 4, 5; Sentinel-2 SCL classes 0, 1, 3, 8, 9, 10, 11)."
+        out += _comment(["Where the quality (QA) information of each date lives.", rule]) + ["mask:"]
+        out += _comment("1-based QA band of a GeoTIFF folder's files.", 2) + [f"  band: {_scalar(r.mask.band)}"]
+        out += _comment("QA bits marking a pixel invalid (0 = least significant).", 2) + [f"  invalid_bits: [{', '.join(str(b) for b in r.mask.invalid_bits)}]"]
+        out += _comment("QA values (classes) marking a pixel invalid.", 2) + [f"  invalid_values: [{', '.join(str(v) for v in r.mask.invalid_values)}]"]
+    elif r.format == "cube":
+        out += _comment("Where the quality (QA) information of each date lives.") + ["mask:"]
         out += _comment(["Integer (time, y, x) QA variable of each cube; null when there is none.", *n["mask.variable"]], 2)
         out += [f"  variable: {_scalar(r.mask.variable)}"]
-        has_qa = r.mask.variable is not None
+        out += _mask_rule_lines(r, r.mask.variable is not None)
     else:
+        out += _comment("Where the quality (QA) information of each date lives.") + ["mask:"]
         out += _comment(["1-based number of the QA band in each file, right after the reflectance bands; null when the files have none.", *n["mask.band"]], 2)
         out += [f"  band: {_scalar(r.mask.band)}"]
-        has_qa = r.mask.band is not None
+        out += _mask_rule_lines(r, r.mask.band is not None)
+    if r.format == "products":
+        scale = (
+            "Unused for product folders: each scene's published scale and offset (Landsat C2 L2 0.0000275 and -0.2; "
+            "Sentinel-2 L2A (DN + BOA_ADD_OFFSET) / 10000, the offset from the product's metadata or baseline)."
+        )
+        out += _comment(["reflectance = stored value x scale + offset for a GeoTIFF folder or cube.", scale])
+    else:
+        out += _comment(["reflectance = stored value x scale + offset; the rule with the latest start on or before a date applies (start: null = from the first date).", *n["scaling"]])
+    out += ["scaling:"] + [f"  - {_flow({'start': s.start, 'scale': s.scale, 'offset': s.offset})}" for s in r.scaling]
+    if r.format == "products":
+        out += _comment("Cross-sensor adjustment of each date's reflectance to a reference sensor.") + ["harmonise:"]
+        out += _comment(["Adjust every date to the reference sensor with published coefficients (needed when the scenes come from several sensors).", *n["harmonise"]], 2)
+        out += [f"  enabled: {_scalar(r.harmonise.enabled)}"]
+        out += _comment("The sensor every date is brought to: oli (the published tables run to it).", 2) + [f"  reference: {_scalar(r.harmonise.reference)}"]
+    out += _label_lines(starter, base)
+    out += _comment("Spatial chunk in pixels for lazy reading; bounds the memory of each task.")
+    out += [f"chunk: {r.chunk}", ""]
+    text = "\n".join(out)
+    _check_round_trip(text, r, base)
+    return text
+
+
+def _mask_rule_lines(r: RegionConfig, has_qa: bool) -> list[str]:
+    """The QA bits and values of a GeoTIFF folder's or cube's mask, with comments."""
+    out: list[str] = []
     bits = ["A pixel is invalid when any of these bits (0 = least significant) is set in the QA values."]
     if has_qa:
         bits.append(
@@ -762,9 +917,13 @@ def render(starter: Starter, dest_folder: str | Path) -> str:
         "(e.g. Sentinel-2 L2A SCL: 0, 1, 3, 8, 9, 10, 11; then set invalid_bits: []). Empty: bits only.",
     ]
     out += _comment(values, 2) + [f"  invalid_values: [{', '.join(str(v) for v in r.mask.invalid_values)}]"]
-    out += _comment(["reflectance = stored value x scale + offset; the rule with the latest start on or before a date applies (start: null = from the first date).", *n["scaling"]])
-    out += ["scaling:"] + [f"  - {_flow({'start': s.start, 'scale': s.scale, 'offset': s.offset})}" for s in r.scaling]
-    out += _comment("Reference points labelled by interpreters: what the model learns from and is checked against.") + ["labels:"]
+    return out
+
+
+def _label_lines(starter: Starter, base: Path) -> list[str]:
+    """The ``labels:`` block, with comments."""
+    r, n = starter.region, starter.notes
+    out = _comment("Reference points labelled by interpreters: what the model learns from and is checked against.") + ["labels:"]
     label_path_notes = n.get("labels.path", [])
     out += _comment(["CSV (x, y, label, onset_year) or GeoPackage/GeoJSON points (label, onset_year).", *label_path_notes], 2)
     out += [f"  path: {_scalar(_rel(r.labels.path, base) if r.labels.path else None)}"]
@@ -789,11 +948,7 @@ def render(starter: Starter, dest_folder: str | Path) -> str:
         out += _comment(what, 4) + [f"    {group}: null"]
     out += _comment("Column of the labels file with each point's inclusion probability in (0, 1] under the sampling design; null: not recorded.", 2)
     out += ["  inclusion_column: null"]
-    out += _comment("Spatial chunk in pixels for lazy reading; bounds the memory of each task.")
-    out += [f"chunk: {r.chunk}", ""]
-    text = "\n".join(out)
-    _check_round_trip(text, r, base)
-    return text
+    return out
 
 
 def load_text(text: str, base: str | Path) -> RegionConfig:
