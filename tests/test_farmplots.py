@@ -44,6 +44,7 @@ from plantation.farmplots.cutoff import (
     verdict,
     write_outputs,
 )
+from plantation.farmplots.evidence import EvidenceConfig, read_evidence
 from plantation.mapping.folder import FORMAT, LAYERS, NODATA
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -108,6 +109,8 @@ def write_plots(path: Path, geoms: list, ids: list, crs: str = CRS, field: str =
 
 
 def cfg_for(tmp_path: Path, plots: Path, map_dir: Path, **kw) -> PlotsConfig:
+    """A plot check of these maps; no evidence pages (the maps here have no imagery: tests/test_evidence.py draws pages)."""
+    kw.setdefault("evidence", EvidenceConfig(enabled=False))
     return PlotsConfig(plots=str(plots), map=str(map_dir), out_dir=str(tmp_path / "out"), progress=False, **kw)
 
 
@@ -610,7 +613,7 @@ def _script(*overrides: str) -> subprocess.CompletedProcess:
 def test_script_on_a_tiny_map(tmp_path):
     maps = write_tile(tmp_path / "map", p_after=np.full((10, 10), 9700, np.int16))
     plots = write_plots(tmp_path / "plots.gpkg", [pixel_box(1, 1, 4, 4), shapely.Point(corner(5, 5))], ["A", "B"])
-    res = _script(f"plots={plots}", f"map={maps}", f"out_dir={tmp_path / 'out'}", "progress=false")
+    res = _script(f"plots={plots}", f"map={maps}", f"out_dir={tmp_path / 'out'}", "progress=false", "evidence.enabled=false")
     assert res.returncode == 0, res.stderr
     assert "strong_evidence      1" in res.stdout and "problem              1" in res.stdout
     assert f"{plots}: feature 2 (id 'B'): not_a_polygon" in res.stdout
@@ -663,3 +666,8 @@ def test_script_on_the_toy_map(tmp_path):
     # a few metres): mapped share is UTM's areal scale there, about 0.9995.
     shares = np.array([p["mapped_share"] for p in doc["plots"]])
     assert (shares > 0.95).all() and (shares < 1.0).all() and np.mean(np.abs(shares - 0.9995) < 5e-4) > 0.9
+    # A page of evidence per flagged plot, from the toy imagery.
+    ev = read_evidence(tmp_path)
+    flagged = [p["id"] for p in doc["plots"] if p["verdict"] in ("strong_evidence", "review")]
+    assert sorted(p["id"] for p in ev["pages"]) == sorted(flagged)
+    assert all((tmp_path / "evidence" / p["file"]).stat().st_size > 20_000 for p in ev["pages"])

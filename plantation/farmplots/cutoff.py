@@ -70,6 +70,7 @@ import shapely
 from pyproj import CRS, Geod, Transformer
 
 from plantation.errors import ConfigError, FileFormatError, InputNotFoundError, PlantationError
+from plantation.farmplots.evidence import VERDICT_NAMES, EvidenceConfig, EvidenceResult, PagePlot, check_evidence_config, open_imagery, select, write_pages
 from plantation.imagery.config import RegionConfig
 from plantation.mapping.folder import BAND, NO_CORRECTION, NODATA, NOTICE, MapTile, file_digest, open_map
 from plantation.records import check_shapes, load_object, locate
@@ -78,7 +79,7 @@ from plantation.reference.labels import LABEL_CODES
 KIND = "plantation-plots/1"
 #: The plot check's record, written by :func:`run` and read by :func:`read_plots_json` (this module is its one reader and writer).
 PLOTS_JSON = "plots.json"
-VERDICTS: tuple[str, ...] = ("low_evidence", "review", "strong_evidence")
+VERDICTS: tuple[str, ...] = VERDICT_NAMES
 #: Per-plot problems, in the order they are checked (a plot gets the first that applies).
 PROBLEMS: tuple[str, ...] = ("missing_id", "duplicate_id", "empty_geometry", "not_a_polygon", "invalid_geometry", "outside_map")
 _VECTOR_SUFFIXES = (".gpkg", ".geojson", ".json")
@@ -146,6 +147,8 @@ class PlotsConfig:
     interval_level: float = 0.9
     verdict: VerdictConfig = field(default_factory=VerdictConfig)
     progress: bool = True
+    #: A page of evidence per flagged plot (:mod:`plantation.farmplots.evidence`).
+    evidence: EvidenceConfig = field(default_factory=EvidenceConfig)
 
 
 def year_column(year: int) -> str:
@@ -171,6 +174,8 @@ def check_config(cfg: PlotsConfig) -> None:
     for key in ("review_min_share", "min_mapped_share"):
         if getattr(v, key) > 1:
             raise ConfigError(f"verdict.{key}: {getattr(v, key)!r} is a share, at most 1")
+    if cfg.evidence.enabled:
+        check_evidence_config(cfg.evidence)
 
 
 # --------------------------------------------------------------------------- cutoff
@@ -569,6 +574,8 @@ class PlotsResult:
     plots_file: str
     #: Which probability correction the map carries (:meth:`plantation.mapping.folder.MappedRegion.correction_text`).
     correction: str = NO_CORRECTION
+    #: The evidence pages written (None: not asked for).
+    evidence: EvidenceResult | None = None
 
     def lines(self) -> list[str]:
         """A short account for the terminal: verdict counts, problems, and which probability correction the map carries."""
@@ -578,6 +585,8 @@ class PlotsResult:
         if self.problems:
             out.append(f"{len(self.problems)} plot(s) not measured (rows kept with status = the problem):")
             out.extend(f"  {p.message(self.plots_file)}" for p in self.problems)
+        if self.evidence is not None:
+            out.extend(self.evidence.lines())
         return out
 
 
@@ -796,6 +805,8 @@ def run(cfg: PlotsConfig) -> PlotsResult:
     check_map_cutoff(mapped.cutoff_year, cutoff, tiles[0].path)
     plots = read_plots(cfg.plots, cfg.id_field)
     good, problems = check_plots(plots)
+    if cfg.evidence.enabled:
+        open_imagery(mapped, cfg.region)  # fail before measuring when the pages could not be drawn
     to_wgs84 = _transformer(plots.crs, _WGS84)
 
     readers = [TileReader(t) for t in tiles]
@@ -857,4 +868,9 @@ def run(cfg: PlotsConfig) -> PlotsResult:
         doc["probability_correction_text"] = mapped.correction_text()
     out = Path(cfg.out_dir)
     files = write_outputs(ordered, doc, out, years=mapped.years, crs=plots.crs)
-    return PlotsResult(out_dir=out, files=files, rows=ordered, problems=problems, counts=counts, cutoff=cutoff, plots_file=str(cfg.plots), correction=mapped.correction_text())
+    evidence = None
+    if cfg.evidence.enabled:
+        chosen, skipped = select(sort_rows(ordered), cfg.evidence)
+        pages = [PagePlot(str(r.id), r.plot_geometry, _record(r)) for r in chosen]
+        evidence = write_pages(pages, plots.crs, mapped, cfg.region, cutoff.date, out, cfg.evidence, plot_level=cfg.interval_level, plots_json=files["json"], skipped=skipped, progress=cfg.progress)
+    return PlotsResult(out_dir=out, files=files, rows=ordered, problems=problems, counts=counts, cutoff=cutoff, plots_file=str(cfg.plots), correction=mapped.correction_text(), evidence=evidence)

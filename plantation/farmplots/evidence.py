@@ -1,0 +1,833 @@
+"""A page of evidence per farm plot that needs a look: what the map says, and what the region's own imagery shows.
+
+For each plot the plot check flags (verdicts in :attr:`EvidenceConfig.verdicts`,
+by default ``strong_evidence`` and ``review``) and each plot asked for by id,
+:func:`write_pages` draws one PNG, ``<out_dir>/evidence/<file>.png``:
+
+* the plot's outline over the map's onset-year layer (a window around the
+  plot, colours of :func:`plantation.mapping.styles.year_colours`, split at the
+  cutoff);
+* chips of the plot from the region's imagery, true colour (red, green, blue)
+  and false colour (SWIR1, NIR, red as red, green, blue: vegetation green,
+  bare soil and cleared land magenta to brown), on the dates that matter: the
+  last clear view before the mapped onset year and the first clear views
+  from the onset year on. A plot with no conversion mapped under it gets the
+  views around the cutoff instead;
+* the plot's median NDVI and NBR (:mod:`plantation.imagery.indices`, per
+  pixel, then the median over the plot's clear pixels) on every clear date,
+  with the mapped onset year and its interval shaded, the cutoff drawn and
+  the chips' dates marked;
+* the numbers of the plot check in words: expected area after the cutoff and
+  its range, the probability of conversion after the cutoff, the verdict and
+  the rules that decided it.
+
+Definitions:
+
+* The plot's pixels are those whose centre lies inside the polygon (every
+  pixel it touches, for a polygon smaller than a pixel), in the map tile that
+  holds the plot's representative point (:func:`shapely.point_on_surface`).
+  A plot straddling tiles is drawn from that tile alone: the chips stop at
+  its edge.
+* A date is a *clear view* of the plot when at least
+  :attr:`EvidenceConfig.min_clear_share` of the plot's pixels are valid on it
+  (no cloud, shadow or fill by the region's mask), so the median over the
+  plot is a median of what the ground looked like.
+* The plot's onset year is the onset year of most of its pixels mapped as
+  converted; its interval is the median, over those pixels, of the map's
+  onset interval bounds (the map's credible interval at its
+  ``interval_level``, 80% by default).
+* Chips use a fixed linear stretch (:data:`TRUE_COLOUR`, :data:`FALSE_COLOUR`),
+  the same on every page and every date, so chips compare across dates and
+  plots: reflectance 0–0.15 for the visible bands (closed forest sits near
+  0.02–0.05 in red, bare soil above 0.15 and saturates to white), 0–0.5 for
+  NIR and 0–0.4 for SWIR1 (forest canopies reach about 0.3 in NIR; soil and
+  dry residue are bright in SWIR1). Pixels that are not valid on the date are
+  drawn in :data:`MASKED_RGB` grey.
+
+Only a window around each plot is read (:meth:`plantation.imagery.region.TileStack.read`:
+windowed reads straight from the files), so memory does not grow with the
+region or the number of plots; pages are drawn by ``workers`` processes when
+there are many. Each PNG is written under a temporary name and renamed, and
+the folder is swapped in whole once every page is written, with
+``evidence.json`` (:func:`read_evidence`, this module is its one reader and
+writer) listing the pages, their dates, and a summary of the imagery (dates,
+sensors, clear-view shares from the survey).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+import os
+import re
+import shutil
+import textwrap
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from datetime import date
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import rasterio
+import rasterio.features
+import rasterio.windows
+import shapely
+from pyproj import CRS, Transformer
+
+from plantation.errors import ConfigError, FileFormatError, RegionError
+from plantation.imagery.config import RegionConfig
+from plantation.imagery.indices import nbr, ndvi
+from plantation.imagery.region import open_tile
+from plantation.mapping.folder import BAND, NODATA, file_digest
+from plantation.mapping.styles import year_colours
+from plantation.records import check_shapes, load_object, locate
+from plantation.reference.labels import LABEL_CODES
+
+KIND = "plantation-evidence/1"
+#: The folder of the pages, inside the plot check's ``out_dir``.
+FOLDER = "evidence"
+#: The pages' record, inside :data:`FOLDER`.
+EVIDENCE_JSON = "evidence.json"
+#: Chip composites: (display channel's band role, reflectance shown black, reflectance shown full) for red, green, blue.
+TRUE_COLOUR: tuple[tuple[str, float, float], ...] = (("red", 0.0, 0.15), ("green", 0.0, 0.15), ("blue", 0.0, 0.15))
+FALSE_COLOUR: tuple[tuple[str, float, float], ...] = (("swir1", 0.0, 0.40), ("nir", 0.0, 0.50), ("red", 0.0, 0.15))
+#: Colour of a chip pixel with no valid observation on the date.
+MASKED_RGB = (0.55, 0.55, 0.55)
+#: Colour of the plot's outline on the chips and the map window.
+OUTLINE = "#00e5ff"
+_SAFE = re.compile(r"[^A-Za-z0-9._-]+")
+_CONVERSION = LABEL_CODES["conversion"]
+#: The plot check's verdicts (:data:`plantation.farmplots.cutoff.VERDICTS`, which imports this module).
+VERDICT_NAMES: tuple[str, ...] = ("low_evidence", "review", "strong_evidence")
+
+
+@dataclass
+class EvidenceConfig:
+    """Schema of the ``evidence:`` keys of ``configs/farmplots.yaml``."""
+
+    enabled: bool = True
+    #: Verdicts that get a page.
+    verdicts: list[str] = field(default_factory=lambda: ["strong_evidence", "review"])
+    #: Plot ids that get a page whatever their verdict.
+    plots: list[str] = field(default_factory=list)
+    #: Clear views shown from the onset year on (one more is shown before it).
+    views_after: int = 3
+    #: A date is a clear view of the plot when at least this share of its pixels are valid.
+    min_clear_share: float = 0.5
+    #: Pixels of context around the plot on every side (at least; the window is at least ``min_window`` wide).
+    margin: int = 6
+    #: Smallest window side in pixels.
+    min_window: int = 24
+    #: The survey's record, for the clear-view shares of the imagery section; missing: dates and sensors only.
+    survey: str | None = "outputs/survey/survey.json"
+    #: Processes drawing pages (used from 40 pages on; 1: draw in this process).
+    workers: int = 2
+
+
+def check_evidence_config(cfg: EvidenceConfig) -> None:
+    """Reject values no page could use, naming the key."""
+    bad = [v for v in cfg.verdicts if v not in VERDICT_NAMES]
+    if bad:
+        raise ConfigError(f"evidence.verdicts: {bad!r} are not verdicts; use some of {list(VERDICT_NAMES)}")
+    if cfg.views_after < 1:
+        raise ConfigError(f"evidence.views_after: {cfg.views_after!r} must be 1 or more")
+    if not 0 < cfg.min_clear_share <= 1:
+        raise ConfigError(f"evidence.min_clear_share: {cfg.min_clear_share!r} must be in (0, 1]")
+    if cfg.margin < 0 or cfg.min_window < 1:
+        raise ConfigError(f"evidence.margin / evidence.min_window: {cfg.margin!r} / {cfg.min_window!r} must be ≥ 0 / ≥ 1")
+    if cfg.workers < 1:
+        raise ConfigError(f"evidence.workers: {cfg.workers!r} must be 1 or more")
+
+
+# --------------------------------------------------------------------------- what a page shows
+
+
+@dataclass
+class PlotEvidence:
+    """Everything a page shows of one plot, computed from the map and the imagery (arrays on the window around the plot).
+
+    Attributes:
+        tile: the map (and imagery) tile it was read from.
+        window: (row, col, height, width) in the tile's pixels.
+        transform: the window's affine transform.
+        inside: bool (h, w): the plot's pixels.
+        outline: the plot's rings in window pixel coordinates (x = column, y = row), for drawing.
+        onset_map: onset year (h, w), 0 where the map has no conversion; -1 where no data.
+        dates: every acquisition date, ``datetime64[D]``.
+        clear_share: (dates,) share of the plot's pixels valid on each date.
+        clear: (dates,) bool, clear views of the plot.
+        ndvi, nbr: (dates,) the plot's median index over its valid pixels; NaN on dates that are not clear views.
+        onset_year, onset_lo, onset_hi: the plot's mapped onset year and interval (None: no conversion mapped under it).
+        converted_share: share of the plot's mapped pixels mapped as converted.
+        before, after: indices into ``dates`` of the chips: the last clear view before the boundary (None: none), the first clear views from it on.
+        boundary: the first day "after": 1 January of the onset year, or the day after the cutoff without an onset.
+        true_colour, false_colour: (chips, h, w, 3) float RGB in 0–1, chips in order ``[before] + after``.
+        p_max: the highest probability of conversion after the cutoff among the plot's pixels.
+    """
+
+    tile: str
+    window: tuple[int, int, int, int]
+    transform: Any
+    inside: np.ndarray
+    outline: list[np.ndarray]
+    onset_map: np.ndarray
+    dates: np.ndarray
+    clear_share: np.ndarray
+    clear: np.ndarray
+    ndvi: np.ndarray
+    nbr: np.ndarray
+    onset_year: int | None
+    onset_lo: int | None
+    onset_hi: int | None
+    converted_share: float
+    before: int | None
+    after: list[int]
+    boundary: date
+    true_colour: np.ndarray
+    false_colour: np.ndarray
+    p_max: float | None
+
+    @property
+    def chip_dates(self) -> list[int]:
+        """Indices into ``dates`` of the chips, in drawing order."""
+        return ([self.before] if self.before is not None else []) + list(self.after)
+
+
+def stretch(refl: np.ndarray, bands: Sequence[str], composite: Sequence[tuple[str, float, float]]) -> np.ndarray:
+    """RGB in 0–1, (h, w, 3), from reflectance (band, h, w) with a fixed linear stretch per channel; NaN anywhere → :data:`MASKED_RGB`.
+
+    Raises:
+        ConfigError: a band role the composite needs is not in ``bands``.
+    """
+    missing = [role for role, _, _ in composite if role not in bands]
+    if missing:
+        raise ConfigError(f"region.bands: {list(bands)} lack {missing}, which the evidence chips need")
+    chans = []
+    for role, lo, hi in composite:
+        chans.append(np.clip((refl[list(bands).index(role)] - lo) / (hi - lo), 0.0, 1.0))
+    rgb = np.stack(chans, axis=-1).astype(np.float32)
+    bad = np.isnan(rgb).any(-1)
+    rgb[bad] = MASKED_RGB
+    return rgb
+
+
+def choose_dates(dates: np.ndarray, clear: np.ndarray, boundary: date, n_after: int) -> tuple[int | None, list[int]]:
+    """The chips' dates: the last clear view before ``boundary`` and the first ``n_after`` clear views on or after it (indices into ``dates``)."""
+    b = np.datetime64(boundary, "D")
+    idx = np.flatnonzero(clear)
+    before = idx[dates[idx] < b]
+    after = idx[dates[idx] >= b]
+    return (int(before[-1]) if before.size else None), [int(i) for i in after[:n_after]]
+
+
+def _window(bounds_px: tuple[float, float, float, float], grid_hw: tuple[int, int], margin: int, min_side: int) -> tuple[int, int, int, int]:
+    """(row, col, height, width): the plot's pixel bounds (c0, r0, c1, r1) grown by ``margin``, at least ``min_side`` a side, clipped to the tile."""
+    c0, r0, c1, r1 = bounds_px
+    h_tile, w_tile = grid_hw
+
+    def span(a: float, b: float, size: int) -> tuple[int, int]:
+        lo, hi = int(np.floor(a)) - margin, int(np.ceil(b)) + margin
+        if hi - lo < min_side:
+            grow = min_side - (hi - lo)
+            lo -= grow // 2
+            hi += grow - grow // 2
+        lo, hi = max(lo, 0), min(hi, size)
+        return lo, max(hi, lo + 1)
+
+    r_lo, r_hi = span(r0, r1, h_tile)
+    c_lo, c_hi = span(c0, c1, w_tile)
+    return r_lo, c_lo, r_hi - r_lo, c_hi - c_lo
+
+
+def _rings(geom: Any) -> list[np.ndarray]:
+    out = []
+    for poly in getattr(geom, "geoms", [geom]):
+        out.append(np.asarray(poly.exterior.coords))
+        out.extend(np.asarray(r.coords) for r in poly.interiors)
+    return out
+
+
+def gather(geom: Any, map_path: Path, stack: Any, bands: Sequence[str], cutoff_date: date, cfg: EvidenceConfig, *, scale: float = 1e-4, offset: float = 0.0) -> PlotEvidence:
+    """A plot's evidence from the map tile at ``map_path`` and the imagery tile ``stack`` (a :class:`~plantation.imagery.region.TileStack` on the same grid).
+
+    Args:
+        geom: the plot, a (Multi)Polygon in the tile's CRS.
+        bands: the region's band roles, in stored order.
+        cutoff_date: conversions after this day count as after the cutoff.
+        scale, offset: of the map's p_after_cutoff band.
+    """
+    g = stack.grid
+    inv = ~g.transform
+    minx, miny, maxx, maxy = geom.bounds
+    (ca, ra), (cb, rb) = inv * (minx, maxy), inv * (maxx, miny)
+    row, col, h, w = _window((min(ca, cb), min(ra, rb), max(ca, cb), max(ra, rb)), (g.height, g.width), cfg.margin, cfg.min_window)
+    win = rasterio.windows.Window(col, row, w, h)
+    wt = rasterio.windows.transform(win, g.transform)
+    inside = rasterio.features.geometry_mask([geom], out_shape=(h, w), transform=wt, invert=True, all_touched=False)
+    if not inside.any():
+        inside = rasterio.features.geometry_mask([geom], out_shape=(h, w), transform=wt, invert=True, all_touched=True)
+    with rasterio.open(map_path) as src:
+        m = src.read([BAND["class"], BAND["onset_year"], BAND["onset_lo"], BAND["onset_hi"], BAND["p_after_cutoff"]], window=win, boundless=True, fill_value=NODATA)
+    cls, onset, lo, hi, p_raw = m
+    data = cls != NODATA
+    conv = data & (cls == _CONVERSION) & (onset > 0)
+    onset_map = np.where(~data, -1, np.where(conv, onset, 0)).astype(np.int32)
+    pin = inside & data
+    p_max = float((p_raw[pin].astype(np.float64) * scale + offset).max()) if pin.any() else None
+    cin = inside & conv
+    onset_year = onset_lo = onset_hi = None
+    if cin.any():
+        years, counts = np.unique(onset[cin], return_counts=True)
+        onset_year = int(years[np.argmax(counts)])  # the most pixels; ties go to the earlier year
+        pick = cin & (onset == onset_year)
+        onset_lo = int(np.round(np.median(lo[pick])))
+        onset_hi = int(np.round(np.median(hi[pick])))
+    converted_share = float(cin.sum() / pin.sum()) if pin.any() else 0.0
+
+    refl, valid = stack.read(row, col, h, w)  # (t, b, h, w), (t, h, w)
+    dates = np.asarray(stack.dates, dtype="datetime64[D]")
+    n_in = int(inside.sum())
+    share = valid[:, inside].sum(axis=1) / max(n_in, 1)
+    clear = share >= cfg.min_clear_share
+    bl = list(bands)
+    nir, red, swir2 = refl[:, bl.index("nir")], refl[:, bl.index("red")], refl[:, bl.index("swir2")]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        nd = ndvi(nir, red)[:, inside]
+        nb = nbr(nir, swir2)[:, inside]
+    ndvi_med = np.full(len(dates), np.nan)
+    nbr_med = np.full(len(dates), np.nan)
+    for t in np.flatnonzero(clear):
+        ok = valid[t][inside]
+        ndvi_med[t] = float(np.nanmedian(nd[t][ok]))
+        nbr_med[t] = float(np.nanmedian(nb[t][ok]))
+    if onset_year is not None:
+        boundary = date(onset_year, 1, 1)
+    else:
+        boundary = date.fromordinal(cutoff_date.toordinal() + 1)
+    before, after = choose_dates(dates, clear, boundary, cfg.views_after)
+    picks = ([before] if before is not None else []) + after
+    tc = np.stack([stretch(refl[t], bl, TRUE_COLOUR) for t in picks]) if picks else np.zeros((0, h, w, 3), np.float32)
+    fc = np.stack([stretch(refl[t], bl, FALSE_COLOUR) for t in picks]) if picks else np.zeros((0, h, w, 3), np.float32)
+    outline = [np.column_stack(inv_ring(r, wt)) for r in _rings(geom)]
+    return PlotEvidence(
+        tile=stack.name,
+        window=(row, col, h, w),
+        transform=wt,
+        inside=inside,
+        outline=outline,
+        onset_map=onset_map,
+        dates=dates,
+        clear_share=share,
+        clear=clear,
+        ndvi=ndvi_med,
+        nbr=nbr_med,
+        onset_year=onset_year,
+        onset_lo=onset_lo,
+        onset_hi=onset_hi,
+        converted_share=converted_share,
+        before=before,
+        after=after,
+        boundary=boundary,
+        true_colour=tc,
+        false_colour=fc,
+        p_max=p_max,
+    )
+
+
+def inv_ring(ring: np.ndarray, transform: Any) -> tuple[np.ndarray, np.ndarray]:
+    """A ring's CRS coordinates as window pixel coordinates (column, row; pixel edges at integers)."""
+    inv = ~transform
+    cols, rows = inv * (ring[:, 0], ring[:, 1])
+    return np.asarray(cols), np.asarray(rows)
+
+
+# --------------------------------------------------------------------------- drawing
+
+
+def _day(d: np.datetime64) -> str:
+    return str(np.datetime64(d, "D"))
+
+
+def _words(verdict: str | None) -> str:
+    return {"strong_evidence": "strong evidence", "review": "review", "low_evidence": "low evidence"}.get(verdict or "", str(verdict or "no verdict"))
+
+
+def page_text(ev: PlotEvidence, row: dict[str, Any], cutoff_date: date, plot_level: float, map_level: float | None) -> list[str]:
+    """The page's lines of text: the map's numbers for the plot and the verdict's reasons, in words."""
+    after = f"after {cutoff_date.isoformat()}"
+    lines = [f"Verdict: {_words(row.get('verdict'))}."]
+    if ev.onset_year is not None:
+        lvl = f"{map_level:.0%} credible interval" if map_level else "credible interval"
+        lines.append(f"Mapped onset year: {ev.onset_year} ({lvl} of the year: {ev.onset_lo}–{ev.onset_hi}); {ev.converted_share:.0%} of the plot's mapped pixels are mapped as converted.")
+    else:
+        lines.append("No pixel of the plot is mapped as converted: the chips show the views around the cutoff.")
+    e, lo, hi, mapped = row.get("expected_after_ha"), row.get("after_lo_ha"), row.get("after_hi_ha"), row.get("mapped_ha")
+    if isinstance(e, int | float):
+        lines.append(
+            f"Expected area converted {after}: {e:.2f} ha of {mapped:.2f} ha mapped ({plot_level:.0%} range {lo:.2f}–{hi:.2f} ha, "
+            "if the plot's pixels convert together; a range under the map's model, not a sampling interval)."
+        )
+    share = row.get("share_after")
+    if isinstance(share, int | float):
+        top = f"; highest single pixel {ev.p_max:.2f}" if ev.p_max is not None else ""
+        lines.append(f"Probability of conversion {after} (p_after_cutoff): {share:.2f} on average over the plot{top}.")
+    n_clear = int(ev.clear.sum())
+    lines.append(f"Clear views of the plot: {n_clear} of {len(ev.dates)} dates (at least half its pixels free of cloud, shadow and fill).")
+    reasons = [str(r) for r in row.get("reasons") or []]
+    if reasons:
+        lines.append("Why this verdict: " + "; ".join(reasons) + ".")
+    return lines
+
+
+def draw_page(ev: PlotEvidence, row: dict[str, Any], cutoff_date: date, *, plot_level: float, map_level: float | None, years: Sequence[int], dpi: int = 80) -> bytes:
+    """The page as PNG bytes (matplotlib, Agg, a bare Figure: no pyplot state)."""
+    from matplotlib.colors import BoundaryNorm, ListedColormap
+    from matplotlib.dates import date2num
+    from matplotlib.figure import Figure
+    from matplotlib.patches import Patch
+
+    n = max(len(ev.chip_dates), 1)
+    cols = max(n, 4)
+    fig = Figure(figsize=(2.3 * cols + 0.4, 10.4))
+    gs = fig.add_gridspec(4, cols, height_ratios=[1.2, 1.0, 1.0, 1.1], left=0.04, right=0.985, top=0.93, bottom=0.05, hspace=0.55, wspace=0.12)
+    pid = str(row.get("id"))
+    fig.suptitle(f"Plot {pid}: evidence of conversion after {cutoff_date.isoformat()}", fontsize=12, fontweight="bold", x=0.04, ha="left")
+    h, w = ev.inside.shape
+
+    def outline(ax: Any) -> None:
+        for ring in ev.outline:
+            ax.plot(ring[:, 0] - 0.5, ring[:, 1] - 0.5, color=OUTLINE, linewidth=1.6)
+        ax.set_xlim(-0.5, w - 0.5)
+        ax.set_ylim(h - 0.5, -0.5)
+        ax.set_xticks([])
+        ax.set_yticks([])
+
+    # The map window: onset years split at the cutoff, other classes pale, no data white.
+    ax = fig.add_subplot(gs[0, 0])
+    yrs = sorted(set(int(y) for y in years) | {int(y) for y in np.unique(ev.onset_map[ev.onset_map > 0])})
+    cut_year = cutoff_date.year if (cutoff_date.month, cutoff_date.day) == (12, 31) else cutoff_date.year - 1
+    if yrs:
+        cmap = ListedColormap(year_colours(yrs, cut_year))
+        norm = BoundaryNorm(np.arange(yrs[0] - 0.5, yrs[-1] + 1.0), cmap.N) if len(yrs) > 1 else None
+        base = np.where(ev.onset_map == -1, 1.0, 0.88)
+        ax.imshow(np.dstack([base, base, base]), interpolation="nearest")
+        conv = np.ma.masked_array(ev.onset_map, mask=ev.onset_map <= 0)
+        ax.imshow(conv, cmap=cmap, norm=norm, interpolation="nearest", vmin=None if norm else yrs[0] - 0.5, vmax=None if norm else yrs[0] + 0.5)
+        shown = [y for y in yrs if (ev.onset_map == y).any()]
+        handles = [Patch(facecolor=c, label=str(y)) for y, c in zip(shown, year_colours(shown, cut_year), strict=True)] if shown else []
+        handles.append(Patch(facecolor="#e0e0e0", label="not converted"))
+        ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.02, 1.0), fontsize=6.5, frameon=False, title="onset year", title_fontsize=7, borderaxespad=0)
+    outline(ax)
+    ax.set_title(f"Map: onset year (tile {ev.tile})", fontsize=8.5)
+
+    # The numbers, in words.
+    tx = fig.add_subplot(gs[0, 2:] if cols >= 3 else gs[0, 1:])
+    tx.axis("off")
+    body = "\n".join(textwrap.fill(s, width=int(31 * (cols - 2) + 8)) for s in page_text(ev, row, cutoff_date, plot_level, map_level))
+    tx.text(-0.04, 1.02, body, va="top", ha="left", fontsize=7.6, transform=tx.transAxes, linespacing=1.3)
+
+    labels = "abcdefghij"
+    for k, t in enumerate(ev.chip_dates):
+        role = "before onset" if k == 0 and ev.before is not None else "from onset year on"
+        if ev.onset_year is None:
+            role = "before cutoff" if k == 0 and ev.before is not None else "after cutoff"
+        for r, (arr, name) in enumerate(((ev.true_colour, "true colour"), (ev.false_colour, "false colour"))):
+            cax = fig.add_subplot(gs[1 + r, k])
+            cax.imshow(arr[k], interpolation="nearest")
+            outline(cax)
+            cax.set_title(f"({labels[k]}) {_day(ev.dates[t])}, {role}" if r == 0 else f"({labels[k]}) {_day(ev.dates[t])}", fontsize=7.5)
+            if k == 0:
+                cax.set_ylabel(name, fontsize=8)
+    if not ev.chip_dates:
+        cax = fig.add_subplot(gs[1, :])
+        cax.axis("off")
+        cax.text(0.0, 0.5, "No clear view of the plot in the imagery: no chip to show.", fontsize=9)
+    ts = fig.add_subplot(gs[3, :])
+    fig.text(
+        0.04,
+        ts.get_position().y1 + 0.052,
+        "Chips: true colour = red, green, blue (reflectance 0–0.15 each); false colour = SWIR1, NIR, red as red, green, blue "
+        "(0–0.40, 0–0.50, 0–0.15):\nvegetation green, cleared land magenta to brown. Grey: no clear observation on that date. Cyan outline: the plot.",
+        fontsize=7,
+        va="bottom",
+        color="#444444",
+    )
+
+    # The plot's median NDVI and NBR through time.
+    x = date2num(ev.dates.astype("datetime64[D]").astype(object))
+    if ev.onset_lo is not None and ev.onset_hi is not None:
+        ts.axvspan(date2num(date(ev.onset_lo, 1, 1)), date2num(date(ev.onset_hi + 1, 1, 1)), color="#f7c873", alpha=0.35, lw=0, label=f"onset interval {ev.onset_lo}–{ev.onset_hi}")
+    if ev.onset_year is not None:
+        ts.axvspan(date2num(date(ev.onset_year, 1, 1)), date2num(date(ev.onset_year + 1, 1, 1)), color="#e8872c", alpha=0.45, lw=0, label=f"mapped onset year {ev.onset_year}")
+    ts.axvline(date2num(cutoff_date), color="black", linestyle="--", linewidth=1.3, label=f"cutoff {cutoff_date.isoformat()}")
+    ok = ev.clear
+    ts.plot(x[ok], ev.ndvi[ok], "-o", color="#1b7837", markersize=3.5, linewidth=1.1, label="NDVI (plot median)")
+    ts.plot(x[ok], ev.nbr[ok], "-s", color="#762a83", markersize=3.0, linewidth=1.1, label="NBR (plot median)")
+    ts.plot(x[~ok], np.full(int((~ok).sum()), -0.95), "|", color="#999999", markersize=6, label="date not clear")
+    for k, t in enumerate(ev.chip_dates):
+        ts.axvline(x[t], color="#00a0b8", linewidth=0.8)
+        ts.text(x[t], 0.97, f"({labels[k]})", fontsize=7, ha="center", va="top", color="#007a8c", transform=ts.get_xaxis_transform(), backgroundcolor="white")
+    ts.set_ylim(-1.0, 1.0)
+    ts.set_ylabel("index", fontsize=8)
+    ts.xaxis_date()
+    ts.tick_params(labelsize=7)
+    ts.grid(alpha=0.25)
+    ts.legend(loc="lower left", fontsize=6.5, ncols=4, frameon=True, framealpha=0.85)
+    ts.set_title("The plot's median NDVI and NBR on each clear view (markers); chips' dates in cyan", fontsize=8.5)
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=dpi)
+    return buf.getvalue()
+
+
+# --------------------------------------------------------------------------- the pages
+
+
+def page_name(plot_id: str, taken: set[str]) -> str:
+    """A file name for a plot's page: the id with characters other than letters, digits, '.', '_' and '-' replaced, plus a short hash of the id where that changed it or it is taken."""
+    base = _SAFE.sub("_", plot_id).strip("._") or "plot"
+    base = base[:80]
+    name = f"{base}.png"
+    if base != plot_id or name.lower() in taken:
+        name = f"{base}-{hashlib.sha256(plot_id.encode('utf-8')).hexdigest()[:8]}.png"
+    taken.add(name.lower())
+    return name
+
+
+@dataclass
+class _Job:
+    """One page to draw (picklable: sent to worker processes)."""
+
+    index: int
+    plot_id: str
+    file: str
+    tile: str
+    geom_wkb: bytes
+    row: dict[str, Any]
+
+
+@dataclass
+class _Context:
+    """What every page needs (picklable)."""
+
+    region: RegionConfig
+    map_paths: dict[str, str]
+    map_scale: dict[str, tuple[float, float]]
+    map_levels: dict[str, float | None]
+    years: list[int]
+    cutoff_date: date
+    plot_level: float
+    cfg: EvidenceConfig
+    folder: str
+
+
+_STATE: dict[str, Any] = {}
+
+
+def _init(ctx: _Context) -> None:
+    """Open the region's tiles once per process (lazily: only headers are read)."""
+    _STATE["ctx"] = ctx
+    _STATE["stacks"] = {t.name: open_tile(t, ctx.region) for t in ctx.region.tiles if t.name in ctx.map_paths}
+
+
+def _draw(job: _Job) -> dict[str, Any]:
+    ctx: _Context = _STATE["ctx"]
+    stack = _STATE["stacks"][job.tile]
+    scale, offset = ctx.map_scale[job.tile]
+    ev = gather(shapely.from_wkb(job.geom_wkb), Path(ctx.map_paths[job.tile]), stack, ctx.region.bands, ctx.cutoff_date, ctx.cfg, scale=scale, offset=offset)
+    png = draw_page(ev, job.row, ctx.cutoff_date, plot_level=ctx.plot_level, map_level=ctx.map_levels.get(job.tile), years=ctx.years)
+    dest = Path(ctx.folder) / job.file
+    tmp = dest.with_name(dest.name + ".partial")
+    tmp.write_bytes(png)
+    os.replace(tmp, dest)
+    return {
+        "id": job.plot_id,
+        "file": job.file,
+        "verdict": job.row.get("verdict"),
+        "tile": ev.tile,
+        "window": list(ev.window),
+        "onset_year": ev.onset_year,
+        "onset_interval": [ev.onset_lo, ev.onset_hi] if ev.onset_year is not None else None,
+        "boundary": ev.boundary.isoformat(),
+        "before": _day(ev.dates[ev.before]) if ev.before is not None else None,
+        "after": [_day(ev.dates[t]) for t in ev.after],
+        "clear_views": int(ev.clear.sum()),
+        "dates": len(ev.dates),
+    }
+
+
+@dataclass
+class EvidenceResult:
+    """What :func:`write_pages` wrote."""
+
+    folder: Path
+    pages: list[dict[str, Any]]
+    skipped: list[dict[str, str]]
+    seconds: float
+
+    def lines(self) -> list[str]:
+        out = [f"evidence pages: {len(self.pages)} in {self.folder} ({self.seconds:.1f} s)"]
+        out.extend(f"  no page for {s['id']}: {s['reason']}" for s in self.skipped)
+        return out
+
+
+@dataclass
+class PagePlot:
+    """A plot that gets a page: its id, its polygon in the plots file's CRS, and its record in plots.json (numbers, verdict, reasons)."""
+
+    id: str
+    geometry: Any
+    record: dict[str, Any]
+
+
+def select(rows: Sequence[Any], cfg: EvidenceConfig) -> tuple[list[Any], list[dict[str, str]]]:
+    """Rows (:class:`plantation.farmplots.cutoff.PlotRow`) that get a page, in the order given, and the ids asked for that cannot have one."""
+    asked = {str(p) for p in cfg.plots}
+    chosen = [r for r in rows if r.status == "ok" and (r.verdict in cfg.verdicts or r.id in asked)]
+    known = {r.id: r for r in rows}
+    skipped = []
+    for pid in sorted(asked):
+        if pid not in known:
+            skipped.append({"id": pid, "reason": "no plot with this id in the plots file"})
+        elif known[pid].status != "ok":
+            skipped.append({"id": pid, "reason": f"the plot was not measured ({known[pid].status})"})
+    return chosen, skipped
+
+
+def _tile_for(geoms_by_crs: dict[str, Any], tiles: Sequence[Any]) -> Any | None:
+    """The map tile holding the plot's representative point, else the one it overlaps most; None if none."""
+    best, best_area = None, 0.0
+    for t in tiles:
+        g = geoms_by_crs[t.grid.crs.to_wkt()]
+        box = shapely.box(*t.grid.bounds)
+        if box.contains(shapely.point_on_surface(g)):
+            return t
+        a = g.intersection(box).area
+        if a > best_area:
+            best, best_area = t, a
+    return best
+
+
+def imagery_summary(stacks: Sequence[Any], region: RegionConfig, survey: str | None) -> dict[str, Any]:
+    """The imagery section's record: dates, sensors, and clear-view shares by year and month from the survey (when its record is at hand and of this region)."""
+    first = stacks[0]
+    dates = [_day(d) for d in first.dates]
+    sensors = first.date_sensors() if hasattr(first, "date_sensors") else [""] * len(dates)
+    by_year: dict[str, int] = {}
+    for d in dates:
+        by_year[d[:4]] = by_year.get(d[:4], 0) + 1
+    sens: dict[str, int] = {}
+    for s in sensors:
+        sens[s or "unnamed"] = sens.get(s or "unnamed", 0) + 1
+    out: dict[str, Any] = {
+        "region": region.name,
+        "format": region.format,
+        "tiles": [s.name for s in stacks],
+        "bands": list(region.bands),
+        "dates": len(dates),
+        "first": dates[0] if dates else None,
+        "last": dates[-1] if dates else None,
+        "dates_by_year": by_year,
+        "sensors": sens,
+        "clear_source": None,
+    }
+    if survey:
+        p = Path(survey)
+        if not p.is_file():
+            out["clear_note"] = f"no survey record at {p.name}: run `plantation survey` for the clear-view shares"
+            return out
+        try:
+            doc = load_object(p, what="a survey record", again="write it again with `plantation survey`")
+        except FileFormatError as exc:
+            out["clear_note"] = str(exc)
+            return out
+        if doc.get("region") != region.name:
+            out["clear_note"] = f"the survey record is of region {doc.get('region')!r}, not {region.name!r}"
+            return out
+        by_date = doc.get("clear_share_by_date")
+        if isinstance(by_date, dict):
+            cells: dict[str, dict[str, list[float]]] = {}
+            for per_tile in by_date.values():
+                for d, v in (per_tile or {}).items() if isinstance(per_tile, dict) else ():
+                    if isinstance(v, int | float):
+                        cells.setdefault(str(d)[:4], {}).setdefault(str(int(str(d)[5:7])), []).append(float(v))
+            out["clear_share_by_year_month"] = {y: {m: round(float(np.mean(v)), 4) for m, v in sorted(ms.items(), key=lambda kv: int(kv[0]))} for y, ms in sorted(cells.items())}
+            out["clear_share_by_year"] = {y: round(float(np.mean([x for v in ms.values() for x in v])), 4) for y, ms in sorted(cells.items())}
+        by_month = doc.get("clear_share_by_month")
+        if isinstance(by_month, dict):
+            out["clear_share_by_month"] = {str(k): float(v) for k, v in by_month.items() if isinstance(v, int | float)}
+        out["clear_source"] = "survey.json (share of each tile's pixels valid on each date, averaged over tiles)"
+    return out
+
+
+def open_imagery(mapped: Any, region: RegionConfig) -> list[Any]:
+    """The region's imagery tiles of the map's tiles (lazily: headers only), checked to be the same grids.
+
+    Raises:
+        RegionError: a map tile has no imagery tile of its name in the region, or their grids differ; the message says how to fix it.
+    """
+    by_name = {t.name: t for t in region.tiles}
+    stacks = []
+    for mt in mapped.tiles:
+        if mt.name not in by_name:
+            raise RegionError(
+                f"{mt.path}: map tile {mt.name!r} has no imagery tile of that name in region {region.name!r}; name the region the map was made from (region=...) or set evidence.enabled=false"
+            )
+        st = open_tile(by_name[mt.name], region)
+        if not st.grid.same_as(mt.grid):
+            raise RegionError(
+                f"{mt.path}: the map's grid ({mt.grid.describe()}) is not the imagery's ({st.grid.describe()}) in region {region.name!r}; "
+                "name the region the map was made from (region=...) or set evidence.enabled=false"
+            )
+        stacks.append(st)
+    return stacks
+
+
+def write_pages(
+    plots: Sequence[PagePlot],
+    plots_crs: CRS,
+    mapped: Any,
+    region: RegionConfig,
+    cutoff_date: date,
+    out_dir: Path,
+    cfg: EvidenceConfig,
+    *,
+    plot_level: float,
+    plots_json: Path,
+    skipped: Sequence[dict[str, str]] = (),
+    progress: bool = False,
+) -> EvidenceResult:
+    """Draw a page per plot into ``out_dir/evidence/`` and write its ``evidence.json``.
+
+    Args:
+        plots: the plots to draw (:func:`select`), in the order the report lists them.
+        plots_crs: the CRS of their geometries.
+        mapped: the map (:class:`plantation.mapping.folder.MappedRegion`).
+        region: the region whose imagery the map was made from.
+        plots_json: the plot check's record the pages go with (its sha256 is recorded).
+        skipped: plots asked for that get no page, with the reason (:func:`select`).
+
+    Raises:
+        RegionError: a map tile has no imagery tile of its name in the region, or their grids differ.
+    """
+    import time
+    from concurrent.futures import ProcessPoolExecutor
+    from multiprocessing import get_context
+
+    from tqdm import tqdm
+
+    t0 = time.perf_counter()
+    check_evidence_config(cfg)
+    skipped = list(skipped)
+    stacks = open_imagery(mapped, region)
+    levels: dict[str, float | None] = {}
+    for mt in mapped.tiles:
+        with rasterio.open(mt.path) as src:
+            lv = src.tags().get("interval_level")
+            levels[mt.name] = float(lv) if lv not in (None, "") else None
+    summary = imagery_summary(stacks, region, cfg.survey)
+    for st in stacks:
+        if st.reader is not None:
+            st.reader.close()
+
+    jobs: list[_Job] = []
+    taken: set[str] = {EVIDENCE_JSON.lower()}
+    to_tile: dict[str, Any] = {}
+    for k, pp in enumerate(plots):
+        per_crs = {}
+        for mt in mapped.tiles:
+            wkt = mt.grid.crs.to_wkt()
+            if wkt not in to_tile:
+                dst = CRS.from_user_input(wkt)
+                to_tile[wkt] = None if dst == plots_crs else Transformer.from_crs(plots_crs, dst, always_xy=True)
+            if wkt not in per_crs:
+                tr = to_tile[wkt]
+                per_crs[wkt] = pp.geometry if tr is None else shapely.transform(pp.geometry, tr.transform, interleaved=False)
+        tile = _tile_for(per_crs, mapped.tiles)
+        if tile is None:
+            skipped.append({"id": pp.id, "reason": "the plot lies outside every map tile"})
+            continue
+        jobs.append(_Job(k, pp.id, page_name(pp.id, taken), tile.name, shapely.to_wkb(per_crs[tile.grid.crs.to_wkt()]), pp.record))
+
+    out_dir = Path(out_dir)
+    final = out_dir / FOLDER
+    work = out_dir / (FOLDER + ".partial")
+    shutil.rmtree(work, ignore_errors=True)
+    work.mkdir(parents=True)
+    ctx = _Context(
+        region=region,
+        map_paths={t.name: str(t.path) for t in mapped.tiles},
+        map_scale={t.name: (t.scale, t.offset) for t in mapped.tiles},
+        map_levels=levels,
+        years=list(mapped.years),
+        cutoff_date=cutoff_date,
+        plot_level=plot_level,
+        cfg=cfg,
+        folder=str(work),
+    )
+    pages: list[dict[str, Any]] = []
+    try:
+        workers = min(cfg.workers, max(1, len(jobs) // 20))
+        bar = tqdm(total=len(jobs), unit="page", desc="evidence", disable=not progress, dynamic_ncols=True)
+        if workers <= 1:
+            _init(ctx)
+            try:
+                for j in jobs:
+                    pages.append(_draw(j))
+                    bar.update()
+            finally:
+                _STATE.clear()
+        else:
+            # spawn: a fresh process holds no GDAL handle or thread of this one.
+            with ProcessPoolExecutor(max_workers=workers, mp_context=get_context("spawn"), initializer=_init, initargs=(ctx,)) as pool:
+                for res in pool.map(_draw, jobs, chunksize=8):
+                    pages.append(res)
+                    bar.update()
+        bar.close()
+        doc = {
+            "kind": KIND,
+            "plots_json_sha256": file_digest([plots_json]),
+            "cutoff_date": cutoff_date.isoformat(),
+            "stretch": {"true_colour": [list(c) for c in TRUE_COLOUR], "false_colour": [list(c) for c in FALSE_COLOUR], "masked_rgb": list(MASKED_RGB)},
+            "min_clear_share": cfg.min_clear_share,
+            "imagery": summary,
+            "pages": pages,
+            "skipped": skipped,
+        }
+        (work / EVIDENCE_JSON).write_text(json.dumps(doc, indent=1, ensure_ascii=False) + "\n")
+        old = out_dir / (FOLDER + ".old")
+        shutil.rmtree(old, ignore_errors=True)
+        if final.exists():
+            os.replace(final, old)
+        os.replace(work, final)
+        shutil.rmtree(old, ignore_errors=True)
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+    return EvidenceResult(folder=final, pages=pages, skipped=skipped, seconds=time.perf_counter() - t0)
+
+
+def read_evidence(path: str | Path) -> dict[str, Any]:
+    """``evidence.json`` as :func:`write_pages` wrote it.
+
+    Args:
+        path: the file, the ``evidence`` folder, or the plot check's ``out_dir`` holding it.
+
+    Raises:
+        InputNotFoundError: there is no such file.
+        FileFormatError: not valid JSON, not an evidence record (its ``kind``), or a section of the wrong shape; one line naming the file.
+    """
+    p = Path(path)
+    if p.is_dir() and (p / FOLDER).is_dir():
+        p = p / FOLDER
+    p = locate(p, EVIDENCE_JSON, missing="run `plantation farmplots` with evidence.enabled=true to write it")
+    again = "write it again with `plantation farmplots`"
+    doc = load_object(p, what="an evidence record", again=again)
+    if doc.get("kind") != KIND:
+        raise FileFormatError(f"{p}: kind {doc.get('kind')!r}, expected {KIND!r}; is this the right file?")
+    check_shapes(p, doc, objects=("imagery", "stretch"), records=("pages", "skipped"), again=again)
+    for i, page in enumerate(doc.get("pages") or [], start=1):
+        f = page.get("file")
+        if not isinstance(f, str) or "/" in f or "\\" in f or f.startswith("."):
+            raise FileFormatError(f"{p}: pages entry {i} has no plain file name; {again}")
+    return doc
