@@ -339,3 +339,19 @@ def test_the_weights_of_a_single_sensor_parent_do_not_carry_into_a_two_sensor_ne
     parent = NET | {"mean": [0.0] * 10, "std": [1.0] * 10}
     with pytest.raises(CE, match=r"n_sensors None in the parent, 2 now"):
         transfer_spec(parent, parent | {"n_sensors": 2, "date_sensor": [0, 1] * 4}, parent_years=[2015, 2016, 2017], child_years=[2015, 2016, 2017])
+
+
+def test_the_artefact_refuses_imagery_harmonised_otherwise_than_its_training_imagery(make_region):
+    from plantation.model.inference import check_compatible
+
+    rules = [SensorRule(pattern="*", sensor="oli")]
+    plain = open_tile((r := make_region(sensors=rules)).tiles[0], r)
+    adjusted = open_tile((r := make_region(sensors=rules, harmonise=HarmoniseConfig(enabled=True))).tiles[0], r)
+    assert (plain.harmonised_to, adjusted.harmonised_to) == ("", OLI)
+    art = _artefact_for([OLI])
+    art.card.harmonised_to = OLI
+    check_compatible(art, adjusted)
+    with pytest.raises(RegionError, match=r"tile 't1': the imagery is read as stored \(region.harmonise off\), the model's was read adjusted to landsat_oli; set region.harmonise"):
+        check_compatible(art, plain)
+    art.card.harmonised_to = None  # a card from before it was recorded
+    check_compatible(art, plain)

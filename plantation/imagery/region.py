@@ -152,6 +152,8 @@ class TileStack:
     #: The sensor of each date, aligned with :attr:`dates` (``""``: unnamed;
     #: empty for a stack built without one, see :meth:`date_sensors`).
     sensors: list[str] = field(default_factory=list)
+    #: The sensor every date was adjusted to (``region.harmonise``), or ``""``: as stored.
+    harmonised_to: str = ""
 
     def read(self, row: int, col: int, height: int, width: int) -> tuple[np.ndarray, np.ndarray]:
         """One window, inside the tile: float32 reflectance (time, band, h, w), NaN where invalid, and bool validity (time, h, w).
@@ -387,6 +389,11 @@ def sensors_of_files(names: Sequence[str], rules: Sequence[SensorRule], where: s
     return out
 
 
+def harmonised_to(region: RegionConfig) -> str:
+    """The sensor ``region.harmonise`` brings every date to, or ``""`` when it is off."""
+    return harmonise_io.reference_sensor(region.harmonise.reference) if region.harmonise.enabled else ""
+
+
 def harmonise_coefficients(sensors: Sequence[str], region: RegionConfig) -> tuple[np.ndarray, np.ndarray] | None:
     """(slope, intercept) float32 (dates, bands) that bring each date to ``region.harmonise.reference``, or None when harmonisation is off."""
     if not region.harmonise.enabled:
@@ -421,7 +428,7 @@ def _finish(name: str, raw: xr.DataArray, invalid: xr.DataArray, dates: list[dat
     for arr in (refl, valid):
         arr.attrs.update(crs=grid.crs.to_string(), transform=tuple(grid.transform)[:6])
     refl.attrs["units"] = "1"
-    return TileStack(name=name, reflectance=refl, valid=valid, grid=grid, sensors=list(sensors))
+    return TileStack(name=name, reflectance=refl, valid=valid, grid=grid, sensors=list(sensors), harmonised_to=harmonised_to(region))
 
 
 def _open_geotiff_folder(tile: TileConfig, region: RegionConfig) -> TileStack:
@@ -628,7 +635,7 @@ def _from_items(tile: TileConfig, region: RegionConfig, items: list[pystac.Item]
     for arr in (refl, valid):
         arr.attrs.update(crs=grid.crs.to_string(), transform=tuple(grid.transform)[:6])
     refl.attrs["units"] = "1"
-    return TileStack(name=tile.name, reflectance=refl, valid=valid, grid=grid, sources=loaded.files, sensors=loaded.sensors)
+    return TileStack(name=tile.name, reflectance=refl, valid=valid, grid=grid, sources=loaded.files, sensors=loaded.sensors, harmonised_to=harmonised_to(region))
 
 
 def _open_products(tile: TileConfig, region: RegionConfig) -> TileStack:

@@ -115,6 +115,9 @@ class ModelCard:
     #: nobody named); with more than one, the order of the network's sensor
     #: one-hot. Empty: not recorded (cards written before it existed), no check.
     sensors: list[str] = field(default_factory=list)
+    #: The sensor the training imagery was adjusted to (``region.harmonise``),
+    #: ``""`` for imagery as stored; None: not recorded (older cards), no check.
+    harmonised_to: str | None = None
     format: str = FORMAT
 
 
@@ -139,6 +142,19 @@ def check_sensors(card: ModelCard, sensors: list[str], where: str) -> None:
         raise RegionError(
             f"{where}: sensor(s) {_sensor_names(foreign)} are not among the model's {_sensor_names(card.sensors)}; use imagery of the model's sensors (named by region.sensors) or train on these"
         )
+
+
+def check_harmonisation(card: ModelCard, harmonised_to: str, where: str) -> None:
+    """Refuse imagery adjusted to another sensor than the training imagery was (or adjusted where it was not, or the reverse).
+
+    Raises:
+        RegionError: naming both settings.
+    """
+    if card.harmonised_to is None or card.harmonised_to == harmonised_to:
+        return
+    have = f"adjusted to {harmonised_to}" if harmonised_to else "as stored (region.harmonise off)"
+    want = f"adjusted to {card.harmonised_to}" if card.harmonised_to else "as stored (region.harmonise off)"
+    raise RegionError(f"{where}: the imagery is read {have}, the model's was read {want}; set region.harmonise as it was for training")
 
 
 def check_date_sensors(card: ModelCard, dates: list[str], sensors: list[str], where: str) -> None:

@@ -18,7 +18,7 @@ from plantation.errors import RegionError
 from plantation.imagery.config import ScalingRule
 from plantation.imagery.region import TileStack
 from plantation.model.artefact import Artefact, calibrated_mutual_information
-from plantation.model.card import check_date_sensors
+from plantation.model.card import check_date_sensors, check_harmonisation
 from plantation.model.network import split_epistemic
 from plantation.model.patches import features
 
@@ -64,6 +64,7 @@ def check_compatible(art: Artefact, stack: TileStack, scaling: Sequence[ScalingR
     if bands != art.card.bands:
         raise RegionError(f"tile {stack.name!r}: bands {bands} differ from the model's {art.card.bands}")
     check_date_sensors(art.card, dates, stack.date_sensors(), f"tile {stack.name!r}")
+    check_harmonisation(art.card, stack.harmonised_to, f"tile {stack.name!r}")
     if scaling is not None:
         have = [asdict(r) for r in scaling]
         if have != art.card.scaling:

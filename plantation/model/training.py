@@ -51,7 +51,7 @@ from torch.utils.data import DataLoader, TensorDataset
 from plantation import __version__
 from plantation.errors import ConfigError
 from plantation.imagery.config import LabelsConfig, RegionConfig, check_labels_config, population_shares
-from plantation.imagery.region import TileStack, open_region
+from plantation.imagery.region import TileStack, harmonised_to, open_region
 from plantation.model import calibration, runs
 from plantation.model.artefact import calibrated_log_probs
 from plantation.model.artefact import save as save_artefact
@@ -761,6 +761,7 @@ def model_card(cfg: TrainConfig, samples: PatchSet, trained: TrainedModel, label
         package_version=__version__,
         distilled=trained.metrics["distillation"] if trained.distilled is not None else {},
         sensors=trained_sensors(samples),
+        harmonised_to=harmonised_to(cfg.region),
     )
 
 

@@ -40,7 +40,7 @@ from omegaconf import MISSING
 from plantation.errors import ConfigError, InputNotFoundError
 from plantation.model import artefact as art_io
 from plantation.model import runs
-from plantation.model.card import check_sensors, read_card, resolve_model
+from plantation.model.card import check_harmonisation, check_sensors, read_card, resolve_model
 from plantation.model.config import CalibrationConfig
 from plantation.model.network import ConvRecurrentNet
 from plantation.model.outcomes import Outcomes
@@ -214,6 +214,7 @@ def run(cfg: RetrainConfig, resolved_config: str | None = None, echo: Callable[[
     loaded = load_region_samples(tc, inherit=inherit)
     stacks, labels, samples = loaded
     check_sensors(card, stacks[0].date_sensors(), f"region {cfg.region.name!r}")
+    check_harmonisation(card, stacks[0].harmonised_to, f"region {cfg.region.name!r}")
     if old_points is not None:
         pixel = abs(stacks[0].grid.transform.a)
         diff = diff_labels(old_points, labels.points, move_px=cfg.retrain.move_px, pixel_size=pixel)
