@@ -18,6 +18,7 @@ PACKAGE = Path(__file__).resolve().parents[1] / "plantation"
 #: Modules that read maps, assess them or report on them: importing them must not import torch.
 TORCH_FREE = [
     "plantation.mapping.folder",
+    "plantation.mapping.catalog",
     "plantation.mapping.styles",
     "plantation.mapping.quicklook",
     "plantation.model.card",

@@ -31,7 +31,7 @@ from plantation.assessment.recalibrate import METHOD, NOT_CORRECTED, Recalibrate
 from plantation.errors import PlantationError
 from plantation.farmplots.cutoff import PlotsConfig
 from plantation.farmplots.cutoff import run as check_plots
-from plantation.mapping.folder import CORRECTION_TAG, FORMAT, LAYERS, NO_CORRECTION, NODATA, RECALIBRATION, SCALE, open_map, write_cog
+from plantation.mapping.folder import CORRECTION_TAG, FORMAT, LAYERS, NO_CORRECTION, NODATA, RECALIBRATION, SCALE, open_map, sha256_of, write_cog
 from plantation.model.calibration import expected_calibration_error
 from plantation.report.page import build_report
 
@@ -115,7 +115,7 @@ def label_sample(map_dir: Path, out: Path, truth: dict[str, dict[str, np.ndarray
 
 
 def snapshot(folder: Path) -> dict[str, bytes]:
-    return {p.name: p.read_bytes() for p in sorted(folder.iterdir())}
+    return {str(p.relative_to(folder)): p.read_bytes() for p in sorted(folder.rglob("*")) if p.is_file()}
 
 
 @pytest.fixture
@@ -183,7 +183,12 @@ def test_other_bands_nodata_scales_kept_valid_cog_and_verified(labelled, tmp_pat
     run(RecalibrateConfig(map=str(map_dir), samples=str(sheet), out_dir=str(tmp_path / "fixed")), echo=lambda *_: None)
     assert snapshot(map_dir) == original  # out_dir given: the original is untouched
     out = tmp_path / "fixed"
-    assert sorted(p.name for p in out.iterdir()) == ["manifest.json", "t01.qml", "t01.tif", "t02.qml", "t02.tif"]
+    assert sorted(p.name for p in out.iterdir()) == ["collection.json", "manifest.json", "stac", "t01.qml", "t01.tif", "t02.qml", "t02.tif"]
+    # The STAC items describe the corrected files (their checksums), not the original's.
+    for name in truth:
+        item = json.loads((out / "stac" / f"{name}.json").read_text())
+        assert item["assets"]["data"]["file:checksum"].endswith(sha256_of(out / f"{name}.tif"))
+        assert item["properties"]["plantation:probability_correction"] is not None
     for name in truth:
         old, meta0 = _read(map_dir / f"{name}.tif")
         new, meta1 = _read(out / f"{name}.tif")
@@ -214,7 +219,8 @@ def test_in_place_keeps_the_folder_and_verifies(labelled) -> None:
     map_dir, sheet, _ = labelled
     names = sorted(p.name for p in map_dir.iterdir())
     res = run(RecalibrateConfig(map=str(map_dir), samples=str(sheet)), echo=lambda *_: None)
-    assert res.in_place and sorted(p.name for p in map_dir.iterdir()) == names
+    # The folder gains only the STAC collection of its corrected tiles.
+    assert res.in_place and sorted(p.name for p in map_dir.iterdir()) == sorted([*names, "collection.json", "stac"])
     assert open_map(map_dir).correction[RECALIBRATION] == res.correction
 
 

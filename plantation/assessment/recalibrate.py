@@ -46,6 +46,7 @@ from plantation.assessment.assess import check_sample, read_sample_table
 from plantation.assessment.design import DESIGN_NAME, read_design
 from plantation.errors import ConfigError, PlantationError
 from plantation.imagery.config import RegionConfig
+from plantation.mapping.catalog import COLLECTION, write_collection
 from plantation.mapping.folder import BAND, CORRECTION_TAG, MANIFEST, NODATA, RECALIBRATION, MappedRegion, describe_correction, open_map, read_manifest, recalibrate_stored, sha256_of, write_cog
 from plantation.model.calibration import apply_recalibration, expected_calibration_error, fit_recalibration
 
@@ -302,7 +303,8 @@ def write_corrected(mapped: MappedRegion, out: Path, correction: dict[str, Any],
             # The styles, quicklooks and summary of the original map go with it.
             tile_files = {src_dir / e["file"] for e in raw["tiles"].values()} | {src_dir / MANIFEST}
             for f in sorted(src_dir.iterdir()):
-                if f.is_file() and not f.name.startswith(".") and f not in tile_files and not (out / f.name).exists():
+                # The STAC collection is rebuilt below from the corrected tiles, not copied: its items would be the original's.
+                if f.is_file() and not f.name.startswith(".") and f not in tile_files and f.name != COLLECTION and not (out / f.name).exists():
                     shutil.copy2(f, out / f.name)
                     extras.append(out / f.name)
         # Commit: keep the originals aside (in place) so a failure can put them back.
@@ -328,4 +330,6 @@ def write_corrected(mapped: MappedRegion, out: Path, correction: dict[str, Any],
         raise
     for aside in kept.values():
         aside.unlink(missing_ok=True)
+    # The collection's items carry each tile's checksum and correction: rewritten from the corrected files.
+    write_collection(out)
     return capped

@@ -19,7 +19,7 @@ Each Item describes one tile's COG, read from the file itself:
   ``proj:code`` for readers that know only the extension's v1;
 - on the ``data`` asset (role ``data``), STAC 1.1 ``bands`` (each layer's
   name from :data:`plantation.mapping.folder.LAYERS` and its meaning from
-  that module's layer table) and the raster extension's ``raster:bands``
+  :data:`plantation.mapping.folder.LAYER_MEANING`) and the raster extension's ``raster:bands``
   (data type, nodata, scale and offset where a layer is scaled, unit), with
   the classification extension's ``classification:classes`` on the class
   band (codes of :data:`plantation.reference.labels.LABEL_CODES`, names and
@@ -52,7 +52,6 @@ from __future__ import annotations
 import json
 import logging
 import os
-import re
 from collections.abc import Mapping
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -71,7 +70,7 @@ from pystac.utils import datetime_to_str, make_relative_href
 
 from plantation.errors import FileFormatError
 from plantation.mapping import folder as map_folder
-from plantation.mapping.folder import BAND, LAYERS, MANIFEST, NOTICE, read_manifest
+from plantation.mapping.folder import BAND, LAYER_MEANING, LAYERS, MANIFEST, NOTICE, read_manifest
 from plantation.mapping.styles import CLASS_STYLE
 from plantation.reference.labels import LABEL_CODES
 
@@ -100,31 +99,8 @@ SHARED = ("model_sha256", "cutoff_year", "interval_level", "interval_mass", "min
 
 
 def layer_notes() -> dict[str, str]:
-    """Each layer's meaning, from the layer table of :mod:`plantation.mapping.folder` (its docstring), by layer name.
-
-    The table is the map format's own description of its bands; reading it
-    here keeps one text for both. A row naming bands ``3, 4`` describes both.
-    A layer the table does not describe is left out (the tests check none is).
-    """
-    lines = (map_folder.__doc__ or "").splitlines()
-    rules = [i for i, line in enumerate(lines) if re.fullmatch(r"=+( +=+)+", line.strip())]
-    if len(rules) < 3:
-        return {}
-    starts = [m.start() for m in re.finditer(r"=+", lines[rules[0]])]
-    rows: list[list[str]] = []
-    for line in lines[rules[1] + 1 : rules[2]]:
-        cells = [line[a:b].strip() for a, b in zip(starts, [*starts[1:], None], strict=True)]
-        if cells[0]:
-            rows.append(cells)
-        elif rows:
-            rows[-1][-1] += " " + cells[-1]
-    notes: dict[str, str] = {}
-    for row in rows:
-        text = re.sub(r":\w+:`~?([^`]+)`", r"\1", row[-1])
-        for band in re.findall(r"\d+", row[0]):
-            if 1 <= int(band) <= len(LAYERS):
-                notes[LAYERS[int(band) - 1][0]] = text
-    return notes
+    """Each layer's meaning, by layer name (:data:`plantation.mapping.folder.LAYER_MEANING`, the map format's own words)."""
+    return dict(LAYER_MEANING)
 
 
 def _classes() -> list[Classification]:

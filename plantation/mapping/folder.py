@@ -78,6 +78,17 @@ LAYERS: tuple[tuple[str, float, str], ...] = (
     ("clear_dates", 1.0, "dates"),
 )
 BAND = {name: i + 1 for i, (name, _, _) in enumerate(LAYERS)}
+#: What each layer holds, in words (the layer table above, for catalogues and band descriptions).
+LAYER_MEANING: dict[str, str] = {
+    "class": "1 stable natural forest, 2 converted to plantation during the series, 3 plantation before the series, 4 other land or disturbance",
+    "onset_year": "modal conversion year; 0 where no conversion is mapped",
+    "onset_lo": "first year of the interval of conversion years (level in the interval_level tag); 0 where no conversion",
+    "onset_hi": "last year of the interval of conversion years (level in the interval_level tag); 0 where no conversion",
+    "p_conversion": "probability of conversion in any year of the series",
+    "p_after_cutoff": "probability of conversion after the cutoff year (cutoff_year tag)",
+    "epistemic": "ensemble disagreement: mutual information of the members, in nats (the distilled network's estimate of it, by default)",
+    "clear_dates": "dates on which the pixel was observed clear (never nodata)",
+}
 
 #: GeoTIFF tag (dataset level) and manifest entry key of a probability correction applied after mapping.
 CORRECTION_TAG = "probability_correction"
