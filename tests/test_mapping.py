@@ -294,3 +294,18 @@ def test_settings_key_ignores_how_but_not_what():
     a = Settings(min_clear=4, cutoff_year=2020, interval_level=0.8, interval_mass=0.8, window=128, pixel_batch=1024, threads=2, quicklook=True)
     assert a.content_key() == replace(a, window=64, threads=1).content_key()
     assert a.content_key() != replace(a, cutoff_year=2019).content_key()
+
+
+def test_a_tiles_key_follows_named_sensors_and_harmonisation_and_keeps_old_maps_keys():
+    from dataclasses import replace
+
+    from plantation.imagery.config import HarmoniseConfig, RegionConfig
+    from plantation.mapping.tiles import Settings, tile_key
+
+    region, settings, sig = RegionConfig(name="r"), Settings(min_clear=4, cutoff_year=2020, interval_level=0.8, interval_mass=0.8, window=128, pixel_batch=1024, threads=2, quicklook=True), [["a.tif", 10, 1]]
+    old = tile_key("m", settings, region, sig)
+    # Unnamed sensors (every region read before sensors existed) leave the key as it was.
+    assert tile_key("m", settings, region, sig, ("", "")) == old
+    named = tile_key("m", settings, region, sig, ("landsat_oli", "landsat_etm"))
+    assert named != old and named != tile_key("m", settings, region, sig, ("landsat_etm", "landsat_oli"))
+    assert tile_key("m", settings, replace(region, harmonise=HarmoniseConfig(enabled=True)), sig, ("landsat_oli", "landsat_etm")) != named

@@ -169,7 +169,7 @@ def plan(cfg: MapConfig) -> tuple[list[TileJob], list[TileResult], Artefact, Set
     for t in tiles:
         stack = by_name[t.name]
         check_compatible(art, stack, region.scaling)
-        keys[t.name] = tile_key(digest, settings, region, input_signature(stack, t))
+        keys[t.name] = tile_key(digest, settings, region, input_signature(stack, t), stack.sensors)
         if stack.reader is not None:
             stack.reader.close()
     out = Path(cfg.out_dir)

@@ -110,13 +110,26 @@ def input_signature(stack: TileStack, tile: TileConfig) -> list[list[Any]]:
     return out
 
 
-def tile_key(model_digest: str, settings: Settings, region: RegionConfig, signature: list[list[Any]]) -> str:
-    """Digest of everything that decides a tile's content."""
-    blob = json.dumps(
-        {"model": model_digest, "settings": settings.content_key(), "scaling": [asdict(r) for r in region.scaling], "mask": region.mask.content_key(), "nodata": region.nodata, "inputs": signature},
-        sort_keys=True,
-    )
-    return hashlib.sha256(blob.encode()).hexdigest()
+def tile_key(model_digest: str, settings: Settings, region: RegionConfig, signature: list[list[Any]], sensors: Sequence[str] = ()) -> str:
+    """Digest of everything that decides a tile's content.
+
+    ``sensors`` (the stack's per-date sensors) and the region's harmonisation
+    count only when named or enabled, so maps made before they existed keep
+    their key.
+    """
+    content: dict[str, Any] = {
+        "model": model_digest,
+        "settings": settings.content_key(),
+        "scaling": [asdict(r) for r in region.scaling],
+        "mask": region.mask.content_key(),
+        "nodata": region.nodata,
+        "inputs": signature,
+    }
+    if any(sensors):
+        content["sensors"] = list(sensors)
+    if region.harmonise.enabled:
+        content["harmonise"] = asdict(region.harmonise)
+    return hashlib.sha256(json.dumps(content, sort_keys=True).encode()).hexdigest()
 
 
 # --------------------------------------------------------------------------- per-window math
