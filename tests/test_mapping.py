@@ -302,7 +302,11 @@ def test_a_tiles_key_follows_named_sensors_and_harmonisation_and_keeps_old_maps_
     from plantation.imagery.config import HarmoniseConfig, RegionConfig
     from plantation.mapping.tiles import Settings, tile_key
 
-    region, settings, sig = RegionConfig(name="r"), Settings(min_clear=4, cutoff_year=2020, interval_level=0.8, interval_mass=0.8, window=128, pixel_batch=1024, threads=2, quicklook=True), [["a.tif", 10, 1]]
+    region, settings, sig = (
+        RegionConfig(name="r"),
+        Settings(min_clear=4, cutoff_year=2020, interval_level=0.8, interval_mass=0.8, window=128, pixel_batch=1024, threads=2, quicklook=True),
+        [["a.tif", 10, 1]],
+    )
     old = tile_key("m", settings, region, sig)
     # Unnamed sensors (every region read before sensors existed) leave the key as it was.
     assert tile_key("m", settings, region, sig, ("", "")) == old
