@@ -19,6 +19,7 @@ from affine import Affine
 from rasterio.enums import Resampling
 
 from plantation.errors import FileFormatError, PlantationError
+from plantation.farmplots.evidence import page_name
 from plantation.mapping.folder import LAYERS, NODATA, NOTICE, SCALE, read_manifest
 from plantation.report.figures import read_mosaic
 from plantation.report.page import build_report
@@ -218,15 +219,53 @@ def plots_doc(map_dir: str, plot_id: str = "P-003") -> dict[str, Any]:
     }
 
 
+def write_evidence(out: Path, ids: list[str]) -> list[str]:
+    """evidence/ beside plots.json as the plot check writes it: a small PNG per plot (each its own colour) and evidence.json naming them."""
+    from PIL import Image
+
+    folder = out / "evidence"
+    folder.mkdir(exist_ok=True)
+    taken: set[str] = set()
+    pages = []
+    for k, pid in enumerate(ids):
+        name = page_name(pid, taken)
+        Image.new("RGB", (60 + 10 * k, 40), (40 * k, 120, 200)).save(folder / name)
+        pages.append({"id": pid, "file": name, "verdict": "strong_evidence" if k == 0 else "review", "onset_year": 2021, "onset_interval": [2020, 2021], "clear_views": 30 + k})
+    imagery = {
+        "region": "tinyland",
+        "tiles": ["t01", "t02"],
+        "bands": ["blue", "green", "red", "nir", "swir1", "swir2"],
+        "dates": 8,
+        "first": "2016-02-14",
+        "last": "2017-08-15",
+        "dates_by_year": {"2016": 4, "2017": 4},
+        "sensors": {"landsat_oli": 6, "sentinel2_msi": 2},
+        "clear_share_by_year_month": {"2016": {"2": 0.25, "5": 0.5, "8": 0.75, "11": 0.125}, "2017": {"2": 0.3, "5": 0.6, "8": 0.9, "11": 0.2}},
+        "clear_share_by_year": {"2016": 0.40625, "2017": 0.5},
+        "clear_share_by_month": {"2": 0.275, "5": 0.55, "8": 0.825, "11": 0.1625},
+        "clear_source": "survey.json (share of each tile's pixels valid on each date, averaged over tiles)",
+    }
+    doc = {
+        "kind": "plantation-evidence/1",
+        "plots_json_sha256": hashlib.sha256((out / "plots.json").read_bytes()).hexdigest(),
+        "imagery": imagery,
+        "pages": pages,
+        "skipped": [],
+    }
+    (folder / "evidence.json").write_text(json.dumps(doc))
+    return [p["file"] for p in pages]
+
+
 @pytest.fixture
 def run_dir(tmp_path: Path) -> Path:
-    """A folder with both JSON files and a mapped folder beside them (map_dir relative to it)."""
+    """A folder with both JSON files, evidence pages of the two flagged plots, and a mapped folder beside them (map_dir relative to it)."""
     maps = make_maps(tmp_path / "maps")
     out = tmp_path / "assess"
     out.mkdir()
     sha = hashlib.sha256((maps / "manifest.json").read_bytes()).hexdigest()
     (out / "assessment.json").write_text(json.dumps(assessment("../maps", sha)))
     (out / "plots.json").write_text(json.dumps(plots_doc("../maps", EVIL)))
+    write_evidence(out, ["P-001", EVIL])
     return out
 
 
@@ -260,15 +299,15 @@ def test_report_is_self_contained_and_complete(run_dir: Path) -> None:
     assert "<link" not in page.lower()
     assert "@import" not in page
     srcs = re.findall(r'<img[^>]*\ssrc="([^"]+)"', page)
-    assert len(srcs) == 5  # onset, uncertainty, area by year, reliability, coverage
+    assert len(srcs) == 7  # onset, uncertainty, area by year, reliability, coverage, two evidence pages
     for s in srcs:
         assert s.startswith("data:image/png;base64,")
         assert base64.b64decode(s.split(",", 1)[1])[:8] == b"\x89PNG\r\n\x1a\n"
 
     # Sections in the order a reader needs them, the notice above them all.
-    pos = [page.index(f'<section id="{i}">') for i in ("maps", "areas", "accuracy", "calibration", "plots", "provenance", "cautions")]
+    pos = [page.index(f'<section id="{i}">') for i in ("summary", "maps", "areas", "accuracy", "calibration", "plots", "imagery", "provenance", "cautions")]
     assert pos == sorted(pos)
-    assert page.index('class="notice"') < pos[0]
+    assert page.index('class="notice"') < pos[1]
 
     text = _text(page)
     # Title, dates of the inputs, notice.
@@ -285,7 +324,7 @@ def test_report_is_self_contained_and_complete(run_dir: Path) -> None:
     assert "0.1085" in text  # 0.12 × 141 / 156
     assert "n = 141" in text and "n = 550" in text
     # Accuracy: overall, user's and producer's with SE and interval; nulls say why.
-    assert "0.911 (SE 0.013, 95% interval 0.886–0.937)" in text
+    assert "0.911 (SE 0.013, 95% confidence interval 0.886–0.937)" in text
     assert "0.904 0.024 0.858–0.950" in text  # user's accuracy of conversion
     assert "0.812 0.041 0.732–0.893" in text  # producer's accuracy of conversion
     assert "not estimable (no sample mapped in this class)" in text
@@ -297,8 +336,12 @@ def test_report_is_self_contained_and_complete(run_dir: Path) -> None:
     # Calibration on held-out data.
     assert "0.029" in text and "361 points" in text and "72.4%" in text
     # Plots: verdicts as badges, intervals, problems beneath.
-    assert page.count('class="badge v-strong"') == 1 and page.count('class="badge v-review"') == 1 and page.count('class="badge v-low"') == 1
+    table = page[page.index('<table class="plots">') : page.index("</table>", page.index('<table class="plots">'))]
+    assert table.count('class="badge v-strong"') == 1 and table.count('class="badge v-review"') == 1 and table.count('class="badge v-low"') == 1
     assert "3.21" in text and "80% range 2.41–4.11" in text
+    # Thresholds and counts in words, not as keys.
+    assert "review ha: 0.5" in text and "review_ha" not in text
+    assert "Plots by verdict: strong evidence: 1, review: 1, low evidence: 1, not measured: 2." in text
     assert "2019: 0.40 ha 2021: 2.61 ha" in text  # one line per onset year
     assert "17.2" in text or "17.3" in text
     assert "plot lies outside every mapped tile" in text and "feature 5 has no geometry" in text
@@ -357,7 +400,7 @@ def test_missing_assessment_says_not_run(run_dir: Path) -> None:
     assert "strong evidence" in text
     # The map folder is found through plots.json; region comes from the tiles' tags.
     assert "Mapped onset year" not in text  # (that is figure text, inside the PNG)
-    assert len(re.findall(r"<img ", page)) == 2
+    assert len(re.findall(r"<img ", page)) == 4  # the two quicklooks and the two evidence pages
     assert "tinyland" in text
 
 
@@ -382,7 +425,7 @@ def test_map_dir_argument_and_missing_maps(run_dir: Path, tmp_path: Path) -> Non
     assert "Map quicklooks not drawn: no map folder was given or found." in text
     # The tiles still there, when named explicitly.
     page = build_report(run_dir, map_dir=tmp_path / "maps").read_text()
-    assert len(re.findall(r"<img ", page)) == 5
+    assert len(re.findall(r"<img ", page)) == 5  # no plots.json: no evidence pages either
 
 
 def test_changed_manifest_is_flagged(run_dir: Path, tmp_path: Path) -> None:
@@ -536,6 +579,11 @@ def test_report_renders_in_headless_chromium(run_dir: Path, tmp_path: Path) -> N
             page.on("request", lambda req: outside.append(req.url[:80]) if not req.url.startswith(("file:", "data:")) else None)
             page.goto(report.as_uri(), wait_until="load")
             images = page.evaluate("Array.from(document.images).map(i => ({ok: i.complete, w: i.naturalWidth, h: i.naturalHeight}))")
+            first = page.evaluate(
+                "({headline: document.querySelector('.headline').getBoundingClientRect().bottom,"
+                " flagged: document.querySelector('ul.flagged').getBoundingClientRect().bottom,"
+                " text: document.getElementById('summary').innerText})"
+            )
             title = page.title()
             banner = page.evaluate("document.getElementById('simulated-banner') !== null")
             page.screenshot(path=str(shot), full_page=True)
@@ -546,8 +594,12 @@ def test_report_renders_in_headless_chromium(run_dir: Path, tmp_path: Path) -> N
     assert errors == []
     assert failed == []
     assert outside == []
-    assert len(images) == 5
+    assert len(images) == 7  # five figures and the two evidence pages, each loaded
     assert all(i["ok"] and i["w"] > 0 and i["h"] > 0 for i in images), images
+    assert sorted((i["w"], i["h"]) for i in images[-2:]) == [(60, 40), (70, 40)]
+    # The first screen answers "how much after the cutoff, and which plots to look at".
+    assert first["headline"] < 900 and first["flagged"] < 900, first
+    assert "52.4 ha" in first["text"] and "P-001" in first["text"]
     assert "tinyland" in title and banner
 
     if os.environ.get("PLANTATION_ARTIFACTS"):
@@ -566,3 +618,106 @@ def test_report_renders_in_headless_chromium(run_dir: Path, tmp_path: Path) -> N
     assert float(rgb.std()) > 20
     assert len(np.unique(rgb.reshape(-1, 3)[::97], axis=0)) > 200
     assert elapsed < 60
+
+
+# --------------------------------------------------------------------------- summary, intervals, evidence and imagery
+
+
+def test_summary_first_with_the_after_cutoff_area_and_the_flagged_plots_linked(run_dir: Path) -> None:
+    page = build_report(run_dir).read_text()
+    summary = page[page.index('<section id="summary">') : page.index("</section>", page.index('<section id="summary">'))]
+    text = _text(summary)
+    assert "Converted to tree-crop plantation after 2020-12-31: 52.4 ha (95% confidence interval, stratified estimator: 40.3–64.5 ha)" in text
+    assert "reference sample of 550 points" in text and "pixel count is 45.9 ha" in text
+    # Verdict counts, and the flagged plots most attention first, each linking to its evidence page.
+    assert "4 farm plots checked" in text
+    assert summary.index("P-001") < summary.index("&lt;script&gt;")
+    assert '<a href="#ev-P-001"><code>P-001</code></a>' in summary
+    assert "P-002" not in summary  # low evidence: not listed
+    assert "finds about 81% of the converted area" in text and "exact for about 78%" in text
+    # Every kind of interval named with its level, and why the levels differ.
+    for kind in ("95% confidence intervals of the stratified estimator", "80% credible intervals of the onset year", "80% ranges of a plot", "nominal levels of 50% to 95%"):
+        assert kind in text
+    assert "Why the levels differ" in text
+    # The evidence pages sit in the plots section, in collapsible blocks the table links to.
+    assert page.count('<details class="evidence"') == 2
+    assert page.index('id="ev-P-001"') > page.index('<section id="plots">')
+    assert page.count('href="#ev-P-001"') == 2  # summary and table
+
+
+def test_degenerate_wald_intervals_are_marked_with_a_wilson_interval(bare_dir: Path) -> None:
+    from scipy.stats import binomtest
+
+    a = json.loads((bare_dir / "assessment.json").read_text())
+    # User's accuracy of old plantation: all 96 + 6 points agree -> SE 0, a zero-width Wald interval.
+    a["users"]["old_plantation"] = est(1.0, 0.0, 1.0, 1.0)
+    # Producer's accuracy of "other" pushed over 1 by the Wald interval; its SE is that of 38 successes in 40 simple random points.
+    se = (0.95 * 0.05 / 40) ** 0.5
+    a["producers"]["other"] = est(0.95, se, 0.95 - 1.959964 * se, 0.95 + 1.959964 * se)
+    # Timing within one year fine; area of a rare class below zero.
+    a["area_ha"]["old_plantation"] = est(3.0, 2.0, -0.92, 6.92, mapped_ha=59.0)
+    a["total_area_ha"] = 737.28
+    (bare_dir / "assessment.json").write_text(json.dumps(a))
+    page = build_report(bare_dir).read_text()
+    text = _text(page)
+    # Zero width: Wilson from the 102 points mapped as old plantation (n of the error-matrix row), checked against scipy.
+    ci = binomtest(102, 102).proportion_ci(confidence_level=0.95, method="wilson")
+    assert f"1.000 0.000 1.000–1.000 † Wilson {ci.low:.3f}–1.000" in text
+    # Above one: Wilson from the effective sample size p(1-p)/SE^2 = 40, which is scipy's Wilson interval of 38 in 40.
+    want = binomtest(38, 40).proportion_ci(confidence_level=0.95, method="wilson")
+    assert f"0.882–1.018 † Wilson {want.low:.3f}–{want.high:.3f}" in text
+    # An area below zero: Wilson on its share of the region, back in hectares, never below zero.
+    m = re.search(r"-0\.9–6\.9 † Wilson (\d+\.\d)–(\d+\.\d)", text)
+    assert m is not None and 0.0 <= float(m[1]) < 3.0 < float(m[2])
+    # The footnote says why, names the alternative and the sources.
+    for phrase in ("zero width", "upper bound is above 1", "lower bound is below zero", "Wilson 1927", "Agresti &amp; Coull 1998", "effective sample size"):
+        assert phrase in page
+    # Sound intervals are not marked.
+    assert "0.904 0.024 0.858–0.950 " in text and "0.858–0.950 †" not in text
+
+
+def test_wilson_matches_scipy_on_whole_counts() -> None:
+    from scipy.stats import binomtest
+
+    from plantation.report.intervals import wald_problem, wilson, wilson_bounds
+
+    for k, n in ((0, 20), (3, 20), (19, 20), (50, 100), (141, 156)):
+        ref = binomtest(k, n).proportion_ci(confidence_level=0.95, method="wilson")
+        lo, hi = wilson_bounds(k / n, n, 1.959963984540054)
+        assert lo == pytest.approx(ref.low, abs=1e-9) and hi == pytest.approx(ref.high, abs=1e-9)
+    # From an SE: n_eff = p(1-p)/se^2 recovers n for a simple random sample.
+    w = wilson(0.15, (0.15 * 0.85 / 20) ** 0.5, 1.959963984540054, None)
+    ref = binomtest(3, 20).proportion_ci(confidence_level=0.95, method="wilson")
+    assert w is not None and w.basis == "effective" and w.n == pytest.approx(20) and w.lo == pytest.approx(ref.low) and w.hi == pytest.approx(ref.high)
+    assert wald_problem(0.5, 0.4, 0.6, proportion=True) is None
+    assert wald_problem(1.0, 1.0, 1.0, proportion=True) == "zero_width"
+    assert wald_problem(0.02, -0.01, 0.05, proportion=True) == "below_zero"
+    assert wald_problem(12.0, 5.0, 19.0, proportion=False) is None
+
+
+def test_coverage_check_read_out_in_words(bare_dir: Path) -> None:
+    a = json.loads((bare_dir / "assessment.json").read_text())
+    a["validation"]["interval_coverage"] = [{"level": 0.5, "coverage": 0.9, "n": 120}, {"level": 0.8, "coverage": 0.95, "n": 120}, {"level": 0.95, "coverage": 0.99, "n": 120}]
+    (bare_dir / "assessment.json").write_text(json.dumps(a))
+    text = _text(build_report(bare_dir).read_text())
+    assert "the 50% intervals held the true year for 90%" in text and "The intervals over-cover" in text
+    a["validation"]["interval_coverage"] = [{"level": 0.5, "coverage": 0.47, "n": 120}, {"level": 0.8, "coverage": 0.724, "n": 120}]
+    (bare_dir / "assessment.json").write_text(json.dumps(a))
+    text = _text(build_report(bare_dir).read_text())
+    assert "The intervals under-cover" in text
+
+
+def test_imagery_section_and_stale_evidence(run_dir: Path) -> None:
+    page = build_report(run_dir).read_text()
+    imagery = _text(page[page.index('<section id="imagery">') : page.index("</section>", page.index('<section id="imagery">'))])
+    assert "8, from 2016-02-14 to 2017-08-15" in imagery
+    assert "landsat oli: 6 dates, sentinel2 msi: 2 dates" in imagery
+    assert "2016 25% 50% 75% 12% 41%" in imagery or "2016 25% 50% 75% 13% 41%" in imagery
+    assert "all years 28% 55% 82% 16%" in imagery
+    # plots.json rewritten after the pages were drawn: the pages are left out, and the report says why.
+    doc = json.loads((run_dir / "plots.json").read_text())
+    doc["plots"][0]["expected_after_ha"] = 3.3
+    (run_dir / "plots.json").write_text(json.dumps(doc))
+    page = build_report(run_dir).read_text()
+    assert '<details class="evidence"' not in page and 'href="#ev-' not in page
+    assert "drawn for an earlier plot check" in _text(page)

@@ -12,7 +12,17 @@ The JSON files are read by the modules that write them
 (:func:`plantation.assessment.assess.read_assessment`,
 :func:`plantation.farmplots.cutoff.read_plots_json`,
 :func:`plantation.mapping.folder.read_manifest`); this page only presents
-them. Every string that comes from a JSON file is escaped with :func:`html.escape`
+them. The page reads from the top: a summary (the area converted after the
+cutoff with its interval, the plots by verdict with links to the evidence
+pages of the flagged ones, what the map can and cannot say, which intervals
+the report shows), then the maps, the areas and accuracy, the calibration,
+the plots with their evidence pages (``evidence/evidence.json``,
+:func:`plantation.farmplots.evidence.read_evidence`, used only when it was
+drawn for the ``plots.json`` at hand), the imagery, provenance and cautions. A
+sample-based interval the sample cannot support is marked, with a Wilson
+interval beside it (:mod:`plantation.report.intervals`).
+
+Every string that comes from a JSON file is escaped with :func:`html.escape`
 before it reaches the page: an id like ``<script>`` stays text. A section
 whose input is missing says so in one line instead of failing, so a report
 can be written after the assessment and before the plot check, or the other
@@ -28,6 +38,7 @@ import os
 from collections.abc import Iterable, Mapping, Sequence
 from datetime import UTC, datetime
 from pathlib import Path
+from statistics import NormalDist
 from typing import Any
 
 import rasterio
@@ -36,10 +47,12 @@ from plantation import __version__
 from plantation.assessment.assess import ASSESSMENT_NAME, read_assessment
 from plantation.errors import FileFormatError, PlantationError
 from plantation.farmplots.cutoff import PLOTS_JSON, read_plots_json
+from plantation.farmplots.evidence import EVIDENCE_JSON, FOLDER, read_evidence
 from plantation.mapping.folder import CORRECTION_TAG, MANIFEST, NOTICE, describe_correction, read_manifest, sha256_of
 from plantation.mapping.styles import CLASS_STYLE
 from plantation.reference.labels import LABEL_CODES
 from plantation.report import figures
+from plantation.report.intervals import PROBLEMS, wald_problem, wilson
 
 REPORT_NAME = "report.html"
 
@@ -107,6 +120,20 @@ details pre { background: var(--band); padding: 10px; overflow-x: auto; font-siz
 ul.cautions li { margin-bottom: 6px; }
 .ok { color: #23663f; } .bad { color: #b8322a; font-weight: 600; }
 .wide { overflow-x: auto; }
+.flag { color: #b8322a; font-weight: 700; }
+td .alt { display: block; color: #23663f; font-size: 11.5px; }
+.footnote { font-size: 12.5px; color: var(--muted); border-top: 1px solid var(--rule); padding-top: 4px; }
+#summary { border: 2px solid var(--ink); padding: 10px 16px 6px; margin: 12px 0 10px; background: #fbfbfc; }
+#summary h2 { border: 0; margin: 0 0 6px; padding: 0; }
+.headline { font-size: 19px; margin: 4px 0 8px; }
+.headline b { font-size: 22px; }
+ul.flagged { columns: 3; font-size: 13.5px; margin: 4px 0 8px; padding-left: 18px; }
+ul.counts { list-style: none; padding: 0; margin: 6px 0; display: flex; flex-wrap: wrap; gap: 6px 18px; }
+.meta-line { color: var(--muted); font-size: 13px; margin: 2px 0 6px; }
+details.evidence { border: 1px solid var(--rule); margin: 6px 0; padding: 4px 10px; }
+details.evidence summary { cursor: pointer; font-size: 14px; }
+details.evidence img { margin-top: 6px; }
+table.clear td { text-align: right; font-variant-numeric: tabular-nums; min-width: 46px; }
 @media print { body { max-width: none; padding: 0; } h2 { break-before: auto; } table, figure { break-inside: avoid; } }
 """
 
@@ -204,14 +231,19 @@ def _day(value: Any) -> str:
 # --------------------------------------------------------------------------- sections
 
 
-def _header(region: str, dates: list[tuple[str, str]], simulated: bool, assessed: bool) -> str:
-    items = "".join(f"<dt>{esc(k)}</dt><dd>{v}</dd>" for k, v in dates)
+def _header(region: str, dates: list[tuple[str, str]], simulated: bool) -> str:
+    """Title, the dates of the inputs on one line, and the demonstration banner: all above the summary."""
+    items = " · ".join(f"{esc(k)} {v}" for k, v in dates)
     sim = ""
     if simulated:
         sim = (
             '<div class="banner-sim" id="simulated-banner">Demonstration only: the reference labels of this assessment were filled from simulated truth, '
             "not interpreted by people. Its accuracies and areas show how the method works; they say nothing about a real landscape.</div>"
         )
+    return f'<header><h1>Conversion of natural forest to tree-crop plantation: {esc(region)}</h1><p class="meta-line">{items}</p>{sim}</header>'
+
+
+def _notice_and_contents(assessed: bool) -> str:
     areas = (
         '<div class="small">Areas below are estimated from a reference sample with confidence intervals; the map\'s own pixel counts are shown only beside them for comparison.</div>'
         if assessed
@@ -224,17 +256,114 @@ def _header(region: str, dates: list[tuple[str, str]], simulated: bool, assessed
             ("areas", "Converted area by year"),
             ("accuracy", "Accuracy and area estimates"),
             ("calibration", "Calibration on held-out data"),
-            ("plots", "Farm plots"),
+            ("plots", "Farm plots and their evidence pages"),
+            ("imagery", "Imagery"),
             ("provenance", "Provenance"),
             ("cautions", "Cautions"),
         )
     )
+    return f'<div class="notice" role="note">{esc(NOTICE)}{areas}</div><nav><ol>{toc}</ol></nav>'
+
+
+#: The summary lists at most this many flagged plots by name; the plot table has them all.
+SUMMARY_PLOTS = 30
+#: Evidence pages embedded in the report, most attention first; the others are linked as files beside it.
+MAX_EMBEDDED = 300
+
+
+def _attention(r: Mapping[str, Any]) -> tuple[int, float, str]:
+    order = {"strong_evidence": 0, "review": 1, "low_evidence": 2}
+    e = r.get("expected_after_ha")
+    return (order.get(str(r.get("verdict")), 3), -(e if _finite(e) else -1.0), str(r.get("id") or ""))
+
+
+def _anchor(page: Mapping[str, Any]) -> str:
+    """The evidence page's anchor in the report (its file name is already plain)."""
+    return "ev-" + str(page.get("file", "")).rsplit(".", 1)[0]
+
+
+def _intervals_note(a: dict[str, Any] | None, p: dict[str, Any] | None, map_level: float | None) -> str:
+    """Which intervals the report shows, each with its level and kind, and why the levels differ."""
+    kinds = []
+    if a is not None:
+        kinds.append(f"{float(a.get('confidence') or 0.95):.0%} confidence intervals of the stratified estimator (areas and accuracies, from the reference sample)")
+    kinds.append(f"{map_level:.0%} credible intervals of the onset year (each pixel, from the model's calibrated distribution)" if map_level else "credible intervals of the onset year (each pixel)")
+    if p is not None and _finite(p.get("interval_level")):
+        kinds.append(f"{p['interval_level']:.0%} ranges of a plot's area converted after the cutoff (under the map's model, not a sampling interval)")
+    if a is not None and a.get("validation"):
+        kinds.append("nominal levels of 50% to 95% in the coverage check of the onset intervals")
     return (
-        f"<header><h1>Conversion of natural forest to tree-crop plantation: {esc(region)}</h1>"
-        f'<dl class="meta">{items}</dl>'
-        f'<div class="notice" role="note">{esc(NOTICE)}{areas}</div>'
-        f"{sim}<nav><ol>{toc}</ol></nav></header>"
+        '<p class="muted"><b>Intervals in this report:</b> '
+        + esc("; ".join(kinds))
+        + ". Why the levels differ: 95% is the convention for reporting sample estimates; the onset interval is kept at a lower level so that it can pin a year "
+        "where the imagery allows (at 95% most would span several years); the plot range's level is the plot check's setting; the coverage check tries several levels to test whether each holds.</p>"
     )
+
+
+def _summary_section(a: dict[str, Any] | None, p: dict[str, Any] | None, pages: Mapping[str, Mapping[str, Any]], map_level: float | None) -> str:
+    """The first screen: how much was converted after the cutoff, which plots to look at, and what the map can and cannot say."""
+    out = ['<section id="summary"><h2>Summary</h2>']
+    after = (a or {}).get("after_cutoff") or {}
+    cut = after.get("cutoff_year") if after else ((p or {}).get("cutoff") or {}).get("year")
+    cut_date = ((p or {}).get("cutoff") or {}).get("date") or (f"{cut}-12-31" if cut is not None else None)
+    if a is not None and after and _finite(after.get("estimate")):
+        flags = _flags(a)
+        n = _sample_n(a)
+        out.append(
+            f'<p class="headline">Converted to tree-crop plantation after {esc(cut_date or cut)}: <b>{num(after.get("estimate"), 1)} ha</b> '
+            f"({flags.confidence:.0%} confidence interval, stratified estimator: {flags.interval(after, 1, area=True, points=n)} ha), "
+            f"estimated from a reference sample of {esc(n if n is not None else DASH)} points. The map's own pixel count is {num(after.get('mapped_ha'), 1)} ha.</p>"
+        )
+        out.append(flags.footnote())
+    elif a is not None:
+        out.append(_notrun("The assessment holds no estimate of the area converted after the cutoff."))
+    else:
+        out.append(_notrun("No accuracy assessment yet: there is no sample-based estimate of the area converted after the cutoff (run `plantation assess`)."))
+    if p is not None:
+        plots = [r for r in p.get("plots") or [] if isinstance(r, Mapping)]
+        counts = {k: sum(1 for r in plots if r.get("verdict") == k) for k in ("strong_evidence", "review", "low_evidence")}
+        unmeasured = sum(1 for r in plots if r.get("status") not in (None, "ok"))
+        items = "".join(f'<li><span class="badge {VERDICTS[k][1]}">{esc(VERDICTS[k][0])}</span> {counts[k]} plot{"s" if counts[k] != 1 else ""}</li>' for k in counts)
+        if unmeasured:
+            items += f'<li><span class="badge v-none">not measured</span> {unmeasured}</li>'
+        out.append(f'<p><b>{len(plots)} farm plots checked against the cutoff</b> (conversion after {esc(cut_date or DASH)}):</p><ul class="counts">{items}</ul>')
+        flagged = sorted((r for r in plots if r.get("verdict") in ("strong_evidence", "review")), key=_attention)
+        if flagged:
+            lis = []
+            for r in flagged[:SUMMARY_PLOTS]:
+                pid = str(r.get("id"))
+                words, css = VERDICTS.get(r.get("verdict"), (str(r.get("verdict")), "v-none"))
+                page = pages.get(pid)
+                name = f'<a href="#{esc(_anchor(page))}"><code>{esc(pid)}</code></a>' if page else f"<code>{esc(pid)}</code>"
+                lis.append(f'<li>{name} <span class="badge {css}">{esc(words)}</span> {num(r.get("expected_after_ha"), 2)} ha</li>')
+            more = f" and {len(flagged) - SUMMARY_PLOTS} more in the plot table" if len(flagged) > SUMMARY_PLOTS else ""
+            link = " (each name opens its evidence page)" if pages else ""
+            out.append(f'<p><b>Plots to look at first</b>{esc(link)}, with the area the map expects converted after the cutoff{esc(more)}:</p><ul class="flagged">{"".join(lis)}</ul>')
+        else:
+            out.append("<p>No plot has strong evidence or calls for review.</p>")
+    else:
+        out.append(_notrun("Plot check not run: no plots.json in this folder."))
+    can = [
+        "The map says where, and in which year, the imagery shows natural forest giving way to tree-crop plantation, with a probability for each pixel; "
+        "the areas to quote are the sample-based estimates, which carry the map's errors in their intervals."
+    ]
+    prod = ((a or {}).get("producers") or {}).get("conversion")
+    user = ((a or {}).get("users") or {}).get("conversion")
+    if isinstance(prod, Mapping) and isinstance(user, Mapping) and _finite(prod.get("estimate")) and _finite(user.get("estimate")):
+        can.append(f"Against the reference sample it finds about {pct(prod['estimate'], 0)} of the converted area, and {pct(user['estimate'], 0)} of what it maps as converted is conversion.")
+    t = (a or {}).get("timing") or {}
+    ex, w1 = (t.get("exact") or {}).get("estimate"), (t.get("within1") or {}).get("estimate")
+    if _finite(ex) and _finite(w1):
+        can.append(f"It resolves years, not dates: the onset year is exact for about {pct(ex, 0)} of sampled conversions and within one year for {pct(w1, 0)}.")
+    else:
+        can.append("It resolves years, not dates: a conversion in the cutoff's own year may lie on either side of it.")
+    can.append(
+        "It cannot see a clearing the imagery never showed clear (clouds, the last months of the series), and it can take logging, fire or cropland for conversion: "
+        "a verdict is evidence for a look with high-resolution imagery and in the field, not a finding."
+    )
+    out.append("<p><b>What the map can and cannot say.</b> " + esc(" ".join(can)) + "</p>")
+    out.append(_intervals_note(a, p, map_level))
+    return "".join(out) + "</section>"
 
 
 def _map_section(map_dir: Path | None, years_hint: Sequence[int], cutoff_hint: int | None) -> tuple[str, str | None]:
@@ -288,10 +417,74 @@ def _map_section(map_dir: Path | None, years_hint: Sequence[int], cutoff_hint: i
     return head + body + "</section>", region
 
 
-def _est_cells(d: Mapping[str, Any] | None, digits: int = 3) -> list[str]:
-    if not d or not _finite(d.get("estimate")):
-        return [DASH, DASH, DASH]
-    return [num(d["estimate"], digits), num(d.get("se"), digits), interval(d.get("lo"), d.get("hi"), digits)]
+class Flags:
+    """Degenerate Wald intervals met while writing a section, for its footnote (:func:`_footnote`)."""
+
+    def __init__(self, z: float, confidence: float, total_ha: float | None) -> None:
+        self.z = z
+        self.confidence = confidence
+        self.total_ha = total_ha
+        self.seen: set[str] = set()
+        self.bases: set[str] = set()
+
+    def cells(self, d: Mapping[str, Any] | None, digits: int = 3, *, area: bool = False, points: int | None = None) -> list[str]:
+        """Estimate, SE and interval cells; an interval the sample cannot support is marked †, with the Wilson interval beneath it."""
+        if not d or not _finite(d.get("estimate")):
+            return [DASH, DASH, DASH]
+        return [num(d["estimate"], digits), num(d.get("se"), digits), self.interval(d, digits, area=area, points=points)]
+
+    def interval(self, d: Mapping[str, Any], digits: int = 3, *, area: bool = False, points: int | None = None) -> str:
+        text = interval(d.get("lo"), d.get("hi"), digits)
+        est, lo, hi, se = d.get("estimate"), d.get("lo"), d.get("hi"), d.get("se")
+        if not all(_finite(x) for x in (est, lo, hi)):
+            return text
+        problem = wald_problem(float(est), float(lo), float(hi), proportion=not area)
+        if problem is None:
+            return text
+        self.seen.add(problem)
+        scale = 1.0
+        if area:
+            if not self.total_ha or self.total_ha <= 0:
+                return f'{text} <span class="flag" title="{esc(PROBLEMS[problem])}">†</span>'
+            scale = float(self.total_ha)
+        w = wilson(float(est) / scale, float(se) / scale if _finite(se) else None, self.z, points)
+        alt = ""
+        if w is not None:
+            self.bases.add(w.basis)
+            alt = f'<span class="alt">Wilson {interval(w.lo * scale, w.hi * scale, digits)}</span>'
+        return f'{text} <span class="flag" title="{esc(PROBLEMS[problem])}">†</span>{alt}'
+
+    def footnote(self) -> str:
+        """The footnote on the flagged intervals of a section (empty if none)."""
+        if not self.seen:
+            return ""
+        why = "; ".join(PROBLEMS[k] for k in PROBLEMS if k in self.seen)
+        basis = []
+        if "effective" in self.bases:
+            basis.append("n is the effective sample size p(1 − p)/SE², the number of simple random points that would give the estimate's standard error (Kish 1965; Korn & Graubard 1998)")
+        if "points" in self.bases:
+            basis.append("where p is 0 or 1 (SE 0), n is the number of sample points behind the estimate")
+        return (
+            f'<p class="footnote"><span class="flag">†</span> The {self.confidence:.0%} Wald interval (estimate ± {self.z:.2f} SE) cannot be supported by the sample here: {esc(why)}. '
+            "Wald intervals fail for proportions near 0 or 1 and for few points (Agresti &amp; Coull 1998). "
+            f"Beneath it, in green, the {self.confidence:.0%} Wilson score interval (Wilson 1927), which stays within 0–1 and is not empty at 0 or 1"
+            + (f"; {'; '.join(basis)}" if basis else "")
+            + ". Areas are treated as their share of the region's area. Quote the Wilson interval for these cells.</p>"
+        )
+
+
+def _flags(a: Mapping[str, Any]) -> Flags:
+    conf = float(a.get("confidence") or 0.95)
+    z = a.get("z") if _finite(a.get("z")) else NormalDist().inv_cdf(0.5 + conf / 2)
+    total = a.get("total_area_ha")
+    if not _finite(total):
+        total = sum(float(s.get("area_ha") or 0.0) for s in a.get("strata") or [] if _finite(s.get("area_ha"))) or None
+    return Flags(float(z), conf, total)
+
+
+def _sample_n(a: Mapping[str, Any]) -> int | None:
+    n = (a.get("sample") or {}).get("n")
+    return int(n) if _finite(n) else None
 
 
 def _areas_section(a: dict[str, Any] | None) -> str:
@@ -305,20 +498,22 @@ def _areas_section(a: dict[str, Any] | None) -> str:
     if not rows:
         return head + _notrun("The assessment holds no estimates by onset year.") + "</section>"
     fig = figures.area_by_year_bars(rows, cutoff_year=cutoff, confidence=conf)
+    flags = _flags(a)
+    n = _sample_n(a)
     tr = []
     for r in rows:
         late = cutoff is not None and r.get("year") is not None and int(r["year"]) > int(cutoff)
-        cells = [esc(r.get("year")), num(r.get("mapped_ha"), 1), *_est_cells(r, 1)]
+        cells = [esc(r.get("year")), num(r.get("mapped_ha"), 1), *flags.cells(r, 1, area=True, points=n)]
         tr.append(f'<tr class="{"after" if late else ""}">' + "".join(f'<td class="num">{c}</td>' for c in cells) + "</tr>")
     if after:
-        cells = [f"after {esc(cutoff)}", num(after.get("mapped_ha"), 1), *_est_cells(after, 1)]
+        cells = [f"after {esc(cutoff)}", num(after.get("mapped_ha"), 1), *flags.cells(after, 1, area=True, points=n)]
         tr.append('<tr class="total">' + "".join(f'<td class="num">{c}</td>' for c in cells) + "</tr>")
     conv = (a.get("area_ha") or {}).get("conversion")
     total = ""
     if conv:
         total = (
             f"<p>All years together: the map counts {num(conv.get('mapped_ha'), 1)} ha as converted; the sample-based estimate is {num(conv.get('estimate'), 1)} ha "
-            f"({conf:.0%} interval {interval(conv.get('lo'), conv.get('hi'), 1)} ha).</p>"
+            f"({conf:.0%} confidence interval, stratified estimator: {flags.interval(conv, 1, area=True, points=n)} ha).</p>"
         )
     return (
         head + f"<figure>{_img(fig, 'Converted area by onset year')}"
@@ -327,7 +522,7 @@ def _areas_section(a: dict[str, Any] | None) -> str:
         "The pixel count carries every error of the map; the estimate corrects for them with the reference sample, and it is the estimate that should be quoted.</figcaption></figure>"
         + total
         + f'<table><thead><tr><th class="num">onset year</th><th class="num">map (pixel count), ha</th><th class="num">sample-based estimate, ha</th><th class="num">SE, ha</th>'
-        f'<th class="num">{conf:.0%} interval, ha</th></tr></thead><tbody>{"".join(tr)}</tbody></table>' + "</section>"
+        f'<th class="num">{conf:.0%} confidence interval (stratified estimator), ha</th></tr></thead><tbody>{"".join(tr)}</tbody></table>' + flags.footnote() + "</section>"
     )
 
 
@@ -378,10 +573,30 @@ def _accuracy_section(a: dict[str, Any] | None) -> str:
     if a is None:
         return head + _notrun("Accuracy assessment not run: no assessment.json in this folder.") + "</section>"
     conf = float(a.get("confidence") or 0.95)
-    ci = f"{conf:.0%} interval"
+    ci = f"{conf:.0%} confidence interval"
     sample = a.get("sample") or {}
+    flags = _flags(a)
+    n_all = _sample_n(a)
+    ref = list(a.get("classes") or [])
+    mapc = list(a.get("map_classes") or ref)
+    counts = (a.get("error_matrix") or {}).get("counts") or []
+
+    def row_n(c: str) -> int | None:
+        try:
+            return int(sum(counts[mapc.index(c)]))
+        except (ValueError, IndexError, TypeError):
+            return None
+
+    def col_n(c: str) -> int | None:
+        try:
+            j = ref.index(c)
+            return int(sum(r[j] for r in counts))
+        except (ValueError, IndexError, TypeError):
+            return None
+
     parts = [
-        f"<p><b>Estimator:</b> {esc(a.get('estimator') or 'not recorded')}. All intervals are {conf:.0%} confidence intervals from the sample; SE is the standard error.</p>",
+        f"<p><b>Estimator:</b> {esc(a.get('estimator') or 'not recorded')}. All intervals in this section are {conf:.0%} confidence intervals of that estimator, "
+        f"from the reference sample (estimate ± {flags.z:.2f} standard errors, SE); a dagger marks one the sample cannot support, with a Wilson interval beneath it.</p>",
         f"<p>Reference sample: {esc(sample.get('n', DASH))} points.</p>",
     ]
     strata = a.get("strata") or []
@@ -395,22 +610,22 @@ def _accuracy_section(a: dict[str, Any] | None) -> str:
 
     ov = a.get("overall") or {}
     parts.append(
-        f"<h3>Accuracy</h3><p><b>Overall accuracy:</b> {num(ov.get('estimate'))} (SE {num(ov.get('se'))}, {ci} {interval(ov.get('lo'), ov.get('hi'))}): "
+        f"<h3>Accuracy</h3><p><b>Overall accuracy:</b> {num(ov.get('estimate'))} (SE {num(ov.get('se'))}, {ci} {flags.interval(ov, points=n_all) if ov else DASH}): "
         "the estimated share of the region's area where the map's class agrees with the reference.</p>"
     )
     users, producers = a.get("users") or {}, a.get("producers") or {}
     names = list(dict.fromkeys(list(a.get("map_classes") or []) + list(a.get("classes") or [])))
 
-    def acc(d: Mapping[str, Any] | None, present: bool, why: str) -> str:
+    def acc(d: Mapping[str, Any] | None, present: bool, why: str, points: int | None) -> str:
         if present and d is None:
             # One cell across estimate, SE and interval, so the reason does not squeeze the table.
             return f'<td colspan="3" class="muted">not estimable ({why})</td>'
-        return "".join(f'<td class="num">{c}</td>' for c in (_est_cells(d) if present else [DASH] * 3))
+        return "".join(f'<td class="num">{c}</td>' for c in (flags.cells(d, points=points) if present else [DASH] * 3))
 
     trs = []
     for c in names:
-        u = acc(users.get(c), c in users, "no sample mapped in this class")
-        p = acc(producers.get(c), c in producers, "no reference sample of this class")
+        u = acc(users.get(c), c in users, "no sample mapped in this class", row_n(c))
+        p = acc(producers.get(c), c in producers, "no reference sample of this class", col_n(c))
         trs.append(f'<tr><td class="cls">{_class_label(c)}</td>{u}{p}</tr>')
     parts.append(
         '<table><thead><tr><th rowspan="2">class</th><th colspan="3">user\'s accuracy (map → reference)</th><th colspan="3">producer\'s accuracy (reference → map)</th></tr>'
@@ -421,10 +636,10 @@ def _accuracy_section(a: dict[str, Any] | None) -> str:
     )
 
     areas = a.get("area_ha") or {}
-    rows = [[_class_label(c), num(d.get("mapped_ha"), 1), *_est_cells(d, 1)] for c, d in areas.items() if isinstance(d, Mapping)]
+    rows = [[_class_label(c), num(d.get("mapped_ha"), 1), *flags.cells(d, 1, area=True, points=n_all)] for c, d in areas.items() if isinstance(d, Mapping)]
     after = a.get("after_cutoff")
     if after:
-        rows.append([f"converted after {esc(after.get('cutoff_year'))}", num(after.get("mapped_ha"), 1), *_est_cells(after, 1)])
+        rows.append([f"converted after {esc(after.get('cutoff_year'))}", num(after.get("mapped_ha"), 1), *flags.cells(after, 1, area=True, points=n_all)])
     parts.append(
         '<h3>Class areas</h3><table><thead><tr><th>class</th><th class="num">map (pixel count), ha</th><th class="num">sample-based estimate, ha</th><th class="num">SE, ha</th>'
         f'<th class="num">{ci}, ha</th></tr></thead><tbody>{_rows(rows, ("", "num", "num", "num", "num"))}</tbody></table>'
@@ -432,7 +647,8 @@ def _accuracy_section(a: dict[str, Any] | None) -> str:
 
     t = a.get("timing") or {}
     if t:
-        rows = [["exact year", *_est_cells(t.get("exact"))], ["within one year", *_est_cells(t.get("within1"))]]
+        tn = int(t["n"]) if _finite(t.get("n")) else None
+        rows = [["exact year", *flags.cells(t.get("exact"), points=tn)], ["within one year", *flags.cells(t.get("within1"), points=tn)]]
         parts.append(
             f"<h3>Timing accuracy</h3><p>On the {esc(t.get('n', DASH))} sample points that both the map and the reference call a conversion, "
             "how often the mapped onset year matches the reference year:</p>"
@@ -441,7 +657,7 @@ def _accuracy_section(a: dict[str, Any] | None) -> str:
         )
     else:
         parts.append(_notrun("Timing accuracy not assessed."))
-    return head + "".join(parts) + "</section>"
+    return head + "".join(parts) + flags.footnote() + "</section>"
 
 
 def _validation_section(a: dict[str, Any] | None) -> str:
@@ -471,6 +687,7 @@ def _validation_section(a: dict[str, Any] | None) -> str:
             + ".</figcaption></figure>"
         )
     rows = [[pct(c.get("level"), 0), pct(c.get("coverage")), esc(c.get("n", DASH)), pct(c.get("mass"), 0) if _finite(c.get("mass")) else DASH] for c in cov]
+    reading = _coverage_words(cov)
     table = (
         '<table><thead><tr><th class="num">nominal level</th><th class="num">observed coverage</th><th class="num">conversions</th><th class="num">mass asked</th></tr></thead>'
         f"<tbody>{_rows(rows, ('num', 'num', 'num', 'num'))}</tbody></table>"
@@ -481,12 +698,63 @@ def _validation_section(a: dict[str, Any] | None) -> str:
         head + f"<p>From the model's {esc(split)} ({esc(v.get('n', DASH))} points, held out from training in separate spatial blocks). "
         f"Expected calibration error of p_conversion: {num(v.get('ece'))}. These points come from the training sample's region and class mix; on another region the calibration may differ.</p>"
         + f'<div class="figrow">{"".join(figs)}</div>'
+        + reading
         + table
         + "</section>"
     )
 
 
-def _plots_section(p: dict[str, Any] | None) -> str:
+#: Verdict thresholds of plots.json in words ({v}: the value).
+_THRESHOLDS: dict[str, str] = {
+    "strong_min_ha": "strong evidence from {v:g} ha converted after the cutoff even at the low end of the range",
+    "review_min_ha": "review from {v:g} ha expected converted after the cutoff, or mapped in the cutoff's own year",
+    "review_min_share": "review from {v:.1%} of the mapped area expected converted after the cutoff",
+    "min_mean_clear": "review below {v:g} clear views per pixel on average",
+    "min_mapped_share": "review below {v:.0%} of the plot mapped",
+}
+
+
+def _threshold_words(th: Mapping[str, Any]) -> str:
+    out = []
+    for k, v in th.items():
+        if k in _THRESHOLDS and _finite(v):
+            out.append(_THRESHOLDS[k].format(v=float(v)))
+        else:
+            out.append(f"{str(k).replace('_', ' ')}: {v}")
+    return "; ".join(out)
+
+
+def _evidence_block(pages: Sequence[Mapping[str, Any]], folder: Path | None, note: str | None) -> str:
+    """The evidence pages: each in a collapsible block, embedded (the first :data:`MAX_EMBEDDED`), the rest linked as files."""
+    head = '<h3 id="evidence">Evidence pages</h3>'
+    if note:
+        return head + _notrun(note)
+    if not pages:
+        return head + _notrun("No evidence pages: no plot was flagged or asked for, or the plot check ran with evidence.enabled=false.")
+    blocks = []
+    for k, pg in enumerate(pages):
+        pid = str(pg.get("id"))
+        words, css = VERDICTS.get(pg.get("verdict"), (str(pg.get("verdict")), "v-none"))
+        onset = f"mapped onset {esc(pg['onset_year'])}" if pg.get("onset_year") is not None else "no conversion mapped"
+        summary = f'<summary><code>{esc(pid)}</code> <span class="badge {css}">{esc(words)}</span> <span class="muted">{onset}; {esc(pg.get("clear_views", DASH))} clear views</span></summary>'
+        f = (folder / str(pg.get("file"))) if folder is not None else None
+        if k < MAX_EMBEDDED and f is not None and f.is_file():
+            body = _img(f.read_bytes(), f"Evidence page of plot {pid}")
+        elif f is not None and f.is_file():
+            body = f'<p>Not embedded (the report embeds the first {MAX_EMBEDDED}): <a href="{esc(FOLDER)}/{esc(pg.get("file"))}">{esc(FOLDER)}/{esc(pg.get("file"))}</a> beside this report.</p>'
+        else:
+            body = _notrun(f"The page's file {pg.get('file')} is missing; run `plantation farmplots` again.")
+        blocks.append(f'<details class="evidence" id="{esc(_anchor(pg))}">{summary}{body}</details>')
+    return (
+        head + '<p class="muted">One page per plot that needs a look, in the order of the table: the plot (cyan) over the mapped onset years; chips of the region\'s own imagery, '
+        "true colour (red, green, blue; reflectance 0–0.15) and false colour (SWIR1, NIR, red as red, green, blue; 0–0.40, 0–0.50, 0–0.15: vegetation green, cleared land magenta to brown), "
+        "on the last clear view before the mapped onset year and the first clear views from it on; the plot's median NDVI and NBR on every clear view, with the onset year "
+        "and its credible interval shaded and the cutoff dashed; and the numbers behind the verdict in words. A date is a clear view when at least half the plot is free of cloud, shadow and fill. "
+        "Open a block to see its page.</p>" + "".join(blocks)
+    )
+
+
+def _plots_section(p: dict[str, Any] | None, pages: Mapping[str, Mapping[str, Any]] | None = None, evidence_dir: Path | None = None, evidence_note: str | None = None) -> str:
     head = '<section id="plots"><h2>5. Farm plots</h2>'
     if p is None:
         return head + _notrun("Plot check not run: no plots.json in this folder.") + "</section>"
@@ -504,12 +772,14 @@ def _plots_section(p: dict[str, Any] | None) -> str:
         )
     th = p.get("thresholds") or {}
     if th:
-        meta.append("Verdict thresholds: " + esc(", ".join(f"{k} = {v}" for k, v in th.items())) + ".")
+        meta.append("Verdict thresholds: " + esc(_threshold_words(th)) + ".")
     counts = p.get("counts") or {}
     if counts:
-        meta.append("Counts: " + esc(", ".join(f"{k.replace('_', ' ')}: {v}" for k, v in counts.items())) + ".")
+        names = {"strong_evidence": "strong evidence", "review": "review", "low_evidence": "low evidence", "problem": "not measured", "problems": "not measured"}
+        meta.append("Plots by verdict: " + esc(", ".join(f"{names.get(k, k.replace('_', ' '))}: {v}" for k, v in counts.items())) + ".")
+    pages = pages or {}
     rows = []
-    for r in p.get("plots") or []:
+    for r in sorted((r for r in p.get("plots") or [] if isinstance(r, Mapping)), key=_attention):
         verdict = r.get("verdict")
         words, css = VERDICTS.get(verdict, (str(verdict).replace("_", " "), "v-none"))
         years = r.get("years") or {}
@@ -523,14 +793,16 @@ def _plots_section(p: dict[str, Any] | None) -> str:
         if _finite(r.get("mapped_share")):
             area += f'<span class="n">{pct(r["mapped_share"], 0)} mapped</span>'
         status = r.get("status")
+        page = pages.get(str(r.get("id")))
+        link = f'<br><a href="#{esc(_anchor(page))}">evidence page</a>' if page else ""
         rows.append(
-            f'<tr class="{"" if status == "ok" else "problem"}"><td><code>{esc(r.get("id")) or DASH}</code></td><td>{esc(status)}</td><td class="num">{area}</td>'
+            f'<tr class="{"" if status == "ok" else "problem"}"><td><code>{esc(r.get("id")) or DASH}</code>{link}</td><td>{esc(status)}</td><td class="num">{area}</td>'
             f'<td class="num">{after}</td><td class="num">{pct(r.get("share_after"))}</td><td>{ys}</td><td class="num">{num(r.get("mean_clear"), 1)}</td>'
             f'<td><span class="badge {css}">{esc(words)}</span></td><td class="reasons">{"<br>".join(esc(x) for x in r.get("reasons") or []) or DASH}</td></tr>'
         )
     table = (
         '<div class="wide"><table class="plots"><thead><tr><th>plot</th><th>status</th><th class="num">area, ha</th>'
-        f'<th class="num">expected converted after cutoff, ha ({esc(lvl)})</th><th class="num">share of mapped area converted after cutoff</th>'
+        f'<th class="num">expected converted after cutoff, ha (beneath: {esc(lvl)} under the map\'s model)</th><th class="num">share of mapped area converted after cutoff</th>'
         "<th>area mapped as converted, by onset year</th>"
         f'<th class="num">mean clear views</th><th>verdict</th><th>reasons</th></tr></thead><tbody>{"".join(rows)}</tbody></table></div>'
         if rows
@@ -551,8 +823,118 @@ def _plots_section(p: dict[str, Any] | None) -> str:
         'and, where needed, a field visit; "low evidence" means the map shows little, which is not proof that nothing happened (see the cautions).</p>'
         + f'<p class="muted">Expected area: the sum over the plot\'s pixels of their probability of conversion after the cutoff times the area of the pixel the plot covers. '
         f"The {esc(lvl)} beneath it assumes the plot's pixels convert together, as a holding cleared in one piece does; it is the spread of the area under the map's own model, "
-        "not a sampling interval, and the model's errors are not in it. Share: expected area over the plot's mapped area.</p>" + table + plist + "</section>"
+        "not a sampling interval, and the model's errors are not in it. Share: expected area over the plot's mapped area.</p>"
+        + table
+        + plist
+        + _evidence_block(list(pages.values()), evidence_dir, evidence_note)
+        + "</section>"
     )
+
+
+def _coverage_words(cov: Sequence[Mapping[str, Any]]) -> str:
+    """The coverage check read out in words: which levels hold, over-cover or under-cover, and what that means for the map's onset intervals."""
+    pts = [(float(c["level"]), float(c["coverage"])) for c in cov if _finite(c.get("level")) and _finite(c.get("coverage"))]
+    if not pts:
+        return ""
+    tol = 0.05
+    over = [(lv, cv) for lv, cv in pts if cv > lv + tol]
+    under = [(lv, cv) for lv, cv in pts if cv < lv - tol]
+    said = "; ".join(f"the {lv:.0%} intervals held the true year for {cv:.0%}" for lv, cv in pts)
+    if over and not under:
+        verdict = (
+            "The intervals over-cover: they are wider than their nominal level says, so the onset year is better known than a map interval suggests, "
+            "and a map interval is a cautious range rather than a calibrated one."
+        )
+    elif under and not over:
+        verdict = "The intervals under-cover: they are narrower than their nominal level says, so the true year falls outside a map interval more often than its level implies."
+    elif over and under:
+        verdict = "The intervals over-cover at some levels and under-cover at others: read a map interval's level as approximate."
+    else:
+        verdict = f"Each level holds to within {tol:.0%}: the intervals mean what their level says, on data like the held-out split."
+    return f"<p><b>Reading the coverage check:</b> on held-out conversions, {esc(said)}. {esc(verdict)}</p>"
+
+
+def _imagery_section(ev: Mapping[str, Any] | None, note: str | None) -> str:
+    """The imagery the map and the evidence pages were made from: sensors, dates, and the share of clear views by year and month."""
+    head = '<section id="imagery"><h2>6. Imagery</h2>'
+    im = (ev or {}).get("imagery")
+    if not isinstance(im, Mapping):
+        return head + _notrun(note or "Imagery not described: the plot check ran without evidence pages (evidence.enabled=false), which is where the imagery is summarised.") + "</section>"
+    sensors = im.get("sensors") or {}
+    named = {k: v for k, v in sensors.items() if k != "unnamed"}
+    if named:
+        sens = ", ".join(f"{k.replace('_', ' ')}: {v} dates" for k, v in named.items())
+        if "unnamed" in sensors:
+            sens += f", unnamed: {sensors['unnamed']} dates"
+    else:
+        sens = "not named by the region file (one sensor assumed)"
+    rows = [
+        ("region", esc(im.get("region", DASH))),
+        ("tiles", esc(", ".join(str(t) for t in im.get("tiles") or []) or DASH)),
+        ("dates", f"{esc(im.get('dates', DASH))}, from {esc(im.get('first') or DASH)} to {esc(im.get('last') or DASH)}"),
+        ("sensors", esc(sens)),
+        ("bands", esc(", ".join(str(b) for b in im.get("bands") or []) or DASH)),
+    ]
+    by_year = im.get("dates_by_year") or {}
+    if by_year:
+        rows.append(("dates per year", esc(", ".join(f"{y}: {n}" for y, n in by_year.items()))))
+    table = "<table><tbody>" + "".join(f"<tr><th>{k}</th><td>{v}</td></tr>" for k, v in rows) + "</tbody></table>"
+    grid = im.get("clear_share_by_year_month") or {}
+    clear = ""
+    if grid:
+        months = sorted({int(m) for ms in grid.values() for m in ms})
+        mname = ["Jan", "Feb", "Mar", "Apr", "May", "Jun", "Jul", "Aug", "Sep", "Oct", "Nov", "Dec"]
+
+        def cell(v: Any) -> str:
+            if not _finite(v):
+                return "<td>—</td>"
+            # Shade from white (no clear view) to green (all clear): inline style, allowed by the page's policy.
+            g = int(round(255 - 120 * float(v)))
+            return f'<td style="background: rgb({g}, 255, {g})">{pct(v, 0)}</td>'
+
+        by_y = im.get("clear_share_by_year") or {}
+        head_row = "".join(f"<th>{mname[m - 1]}</th>" for m in months) + "<th>year</th>"
+        body = "".join(f"<tr><th>{esc(y)}</th>" + "".join(cell(ms.get(str(m))) for m in months) + cell(by_y.get(y)) + "</tr>" for y, ms in grid.items())
+        by_m = im.get("clear_share_by_month") or {}
+        if by_m:
+            body += '<tr class="total"><th>all years</th>' + "".join(cell(by_m.get(str(m))) for m in months) + "<td></td></tr>"
+        clear = (
+            "<h3>Clear-view share by year and month</h3>"
+            f'<div class="wide"><table class="clear"><thead><tr><th>year</th>{head_row}</tr></thead><tbody>{body}</tbody></table></div>'
+            f'<p class="caption">The share of the region\'s pixels free of cloud, shadow and fill on the dates of each month (a month without an image is a dash); '
+            f"from {esc(im.get('clear_source') or 'the survey')}. "
+            "Where it is low a conversion can go unseen for months, and its year is less certain.</p>"
+        )
+    else:
+        clear = _notrun("Clear-view shares not at hand" + (f": {im['clear_note']}" if im.get("clear_note") else "") + ".")
+    return head + table + clear + "</section>"
+
+
+def _evidence(folder: Path, p: dict[str, Any] | None) -> tuple[dict[str, Any] | None, str | None]:
+    """The evidence record beside plots.json, if it goes with it; else None and, where there is one, why it is left out."""
+    if p is None or not (folder / FOLDER / EVIDENCE_JSON).is_file():
+        return None, None
+    try:
+        doc = read_evidence(folder / FOLDER)
+    except FileFormatError as exc:
+        return None, f"Evidence pages left out: {exc}"
+    if doc.get("plots_json_sha256") != sha256_of(folder / PLOTS_JSON):
+        return None, "Evidence pages left out: they were drawn for an earlier plot check (plots.json changed since); run `plantation farmplots` again to redraw them."
+    return doc, None
+
+
+def _map_level(map_dir: Path | None) -> float | None:
+    """The nominal level of the map's onset intervals (its tiles' ``interval_level`` tag; the first tile's)."""
+    if map_dir is None:
+        return None
+    for f in sorted(map_dir.glob("*.tif")):
+        try:
+            with rasterio.open(f) as src:
+                v = src.tags().get("interval_level")
+            return float(v) if v not in (None, "") else None
+        except (rasterio.errors.RasterioIOError, ValueError):
+            continue
+    return None
 
 
 def _correction_rows(manifest: dict[str, Any] | None, p: dict[str, Any] | None) -> list[tuple[str, str]]:
@@ -574,7 +956,7 @@ def _correction_rows(manifest: dict[str, Any] | None, p: dict[str, Any] | None) 
 def _provenance_section(
     a: dict[str, Any] | None, p: dict[str, Any] | None, folder: Path, map_dir: Path | None, generated: str, manifest_problem: str | None = None, manifest: dict[str, Any] | None = None
 ) -> str:
-    head = '<section id="provenance"><h2>6. Provenance</h2>'
+    head = '<section id="provenance"><h2>7. Provenance</h2>'
     rows: list[tuple[str, str]] = []
     prov = (a or {}).get("provenance") or {}
     model = prov.get("model") or {}
@@ -624,7 +1006,7 @@ def _cautions_section(simulated: bool) -> str:
     ]
     if simulated:
         items.insert(0, "<b>The reference labels of this assessment were filled from simulated truth (demonstration only), not interpreted by people.</b>")
-    return '<section id="cautions"><h2>7. Cautions: what the map can and cannot show</h2><ul class="cautions">' + "".join(f"<li>{i}</li>" for i in items) + "</ul></section>"
+    return '<section id="cautions"><h2>8. Cautions: what the map can and cannot show</h2><ul class="cautions">' + "".join(f"<li>{i}</li>" for i in items) + "</ul></section>"
 
 
 def _manifest(map_dir: Path | None) -> tuple[dict[str, Any] | None, str | None]:
@@ -688,6 +1070,9 @@ def build_report(folder: Path, *, map_dir: Path | None = None) -> Path:
     if cutoff is None:
         cutoff = ((p or {}).get("cutoff") or {}).get("year")
     maps_html, tile_region = _map_section(mdir, years, cutoff)
+    ev, ev_note = _evidence(folder, p)
+    pages = {str(pg.get("id")): pg for pg in (ev or {}).get("pages") or []}
+    map_level = _map_level(mdir)
 
     region = (a or {}).get("region") or tile_region or "region not recorded"
     dates: list[tuple[str, str]] = []
@@ -706,12 +1091,15 @@ def build_report(folder: Path, *, map_dir: Path | None = None) -> Path:
 
     body = "".join(
         [
-            _header(region, dates, simulated, a is not None),
+            _header(region, dates, simulated),
+            _summary_section(a, p, pages, map_level),
+            _notice_and_contents(a is not None),
             maps_html,
             _areas_section(a),
             _accuracy_section(a),
             _validation_section(a),
-            _plots_section(p),
+            _plots_section(p, pages, folder / FOLDER if ev is not None else None, ev_note),
+            _imagery_section(ev, ev_note if p is not None else None),
             _provenance_section(a, p, folder, mdir, generated, manifest_problem, manifest),
             _cautions_section(simulated),
         ]
