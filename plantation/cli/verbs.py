@@ -133,6 +133,8 @@ def farmplots(cfg: DictConfig) -> None:
     print("\n".join(result.lines()))
     for kind, path in result.files.items():
         print(f"{kind:<8} {path}")
+    if result.evidence is not None:
+        print(f"evidence {result.evidence.folder}/ ({len(result.evidence.pages)} pages)")
     print(NOTICE)
     _report(result.out_dir)
 
