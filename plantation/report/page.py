@@ -744,7 +744,8 @@ def _evidence_block(pages: Sequence[Mapping[str, Any]], folder: Path | None, not
             body = f'<p>Not embedded (the report embeds the first {MAX_EMBEDDED}): <a href="{esc(FOLDER)}/{esc(pg.get("file"))}">{esc(FOLDER)}/{esc(pg.get("file"))}</a> beside this report.</p>'
         else:
             body = _notrun(f"The page's file {pg.get('file')} is missing; run `plantation farmplots` again.")
-        blocks.append(f'<details class="evidence" id="{esc(_anchor(pg))}">{summary}{body}</details>')
+        # The anchor sits inside the block: following a link to it opens the block (the browser reveals a closed details' content it scrolls to).
+        blocks.append(f'<details class="evidence">{summary}<div id="{esc(_anchor(pg))}">{body}</div></details>')
     return (
         head + '<p class="muted">One page per plot that needs a look, in the order of the table: the plot (cyan) over the mapped onset years; chips of the region\'s own imagery, '
         "true colour (red, green, blue; reflectance 0–0.15) and false colour (SWIR1, NIR, red as red, green, blue; 0–0.40, 0–0.50, 0–0.15: vegetation green, cleared land magenta to brown), "
