@@ -224,7 +224,7 @@ def test_plot_check_draws_pages_for_flagged_and_asked_plots(region: RegionConfig
     maps = write_map(tmp_path / "maps")
     plots = write_plots(tmp_path / "plots.gpkg", [box(5, 5, 11, 11), box(0, 12, 3, 15), box(12, 0, 15, 3)], ["P-conv", "P-forest", "P/asked"])
     out = tmp_path / "out"
-    cfg = PlotsConfig(plots=str(plots), map=str(maps), out_dir=str(out), progress=False, region=region, evidence=EvidenceConfig(plots=["P/asked", "nobody"], survey=None))
+    cfg = PlotsConfig(plots=str(plots), map=str(maps), out_dir=str(out), progress=False, region=region, evidence=EvidenceConfig(enabled=True, plots=["P/asked", "nobody"], survey=None))
     res = run(cfg)
     verdicts = {r.id: r.verdict for r in res.rows}
     assert verdicts == {"P-conv": "strong_evidence", "P-forest": "low_evidence", "P/asked": "low_evidence"}
@@ -259,7 +259,7 @@ def test_survey_shares_by_year_and_month(region: RegionConfig, tmp_path: Path) -
     survey = tmp_path / "survey.json"
     shares = {d: 0.5 for d in DATES} | {"2020-02-14": 0.1}
     survey.write_text(json.dumps({"region": "tiny", "clear_share_by_date": {"t1": shares}, "clear_share_by_month": {"2": 0.4, "5": 0.5, "8": 0.5, "11": 0.5}}))
-    cfg = PlotsConfig(plots=str(plots), map=str(maps), out_dir=str(tmp_path / "out"), progress=False, region=region, evidence=EvidenceConfig(survey=str(survey)))
+    cfg = PlotsConfig(plots=str(plots), map=str(maps), out_dir=str(tmp_path / "out"), progress=False, region=region, evidence=EvidenceConfig(enabled=True, survey=str(survey)))
     run(cfg)
     im = read_evidence(tmp_path / "out")["imagery"]
     assert im["clear_share_by_year"]["2020"] == pytest.approx((0.1 + 0.5 * 3) / 4)
@@ -275,7 +275,7 @@ def test_survey_shares_by_year_and_month(region: RegionConfig, tmp_path: Path) -
 def test_map_of_another_region_is_one_line_before_anything_is_written(region: RegionConfig, tmp_path: Path) -> None:
     maps = write_map(tmp_path / "maps", name="t9")
     plots = write_plots(tmp_path / "plots.gpkg", [box(5, 5, 11, 11)], ["P-conv"])
-    cfg = PlotsConfig(plots=str(plots), map=str(maps), out_dir=str(tmp_path / "out"), progress=False, region=region)
+    cfg = PlotsConfig(plots=str(plots), map=str(maps), out_dir=str(tmp_path / "out"), progress=False, region=region, evidence=EvidenceConfig(enabled=True))
     with pytest.raises(RegionError, match=r"t9.tif: map tile 't9' has no imagery tile of that name in region 'tiny'; .*evidence.enabled=false") as err:
         run(cfg)
     assert "\n" not in str(err.value)
@@ -287,7 +287,10 @@ def test_map_of_another_region_is_one_line_before_anything_is_written(region: Re
 def test_bad_evidence_keys_are_refused(region: RegionConfig, tmp_path: Path) -> None:
     maps = write_map(tmp_path / "maps")
     plots = write_plots(tmp_path / "plots.gpkg", [box(5, 5, 11, 11)], ["P-conv"])
-    for ev, msg in ((EvidenceConfig(verdicts=["strong"]), "evidence.verdicts: \\['strong'\\] are not verdicts"), (EvidenceConfig(min_clear_share=0), "evidence.min_clear_share")):
+    for ev, msg in (
+        (EvidenceConfig(enabled=True, verdicts=["strong"]), "evidence.verdicts: \\['strong'\\] are not verdicts"),
+        (EvidenceConfig(enabled=True, min_clear_share=0), "evidence.min_clear_share"),
+    ):
         with pytest.raises(ConfigError, match=msg):
             run(PlotsConfig(plots=str(plots), map=str(maps), out_dir=str(tmp_path / "out"), progress=False, region=region, evidence=ev))
 

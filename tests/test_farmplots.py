@@ -599,6 +599,8 @@ def test_config_composes_and_typos_are_errors():
 
     cfg = to_object(compose_job("farmplots", ["cutoff=2020-06-30", "verdict.strong_min_ha=1"], verb="farmplots"), PlotsConfig)
     assert cfg.cutoff == "2020-06-30" and cfg.verdict.strong_min_ha == 1.0
+    # The command draws evidence pages of the flagged plots; the library's default leaves them off (they need the imagery).
+    assert cfg.evidence.enabled and cfg.evidence.verdicts == ["strong_evidence", "review"] and not PlotsConfig().evidence.enabled
     assert cfg.map == f"outputs/maps/{cfg.region.name}" and cfg.out_dir == f"outputs/assess/{cfg.region.name}"
     assert to_object(compose_job("farmplots", ["cutoff=2020"], verb="farmplots"), PlotsConfig).cutoff == "2020"
     with pytest.raises(ConfigError, match=r"unknown key 'verdict.strong_min' \(did you mean 'verdict.strong_min_ha'\?\)"):

@@ -107,7 +107,8 @@ VERDICT_NAMES: tuple[str, ...] = ("low_evidence", "review", "strong_evidence")
 class EvidenceConfig:
     """Schema of the ``evidence:`` keys of ``configs/farmplots.yaml``."""
 
-    enabled: bool = True
+    #: Off unless asked for: the pages need the region's imagery (``configs/farmplots.yaml`` turns them on for the command).
+    enabled: bool = False
     #: Verdicts that get a page.
     verdicts: list[str] = field(default_factory=lambda: ["strong_evidence", "review"])
     #: Plot ids that get a page whatever their verdict.
