@@ -30,7 +30,7 @@ from rasterio.warp import Resampling, reproject
 from plantation.errors import ConfigError, RegionError
 from plantation.imagery.config import GridConfig, MaskConfig, RegionConfig, ScalingRule, TileConfig
 from plantation.imagery.products import find_scenes, scene_item
-from plantation.imagery.region import open_tile
+from plantation.imagery.region import AssetWindowReader, open_tile
 
 BANDS = ["blue", "green", "red", "nir", "swir1", "swir2"]
 CRS = "EPSG:32650"
@@ -91,7 +91,8 @@ def test_landsat_scene_folders_give_published_reflectance_and_mask_qa_pixel_flag
     want[5, 5] = False
     np.testing.assert_array_equal(valid[0], want)
     assert np.isnan(refl[0, :, 0, 0]).all() and not np.isnan(refl[0, :, 0, 4]).any()
-    # A window read for mapping agrees with the lazy arrays.
+    # A window read for mapping agrees with the lazy arrays; one scene a date on the tile's grid is read straight from its files.
+    assert isinstance(st.reader, AssetWindowReader) and len(st.reader.files) == 2 * 7
     wr, wv = st.read(1, 1, 4, 4)
     np.testing.assert_array_equal(wv, valid[:, 1:5, 1:5])
     np.testing.assert_allclose(wr, refl[:, :, 1:5, 1:5], equal_nan=True)
@@ -105,6 +106,7 @@ def test_same_day_scenes_are_one_date_mosaicked_and_another_crs_is_reprojected(t
     grid = GridConfig(crs=CRS, bounds=[TOP_LEFT[0], TOP_LEFT[1] - 240, TOP_LEFT[0] + 180, TOP_LEFT[1]], resolution=30.0)
     st = open_tile((r := _region(tmp_path, grid=grid)).tiles[0], r)
     assert len(st.dates) == 1
+    assert st.reader is None  # a mosaic goes through the lazy arrays
     blue = st.reflectance.values[0, 0]
     np.testing.assert_allclose(blue[:4], 9000 * 0.0000275 - 0.2, rtol=1e-5)
     np.testing.assert_allclose(blue[4:], 11000 * 0.0000275 - 0.2, rtol=1e-5)

@@ -165,8 +165,8 @@ class TileStack:
             return self.reader(row, col, height, width)
         ys, xs = slice(row, row + height), slice(col, col + width)
         with dask.config.set(scheduler="synchronous"):  # inside a worker, don't reach for the cluster
-            refl = self.reflectance.isel(y=ys, x=xs).values
-            valid = self.valid.isel(y=ys, x=xs).values
+            # One graph: the stored values are read once for both.
+            refl, valid = dask.compute(self.reflectance.isel(y=ys, x=xs).data, self.valid.isel(y=ys, x=xs).data)
         return refl.astype(np.float32, copy=False), valid.astype(bool, copy=False)
 
     @property
@@ -268,6 +268,136 @@ class WindowReader:
             out[:, bad] = np.nan
             valid[i] = ~bad
         return refl, valid
+
+
+class AssetWindowReader:
+    """Windowed reads of one file per band and date (product folders, local STAC assets) already on the tile's grid, one scene a date.
+
+    The lazy arrays' scaling, nodata, per-sensor QA rule and harmonisation,
+    applied to a window read straight from each file: without it a small
+    window would make odc-stac open every band file of every date for each
+    chunk it touches. ``tests/test_products.py`` checks it against the lazy
+    arrays.
+
+    Args:
+        band_files: per date, the file of each band role, in band order.
+        qa_files: per date, its QA file; None when there is no QA layer.
+        nodata: per band, the stored nodata value (None: none).
+        scale, offset: (time, band) scaling of the stored values.
+        qa_rules: per date, (invalid bits, invalid values) of its sensor's QA layer.
+        adjust: per date and band, the harmonisation's (slope, intercept); None: none.
+    """
+
+    def __init__(
+        self,
+        band_files: Sequence[Sequence[str]],
+        qa_files: Sequence[str] | None,
+        nodata: Sequence[float | None],
+        scale: np.ndarray,
+        offset: np.ndarray,
+        qa_rules: Sequence[tuple[Sequence[int], Sequence[int]]],
+        adjust: tuple[np.ndarray, np.ndarray] | None = None,
+    ) -> None:
+        self.band_files = [list(f) for f in band_files]
+        self.qa_files = list(qa_files) if qa_files is not None else None
+        self.nodata = list(nodata)
+        self.scale = np.asarray(scale, np.float32)
+        self.offset = np.asarray(offset, np.float32)
+        self.qa_rules = [(qa_bit_mask(b), qa_value_list(v)) for b, v in qa_rules]
+        self.adjust = None if adjust is None else (np.asarray(adjust[0], np.float32), np.asarray(adjust[1], np.float32))
+        self._local = threading.local()
+
+    @property
+    def files(self) -> list[str]:
+        """Every file read, bands then QA (for a map's input signature)."""
+        return [f for fs in self.band_files for f in fs] + list(self.qa_files or [])
+
+    def __getstate__(self) -> dict:
+        # Open datasets are per thread and never pickled (dask ships the stack to workers).
+        state = self.__dict__.copy()
+        del state["_local"]
+        return state
+
+    def __setstate__(self, state: dict) -> None:
+        self.__dict__.update(state)
+        self._local = threading.local()
+
+    def _datasets(self) -> tuple[list[list[rasterio.io.DatasetReader]], list[rasterio.io.DatasetReader] | None]:
+        ds = getattr(self._local, "datasets", None)
+        if ds is None:
+            ds = ([[rasterio.open(f) for f in fs] for fs in self.band_files], [rasterio.open(f) for f in self.qa_files] if self.qa_files is not None else None)
+            self._local.datasets = ds
+        return ds
+
+    def close(self) -> None:
+        ds = getattr(self._local, "datasets", None)
+        if ds:
+            for d in [x for fs in ds[0] for x in fs] + (ds[1] or []):
+                d.close()
+        self._local.datasets = None
+
+    def __call__(self, row: int, col: int, height: int, width: int) -> tuple[np.ndarray, np.ndarray]:
+        win = rasterio.windows.Window(col, row, width, height)
+        bands, qas = self._datasets()
+        t, nb = len(bands), len(bands[0])
+        refl = np.empty((t, nb, height, width), np.float32)
+        valid = np.empty((t, height, width), bool)
+        for i in range(t):
+            bad = np.zeros((height, width), bool)
+            for b, src in enumerate(bands[i]):
+                data = src.read(1, window=win)
+                if self.nodata[b] is not None:
+                    bad |= data == self.nodata[b]
+                np.multiply(data, self.scale[i, b], out=refl[i, b], casting="unsafe")
+                refl[i, b] += self.offset[i, b]
+            if self.adjust is not None:
+                refl[i] *= self.adjust[0][i][:, None, None]
+                refl[i] += self.adjust[1][i][:, None, None]
+            if qas is not None:
+                qa = qas[i].read(1, window=win).astype(np.int64)
+                mask, values = self.qa_rules[i]
+                bad |= (qa & mask) != 0
+                if len(values):
+                    bad |= np.isin(qa, values)
+            refl[i][:, bad] = np.nan
+            valid[i] = ~bad
+        return refl, valid
+
+
+def _aligned_reader(
+    loaded: stac_io.LoadedTile,
+    items: Sequence[pystac.Item],
+    roles: Sequence[str],
+    qa_asset: str | None,
+    grid: Grid,
+    qa_rule: Callable[[str], tuple[Sequence[int], Sequence[int]]],
+    adjust: tuple[np.ndarray, np.ndarray] | None,
+) -> AssetWindowReader | None:
+    """A direct windowed reader when every date is one scene whose assets are local files on the tile's grid; None otherwise (mosaics, reprojection: the lazy arrays)."""
+    by_day: dict[date, list[pystac.Item]] = {}
+    for it in items:
+        by_day.setdefault(stac_io.solar_day(it), []).append(it)
+    if sorted(by_day) != list(loaded.dates) or any(len(v) > 1 for v in by_day.values()):
+        return None
+    files, qa_files, nodata = [], [], None
+    for day in loaded.dates:
+        it = by_day[day][0]
+        keys = stac_io.role_assets(it, roles, qa_asset)
+        for key in keys.values():
+            try:
+                crs, transform, h, w = stac_io.default_grid(it, key)
+            except RegionError:
+                return None
+            if not grid.same_as(Grid(crs, transform, h, w)) or "://" in it.assets[key].href:
+                return None
+        files.append([it.assets[keys[r]].href for r in roles])
+        if nodata is None:
+            nodata = [stac_io._raster_band(it.assets[keys[r]]).get("nodata") for r in roles]
+        if "qa" in keys:
+            qa_files.append(it.assets[keys["qa"]].href)
+    has_qa = loaded.qa is not None and len(qa_files) == len(files)
+    rules = [qa_rule(s) if has_qa else ([], []) for s in loaded.sensors]
+    return AssetWindowReader(files, qa_files if has_qa else None, nodata, loaded.scale, loaded.offset, rules, adjust)
 
 
 def parse_date_from_name(path: Path) -> date:
@@ -630,12 +760,14 @@ def _from_items(tile: TileConfig, region: RegionConfig, items: list[pystac.Item]
     s = xr.DataArray(loaded.scale, dims=("time", "band"), coords={"time": times, "band": list(region.bands)})
     o = xr.DataArray(loaded.offset, dims=("time", "band"), coords={"time": times, "band": list(region.bands)})
     valid = ~invalid.assign_coords(time=times)
-    refl = _adjusted(raw.astype(np.float32) * s + o, harmonise_coefficients(loaded.sensors, region)).where(valid)
+    adjust = harmonise_coefficients(loaded.sensors, region)
+    refl = _adjusted(raw.astype(np.float32) * s + o, adjust).where(valid)
     refl.name, valid.name = "reflectance", "valid"
     for arr in (refl, valid):
         arr.attrs.update(crs=grid.crs.to_string(), transform=tuple(grid.transform)[:6])
     refl.attrs["units"] = "1"
-    return TileStack(name=tile.name, reflectance=refl, valid=valid, grid=grid, sources=loaded.files, sensors=loaded.sensors, harmonised_to=harmonised_to(region))
+    reader = _aligned_reader(loaded, items, region.bands, qa_asset, grid, qa_rule, adjust)
+    return TileStack(name=tile.name, reflectance=refl, valid=valid, grid=grid, reader=reader, sources=loaded.files, sensors=loaded.sensors, harmonised_to=harmonised_to(region))
 
 
 def _open_products(tile: TileConfig, region: RegionConfig) -> TileStack:

@@ -240,14 +240,15 @@ def load_tile(
     bands = [*roles, "qa"] if has_qa else list(roles)
     geobox = GeoBox((height, width), transform, crs)
     resampling = {"qa": "nearest", "*": "average"}
-    per_day = []
-    for day in sorted(renamed):
-        try:
-            ds = odc.stac.load(renamed[day], bands=bands, geobox=geobox, groupby="solar_day", chunks={"x": chunk, "y": chunk}, resampling=resampling)
-        except Exception as exc:  # odc-stac reports missing metadata in several exception kinds
-            raise RegionError(f"{where}: cannot load the scenes of {day} ({type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else 'no detail'})") from None
-        per_day.append(ds.isel(time=[0]).assign_coords(time=[np.datetime64(day, "ns")]))
-    ds = xr.concat(per_day, dim="time") if len(per_day) > 1 else per_day[0]
+    # One load for every day: items grouped by this module's solar day (the keys sort as the days do).
+    every = [it for day in sorted(renamed) for it in renamed[day]]
+    try:
+        ds = odc.stac.load(every, bands=bands, geobox=geobox, groupby=lambda item, parsed, idx: solar_day(item).isoformat(), chunks={"x": chunk, "y": chunk}, resampling=resampling)
+    except Exception as exc:  # odc-stac reports missing metadata in several exception kinds
+        raise RegionError(f"{where}: cannot load the scenes ({type(exc).__name__}: {str(exc).splitlines()[0] if str(exc) else 'no detail'})") from None
+    if ds.sizes["time"] != len(renamed):
+        raise RegionError(f"{where}: odc-stac made {ds.sizes['time']} dates of {len(renamed)} solar days")
+    ds = ds.assign_coords(time=[np.datetime64(d, "ns") for d in sorted(renamed)])
     raw = xr.concat([ds[r] for r in roles], dim="band").transpose("time", "band", "y", "x")
     nodata = xr.zeros_like(raw.isel(band=0), dtype=bool)
     for i, r in enumerate(roles):
