@@ -228,7 +228,7 @@ VERBS: dict[str, Verb] = {
         Verb("benchmark-accuracy", "benchmark_accuracy", "compare the model with the baselines on a held-out simulated region", benchmark_accuracy),
         Verb("benchmark-speed", "benchmark_speed", "time and measure the memory of mapping, side by side with the baselines", benchmark_speed),
         Verb("benchmark-labels", "benchmark_labels", "what to label next, wrong labels, rule labels, warm starts and a new year, scored on a held-out region", benchmark_labels),
-        Verb("benchmark-read", "benchmark_read", "peak memory of reading a large stack window by window", benchmark_read),
+        Verb("benchmark-read", "benchmark_read", "peak memory of reading a large stack window by window, and delivered product folders against pre-stacked GeoTIFFs", benchmark_read),
         Verb("benchmark-plots", "benchmark_plots", "check the farm-plot verdicts against the simulated region's truth", benchmark_plots),
         Verb("readme-figures", "readme_figures", "rewrite the README's figure tables from the JSON the jobs wrote (check=true: only check)", readme_figures),
     )
