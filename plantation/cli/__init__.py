@@ -102,7 +102,12 @@ def _new_region(argv: Sequence[str]) -> None:
 
     p = argparse.ArgumentParser(prog=f"plantation {NEW_REGION}", description=_NEW_REGION_SUMMARY + ". Refuses, with the reason, where the files disagree.")
     p.add_argument("name", help="the region's name (used in output folder names)")
-    p.add_argument("--imagery", required=True, type=Path, help="a tile folder of dated GeoTIFFs, a folder of tile folders, of NetCDF/Zarr cubes, or of delivered scene folders (Landsat Collection 2 Level-2, Sentinel-2 Level-2A; one folder of them per tile)")
+    p.add_argument(
+        "--imagery",
+        required=True,
+        type=Path,
+        help="a tile folder of dated GeoTIFFs, a folder of tile folders, of NetCDF/Zarr cubes, or of delivered scene folders (Landsat C2 L2, Sentinel-2 L2A; one folder of them per tile)",
+    )
     p.add_argument("--labels", type=Path, default=None, help="reference points: CSV (x, y, label, onset_year), GeoPackage or GeoJSON")
     p.add_argument("--out", type=Path, default=None, help="the region file to write (default: <name>.yaml in the working directory)")
     p.add_argument("--force", action="store_true", help="replace an existing region file")
