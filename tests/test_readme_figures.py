@@ -20,13 +20,14 @@ from plantation.benchmarks.readme import (
     mapping_speed_block,
     markdown_table,
     read_memory_block,
+    read_products_block,
     replace_block,
     run,
 )
 from plantation.errors import PlantationError
 from plantation.imagery.config import RegionConfig
 
-NAMES = ("demo-assessment", "demo-plots", "demo-plots-truth", "read-memory", "mapping-speed", "demo-timing", "accuracy-benchmark", "network-ablation", "labels-benchmark")
+NAMES = ("demo-assessment", "demo-plots", "demo-plots-truth", "read-memory", "read-products", "mapping-speed", "demo-timing", "accuracy-benchmark", "network-ablation", "labels-benchmark")
 
 
 def est(estimate: float, lo: float, hi: float, **extra: float) -> dict[str, float]:
@@ -403,3 +404,15 @@ def test_labels_block_says_which_targets_are_met():
     assert row(body, "600") == "| 600 | 0.700 (0.700–0.720) | 0.850 (0.850–0.860) | 0.650 (0.650–0.660) | 0.820 (0.820–0.830) |"
     assert row(body, "20%") == "| 20% | 0.740 | 0.780 | 0.730 (0.100, bbse) | 0.770 (0.100, bbse) |"
     assert row(body, "trusted 400 alone") == "| trusted 400 alone | 0.780 | 0.550 | 0.700 |"
+
+
+def test_read_products_block_gives_both_readers_and_the_ratio_against_its_target():
+    doc = {
+        "tile_px": [512, 512], "dates": 60, "bands": 6, "window": 128, "repeats": 3, "cpu_count": 2, "identical": True,
+        "stacked_px_dates_per_s": 963934, "products_px_dates_per_s": 845705, "peak_rss_mb": {"stacked": 513.2, "products": 479.2},
+        "products_vs_stacked": 0.877, "products_vs_stacked_per_repeat": [0.801, 0.877, 0.846], "target_products_vs_stacked": 0.8,
+    }  # fmt: skip
+    body = read_products_block(doc, source="r.json")
+    assert line_of(body, "pre-stacked") == "| pre-stacked GeoTIFFs (one multi-band file per date) | 0.96 M | 513 MB |"
+    assert row(body, "products ÷ stacked") == "| products ÷ stacked | 0.88 (repeats 0.80, 0.88, 0.85; target ≥ 0.8: met) | |"
+    assert "| 512² px × 60 dates × 6 bands, 128² windows |" in body
