@@ -184,7 +184,22 @@ class TileStack:
         return np.unique(self.dates.astype("datetime64[Y]").astype(int) + 1970)
 
 
-class WindowReader:
+class _PerThreadFiles:
+    """Open datasets kept per thread (``self._local``), never pickled: dask ships a stack's reader to its workers, which open their own."""
+
+    _local: threading.local
+
+    def __getstate__(self) -> dict:
+        state = self.__dict__.copy()
+        del state["_local"]
+        return state
+
+    def __setstate__(self, state: dict) -> None:
+        self.__dict__.update(state)
+        self._local = threading.local()
+
+
+class WindowReader(_PerThreadFiles):
     """Windowed reads from a folder of per-date GeoTIFFs, with the same scaling and masking as the lazy arrays.
 
     Datasets are opened on first use, once per thread (GDAL handles are not
@@ -213,15 +228,6 @@ class WindowReader:
         self.scale = np.asarray(scale, np.float32)
         self.offset = np.asarray(offset, np.float32)
         self.adjust = None if adjust is None else (np.asarray(adjust[0], np.float32), np.asarray(adjust[1], np.float32))
-        self._local = threading.local()
-
-    def __getstate__(self) -> dict:
-        state = self.__dict__.copy()
-        del state["_local"]
-        return state
-
-    def __setstate__(self, state: dict) -> None:
-        self.__dict__.update(state)
         self._local = threading.local()
 
     def _datasets(self) -> list[rasterio.io.DatasetReader]:
@@ -270,7 +276,7 @@ class WindowReader:
         return refl, valid
 
 
-class AssetWindowReader:
+class AssetWindowReader(_PerThreadFiles):
     """Windowed reads of one file per band and date (product folders, local STAC assets) already on the tile's grid, one scene a date.
 
     The lazy arrays' scaling, nodata, per-sensor QA rule and harmonisation,
@@ -311,16 +317,6 @@ class AssetWindowReader:
     def files(self) -> list[str]:
         """Every file read, bands then QA (for a map's input signature)."""
         return [f for fs in self.band_files for f in fs] + list(self.qa_files or [])
-
-    def __getstate__(self) -> dict:
-        # Open datasets are per thread and never pickled (dask ships the stack to workers).
-        state = self.__dict__.copy()
-        del state["_local"]
-        return state
-
-    def __setstate__(self, state: dict) -> None:
-        self.__dict__.update(state)
-        self._local = threading.local()
 
     def _datasets(self) -> tuple[list[list[rasterio.io.DatasetReader]], list[rasterio.io.DatasetReader] | None]:
         ds = getattr(self._local, "datasets", None)
