@@ -18,6 +18,7 @@ Sources of the values checked (as in ../shared/reference/check_values.md):
 
 from __future__ import annotations
 
+import pickle
 from pathlib import Path
 
 import numpy as np
@@ -96,6 +97,9 @@ def test_landsat_scene_folders_give_published_reflectance_and_mask_qa_pixel_flag
     wr, wv = st.read(1, 1, 4, 4)
     np.testing.assert_array_equal(wv, valid[:, 1:5, 1:5])
     np.testing.assert_allclose(wr, refl[:, :, 1:5, 1:5], equal_nan=True)
+    # As a dask worker gets it: pickled without its open files, which it opens again.
+    again = pickle.loads(pickle.dumps(st.reader))
+    np.testing.assert_allclose(again(1, 1, 4, 4)[0], wr, equal_nan=True)
 
 
 def test_same_day_scenes_are_one_date_mosaicked_and_another_crs_is_reprojected(tmp_path):
