@@ -298,8 +298,15 @@ def test_halving_the_conversion_share_lowers_the_regions_p_conversion(tmp_path):
 def test_bbse_prior_from_the_regions_pixels(tmp_path):
     run = _train(tmp_path, "bbse", "calibration.prior=bbse", "calibration.bbse_pixels=4000")
     m = json.loads((run / "metrics.json").read_text())
-    assert m["prior"]["prior"] == "bbse" and len(m["prior"]["target_prior"]) == 15
-    groups = m["prior"]["target_prior_groups"]
+    if "refused" in m["prior"]:
+        # A bbse estimate leaving a labelled group out is refused: the sample's mix is kept and the estimate recorded.
+        refused = m["prior"]["refused"]
+        assert m["prior"]["prior"] == "sample" and refused["source"] == "bbse" and refused["vanished"]
+        assert all(refused["estimate_groups"][g] < 1e-4 for g in refused["vanished"])
+        groups = refused["estimate_groups"]
+    else:
+        assert m["prior"]["prior"] == "bbse" and len(m["prior"]["target_prior"]) == 15
+        groups = m["prior"]["target_prior_groups"]
     assert sum(groups.values()) == pytest.approx(1.0, abs=1e-4)
     # The toy region has much less conversion than its labels (about 35%).
     assert groups["conversion"] < m["prior"]["sample_prior_groups"]["conversion"]
