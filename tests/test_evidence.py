@@ -41,8 +41,8 @@ from plantation.farmplots.evidence import (
 )
 from plantation.imagery.config import LabelsConfig, MaskConfig, RegionConfig, ScalingRule, TileConfig
 from plantation.imagery.region import open_tile
-from plantation.mapping.folder import FORMAT, LAYERS, NODATA
-from tests.conftest import BANDS, CRS, TRANSFORM, write_stack
+from plantation.mapping.folder import FORMAT
+from tests.conftest import BANDS, CRS, TRANSFORM, write_map_tile, write_stack
 
 SIDE = 16
 DATES = [f"{y}-{md}" for y in (2019, 2020, 2021, 2022) for md in ("02-14", "05-16", "08-15", "11-14")]
@@ -79,15 +79,7 @@ def write_map(folder: Path, name: str = "t1") -> Path:
     bands[(5, *BLOCK)] = 9800
     bands[5][0:3, 0:3] = 300
     path = folder / f"{name}.tif"
-    prof = {"driver": "GTiff", "width": SIDE, "height": SIDE, "count": 8, "dtype": "int16", "crs": CRS, "transform": TRANSFORM, "nodata": NODATA}
-    with rasterio.open(path, "w", **prof) as dst:
-        dst.write(bands)
-        for i, (desc, _, units) in enumerate(LAYERS, start=1):
-            dst.set_band_description(i, desc)
-            dst.update_tags(i, units=units)
-        dst.scales = [s for _, s, _ in LAYERS]
-        dst.offsets = [0.0] * 8
-        dst.update_tags(cutoff_year="2020", interval_level="0.8")
+    write_map_tile(path, bands, crs=CRS, transform=TRANSFORM, tags={"cutoff_year": "2020", "interval_level": "0.8"})
     doc = {"format": FORMAT, "producer": "test", "tiles": {name: {"file": path.name, "sha256": hashlib.sha256(path.read_bytes()).hexdigest(), "tile": name, "converted_ha": {"2021": 3.24}}}}
     (folder / "manifest.json").write_text(json.dumps(doc))
     return folder

@@ -22,7 +22,6 @@ import numpy as np
 import pandas as pd
 import pyogrio
 import pytest
-import rasterio
 import shapely
 from affine import Affine
 from pyproj import CRS as ProjCRS
@@ -45,7 +44,8 @@ from plantation.farmplots.cutoff import (
     write_outputs,
 )
 from plantation.farmplots.evidence import EvidenceConfig, read_evidence
-from plantation.mapping.folder import FORMAT, LAYERS, NODATA
+from plantation.mapping.folder import FORMAT, NODATA
+from tests.conftest import write_map_tile
 
 ROOT = Path(__file__).resolve().parents[1]
 CRS = "EPSG:32650"
@@ -83,15 +83,7 @@ def write_tile(folder: Path, name: str = "t01", *, cls=None, onset=None, p_after
     bands[0], bands[1], bands[5], bands[7] = cls, onset, p_after, clear
     bands[:7, cls == NODATA] = NODATA
     path = folder / f"{name}.tif"
-    prof = {"driver": "GTiff", "width": w, "height": h, "count": 8, "dtype": "int16", "crs": CRS, "transform": transform, "nodata": NODATA}
-    with rasterio.open(path, "w", **prof) as dst:
-        dst.write(bands)
-        for i, (desc, _, units) in enumerate(LAYERS, start=1):
-            dst.set_band_description(i, desc)
-            dst.update_tags(i, units=units)
-        dst.scales = [s for _, s, _ in LAYERS]
-        dst.offsets = [0.0] * 8
-        dst.update_tags(cutoff_year=str(cutoff_year), interval_level="0.8")
+    write_map_tile(path, bands, crs=CRS, transform=transform, tags={"cutoff_year": str(cutoff_year), "interval_level": "0.8"})
     man = folder / "manifest.json"
     doc = json.loads(man.read_text()) if man.exists() else {"format": FORMAT, "producer": "test", "tiles": {}}
     doc["tiles"][name] = {"file": path.name, "sha256": hashlib.sha256(path.read_bytes()).hexdigest(), "tile": name}

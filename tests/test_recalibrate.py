@@ -34,6 +34,7 @@ from plantation.farmplots.cutoff import run as check_plots
 from plantation.mapping.folder import CORRECTION_TAG, FORMAT, LAYERS, NO_CORRECTION, NODATA, RECALIBRATION, SCALE, open_map, sha256_of, write_cog
 from plantation.model.calibration import expected_calibration_error
 from plantation.report.page import build_report
+from tests.conftest import write_map_tile
 
 ROOT = Path(__file__).resolve().parents[1]
 COMMAND = str(Path(sys.executable).parent / "plantation")
@@ -78,15 +79,8 @@ def write_map(folder: Path, seed: int, tiles: tuple[str, ...] = ("t01", "t02")) 
         bands[7, 0, :4] = 2
         raw = folder / f".{name}.raw.tif"
         transform = Affine(30.0, 0.0, 600000.0 + k * w * 30.0, 0.0, -30.0, 200010.0)
-        prof = {"driver": "GTiff", "width": w, "height": h, "count": 8, "dtype": "int16", "crs": CRS, "transform": transform, "nodata": NODATA, "tiled": True, "blockxsize": 256, "blockysize": 256}
-        with rasterio.open(raw, "w", **prof) as dst:
-            dst.write(bands)
-            for i, (desc, _, units) in enumerate(LAYERS, start=1):
-                dst.set_band_description(i, desc)
-                dst.update_tags(i, units=units)
-            dst.scales = [s for _, s, _ in LAYERS]
-            dst.offsets = [0.0] * 8
-            dst.update_tags(cutoff_year=str(CUTOFF), interval_level="0.8", model_region="tinyland")
+        tags = {"cutoff_year": str(CUTOFF), "interval_level": "0.8", "model_region": "tinyland"}
+        write_map_tile(raw, bands, crs=CRS, transform=transform, tags=tags, tiled=True, blockxsize=256, blockysize=256)
         path = folder / f"{name}.tif"
         write_cog(raw, path)
         raw.unlink()
