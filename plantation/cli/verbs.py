@@ -205,6 +205,15 @@ def benchmark_plots(cfg: DictConfig) -> None:
     print(f"written to {pc.result}")
 
 
+def benchmark_faults(cfg: DictConfig) -> None:
+    from plantation.benchmarks.faults import FaultsConfig, run
+
+    fc = to_object(cfg, FaultsConfig)
+    res = run(fc)
+    print(f"{res['cases_held']} of {res['cases_tried']} cases held; {res['kills_survived']}/{res['kills_tried']} kills survived, {res['bad_inputs_refused']}/{res['bad_inputs_tried']} bad inputs refused, {res['outputs_corrupt']} corrupt outputs")
+    print(f"written to {fc.result}")
+
+
 def readme_figures(cfg: DictConfig) -> None:
     from plantation.benchmarks.readme import ReadmeConfig, run
 
@@ -230,6 +239,7 @@ VERBS: dict[str, Verb] = {
         Verb("benchmark-labels", "benchmark_labels", "what to label next, wrong labels, rule labels, warm starts and a new year, scored on a held-out region", benchmark_labels),
         Verb("benchmark-read", "benchmark_read", "peak memory of reading a large stack window by window, and delivered product folders against pre-stacked GeoTIFFs", benchmark_read),
         Verb("benchmark-plots", "benchmark_plots", "check the farm-plot verdicts against the simulated region's truth", benchmark_plots),
+        Verb("benchmark-faults", "benchmark_faults", "kill runs, feed bad, broken and untrusted files, and check every one is survived or refused cleanly", benchmark_faults),
         Verb("readme-figures", "readme_figures", "rewrite the README's figure tables from the JSON the jobs wrote (check=true: only check)", readme_figures),
     )
 }
