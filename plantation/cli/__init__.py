@@ -4,7 +4,9 @@ Every job is a verb; its keys come from its file in ``configs/`` and are
 overridden on the command line exactly as written there
 (``plantation train region=mine network.members=5``). ``plantation --help``
 lists the verbs; ``plantation <verb> --help`` says what a job does and lists
-its keys with their comments and defaults.
+its keys with their comments and defaults. ``--debug`` (or
+``PLANTATION_DEBUG=1``) prints the traceback of a refused input above its
+one-line message.
 """
 
 from __future__ import annotations
@@ -19,7 +21,7 @@ from omegaconf import OmegaConf
 
 from plantation import __version__
 from plantation.cli.compose import CONFIG_DIR_ENV, compose_job, sources
-from plantation.cli.errors import user_errors
+from plantation.cli.errors import DEBUG_ENV, user_errors
 from plantation.cli.helptext import comments, key_lines
 from plantation.cli.verbs import VERBS
 from plantation.errors import ConfigError
@@ -27,7 +29,7 @@ from plantation.errors import ConfigError
 NEW_REGION = "new-region"
 _NEW_REGION_SUMMARY = "inspect imagery (and labels) and write a commented region file the jobs accept"
 
-USAGE = f"""usage: plantation [--config-dir DIR] <verb> [key=value ...]
+USAGE = f"""usage: plantation [--debug] [--config-dir DIR] <verb> [key=value ...]
        plantation <verb> --help
 
 Maps the year natural forest was converted to tree-crop plantation, pixel by
@@ -41,6 +43,10 @@ Keys override the job's config as key=value (region=mine, network.members=5,
 region=path/to/my_region.yaml). Your own config files go in a folder laid out
 like the package's configs/ (region/, network/, ...), given with --config-dir
 or {CONFIG_DIR_ENV}.
+
+A refused input (a bad file, a bad key) is reported in one line starting
+`error:`, with exit status 1. --debug (or {DEBUG_ENV}=1) also prints the
+traceback above it, for a bug report.
 
 plantation {__version__}"""
 
@@ -120,7 +126,9 @@ def _new_region(argv: Sequence[str]) -> None:
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command; return its exit status (0 done, 1 refused input, 2 usage)."""
     args = list(sys.argv[1:] if argv is None else argv)
-    with user_errors():
+    debug = "--debug" in args
+    args = [a for a in args if a != "--debug"]
+    with user_errors(True if debug else None):
         if args and args[0] == NEW_REGION:
             _new_region(args[1:])
             return 0

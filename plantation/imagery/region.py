@@ -31,6 +31,28 @@ Nothing is read at open time but file headers: values come as dask arrays
 chunked in space, so a tile larger than memory is processed window by window.
 Stored integers become reflectance (unitless, float32) through the region's
 :class:`~plantation.imagery.config.ScalingRule` list, resolved per date.
+
+Bad values inside readable files are masked, never passed on: a pixel of a
+date is invalid (``valid`` False, every band NaN; the model leaves the date
+out of that pixel's summary) when, besides the nodata value and the QA rule,
+
+* any band is NaN or ±inf (float files);
+* any band's reflectance, after scaling (and harmonisation), lies outside
+  :data:`PLAUSIBLE_REFLECTANCE`, −0.2 to 1.6: values far outside 0–1, such
+  as a wrong scale factor or garbage, are no surface's;
+* any band holds the largest value of its integer type (65535 for uint16,
+  32767 for int16): the code products use for a saturated pixel
+  (Sentinel-2 product metadata, ``Special_Values``: SATURATED 65535);
+* every band is stored as exactly 0: a fill value whatever the nodata tag
+  says (Landsat Collection 2 and Sentinel-2 both fill with 0), so a date
+  delivered as zeros is a date with no data.
+
+What follows from the mask: a pixel cloudy on every date, a date cloudy
+everywhere, or a whole tile without one valid pixel are read without error
+(``plantation survey`` counts them; a mapped pixel with fewer than
+``min_clear`` clear dates is nodata in the map). A file found unreadable
+while reading (truncated, garbage blocks) raises :class:`RegionError` naming
+the file and its date, from the windowed reads and the lazy arrays alike.
 """
 
 from __future__ import annotations
@@ -62,6 +84,48 @@ _DATE = re.compile(r"(\d{4})-(\d{2})-(\d{2})")
 RASTER_SUFFIXES = (".tif", ".tiff")
 #: The region formats the reader knows.
 FORMATS: tuple[str, ...] = ("geotiff_folder", "cube", "products", "stac")
+#: Reflectance outside [low, high] after scaling is masked as no surface's. The
+#: bounds are the range Landsat Collection 2 Level-2 surface reflectance can
+#: take (stored 1–65455, × 0.0000275 − 0.2, USGS), wide enough for the small
+#: negative values of atmospheric correction over dark water and for bright
+#: cloud edges, which the QA mask handles.
+PLAUSIBLE_REFLECTANCE: tuple[float, float] = (-0.2, 1.6)
+
+
+def saturated_value(dtype: np.dtype) -> int | None:
+    """The stored value that means "saturated" for an integer type (its largest), None for floats."""
+    dtype = np.dtype(dtype)
+    return int(np.iinfo(dtype).max) if np.issubdtype(dtype, np.integer) else None
+
+
+def unusable(raw, refl, *, axis: int | str):  # noqa: ANN001, ANN201 - numpy arrays or DataArrays alike
+    """Pixels whose stored values or reflectance no surface gives (see the module docstring), reduced over the band axis.
+
+    Args:
+        raw: stored values, with a band axis (numpy) or ``band`` dim (xarray).
+        refl: the reflectance of ``raw`` after scaling and harmonisation, same shape.
+        axis: the band axis (int, numpy) or dim name (str, xarray).
+
+    Returns:
+        bool, True where any band is non-finite, outside
+        :data:`PLAUSIBLE_REFLECTANCE` or saturated, or every band is stored as 0.
+    """
+    kw = {"dim": axis} if isinstance(axis, str) else {"axis": axis}
+    low, high = PLAUSIBLE_REFLECTANCE
+    # NaN and ±inf fail both comparisons, so they are caught here too.
+    out = ~((refl >= low) & (refl <= high)).all(**kw)
+    out = out | (raw == 0).all(**kw)
+    sat = saturated_value(raw.dtype)
+    if sat is not None:
+        out = out | (raw == sat).any(**kw)
+    return out
+
+
+def read_failed(path: str, when: str, exc: Exception, what: str) -> RegionError:
+    """The error for a file found unreadable while reading: the file, its date, where, and GDAL's reason."""
+    cause = exc.__cause__ or exc.__context__
+    reason = str(cause or exc).splitlines()[0] if str(cause or exc) else type(exc).__name__
+    return RegionError(f"{path}: date {when}: cannot read {what} ({reason}); the file is truncated or corrupt, replace it (or delete it to leave the date out)")
 
 
 @dataclass(frozen=True)
@@ -217,9 +281,11 @@ class WindowReader(_PerThreadFiles):
         offset: np.ndarray,
         invalid_values: Sequence[int] = (),
         adjust: tuple[np.ndarray, np.ndarray] | None = None,
+        dates: Sequence[date] | None = None,
     ) -> None:
-        """``adjust``: (slope, intercept) float32 (dates, bands) of the cross-sensor adjustment applied after scaling (None: none)."""
+        """``adjust``: (slope, intercept) float32 (dates, bands) of the cross-sensor adjustment applied after scaling (None: none); ``dates``: each file's date, for messages."""
         self.files = [str(f) for f in files]
+        self.dates = [str(d) for d in dates] if dates is not None else [f"#{i + 1}" for i in range(len(self.files))]
         self.n_bands = n_bands
         self.qa_band = qa_band
         self.qa_mask = qa_bit_mask(invalid_bits)
@@ -233,7 +299,14 @@ class WindowReader(_PerThreadFiles):
     def _datasets(self) -> list[rasterio.io.DatasetReader]:
         ds = getattr(self._local, "datasets", None)
         if ds is None:
-            ds = [rasterio.open(f) for f in self.files]
+            ds = []
+            for f, d in zip(self.files, self.dates, strict=True):
+                try:
+                    ds.append(rasterio.open(f))
+                except rasterio.errors.RasterioError as exc:
+                    for opened in ds:
+                        opened.close()
+                    raise read_failed(f, d, exc, "the file's header") from None
             self._local.datasets = ds
         return ds
 
@@ -251,8 +324,8 @@ class WindowReader(_PerThreadFiles):
         for i, src in enumerate(self._datasets()):
             try:
                 raw = src.read(indexes, window=win)
-            except rasterio.errors.RasterioIOError as exc:
-                raise RegionError(f"{self.files[i]}: cannot read window at row {row}, col {col} ({exc})") from None
+            except rasterio.errors.RasterioError as exc:
+                raise read_failed(self.files[i], self.dates[i], exc, f"rows {row}–{row + height - 1}, cols {col}–{col + width - 1}") from None
             data = raw[: self.n_bands]
             bad = np.zeros((height, width), bool)
             if self.nodata is not None:
@@ -271,9 +344,62 @@ class WindowReader(_PerThreadFiles):
                 # The same float32 operations, in the same order, as the lazy arrays.
                 out *= self.adjust[0][i][:, None, None]
                 out += self.adjust[1][i][:, None, None]
+            bad |= unusable(data, out, axis=0)
             out[:, bad] = np.nan
             valid[i] = ~bad
         return refl, valid
+
+
+class LazyRaster(_PerThreadFiles):
+    """One dated GeoTIFF as an array-like (band, y, x) that dask slices chunk by chunk.
+
+    ``dask.array.from_array`` reads each chunk through :meth:`__getitem__`, so
+    a file found truncated or corrupt while a job runs raises a
+    :class:`RegionError` naming the file and its date, not GDAL's error from
+    inside a dask task. Datasets are opened per thread, on first use.
+    """
+
+    def __init__(self, path: Path, when: date, count: int, height: int, width: int, dtype: str) -> None:
+        self.path = str(path)
+        self.when = str(when)
+        self.shape = (count, height, width)
+        self.dtype = np.dtype(dtype)
+        self.ndim = 3
+        self._local = threading.local()
+
+    def _dataset(self) -> rasterio.io.DatasetReader:
+        ds = getattr(self._local, "dataset", None)
+        if ds is None:
+            try:
+                ds = rasterio.open(self.path)
+            except rasterio.errors.RasterioError as exc:
+                raise read_failed(self.path, self.when, exc, "the file's header") from None
+            self._local.dataset = ds
+        return ds
+
+    def __getitem__(self, key: tuple[slice, ...]) -> np.ndarray:
+        bands, ys, xs = (k.indices(n) for k, n in zip(key, self.shape, strict=True))
+        if bands[2] != 1 or ys[2] != 1 or xs[2] != 1:  # dask slices chunks with unit steps
+            raise RegionError(f"{self.path}: a strided read {key!r} is not supported")
+        out = np.empty((max(bands[1] - bands[0], 0), max(ys[1] - ys[0], 0), max(xs[1] - xs[0], 0)), self.dtype)
+        if out.size == 0:
+            return out
+        win = rasterio.windows.Window(xs[0], ys[0], out.shape[2], out.shape[1])
+        try:
+            return self._dataset().read(list(range(bands[0] + 1, bands[1] + 1)), window=win, out=out)
+        except rasterio.errors.RasterioError as exc:
+            raise read_failed(self.path, self.when, exc, f"rows {ys[0]}–{ys[1] - 1}, cols {xs[0]}–{xs[1] - 1}") from None
+
+
+def _lazy_geotiff(path: Path, when: date, count: int, grid: Grid, dtype: str, chunk: int) -> xr.DataArray:
+    """A dated GeoTIFF as a lazy (band, y, x) DataArray chunked ``chunk`` pixels in space, all bands in one chunk; pixel-centre x/y coordinates."""
+    import dask.array
+
+    arr = dask.array.from_array(LazyRaster(path, when, count, grid.height, grid.width, dtype), chunks=(-1, chunk, chunk), lock=False, asarray=False, name=f"raster-{path}-{when}")
+    t = grid.transform
+    ys = t.f + t.e * (np.arange(grid.height) + 0.5)
+    xs = t.c + t.a * (np.arange(grid.width) + 0.5)
+    return xr.DataArray(arr, dims=("band", "y", "x"), coords={"band": np.arange(1, count + 1), "y": ys, "x": xs})
 
 
 class AssetWindowReader(_PerThreadFiles):
@@ -303,8 +429,10 @@ class AssetWindowReader(_PerThreadFiles):
         offset: np.ndarray,
         qa_rules: Sequence[tuple[Sequence[int], Sequence[int]]],
         adjust: tuple[np.ndarray, np.ndarray] | None = None,
+        dates: Sequence[date] | None = None,
     ) -> None:
         self.band_files = [list(f) for f in band_files]
+        self.dates = [str(d) for d in dates] if dates is not None else []
         self.qa_files = list(qa_files) if qa_files is not None else None
         self.nodata = list(nodata)
         self.scale = np.asarray(scale, np.float32)
@@ -318,10 +446,19 @@ class AssetWindowReader(_PerThreadFiles):
         """Every file read, bands then QA (for a map's input signature)."""
         return [f for fs in self.band_files for f in fs] + list(self.qa_files or [])
 
+    def _date(self, i: int) -> str:
+        return self.dates[i] if i < len(self.dates) else f"#{i + 1}"
+
+    def _open(self, path: str, i: int) -> rasterio.io.DatasetReader:
+        try:
+            return rasterio.open(path)
+        except rasterio.errors.RasterioError as exc:
+            raise read_failed(path, self._date(i), exc, "the file's header") from None
+
     def _datasets(self) -> tuple[list[list[rasterio.io.DatasetReader]], list[rasterio.io.DatasetReader] | None]:
         ds = getattr(self._local, "datasets", None)
         if ds is None:
-            ds = ([[rasterio.open(f) for f in fs] for fs in self.band_files], [rasterio.open(f) for f in self.qa_files] if self.qa_files is not None else None)
+            ds = ([[self._open(f, i) for f in fs] for i, fs in enumerate(self.band_files)], [self._open(f, i) for i, f in enumerate(self.qa_files)] if self.qa_files is not None else None)
             self._local.datasets = ds
         return ds
 
@@ -338,10 +475,16 @@ class AssetWindowReader(_PerThreadFiles):
         t, nb = len(bands), len(bands[0])
         refl = np.empty((t, nb, height, width), np.float32)
         valid = np.empty((t, height, width), bool)
+        what = f"rows {row}–{row + height - 1}, cols {col}–{col + width - 1}"
         for i in range(t):
             bad = np.zeros((height, width), bool)
+            stored = []
             for b, src in enumerate(bands[i]):
-                data = src.read(1, window=win)
+                try:
+                    data = src.read(1, window=win)
+                except rasterio.errors.RasterioError as exc:
+                    raise read_failed(self.band_files[i][b], self._date(i), exc, what) from None
+                stored.append(data)
                 if self.nodata[b] is not None:
                     bad |= data == self.nodata[b]
                 np.multiply(data, self.scale[i, b], out=refl[i, b], casting="unsafe")
@@ -349,8 +492,12 @@ class AssetWindowReader(_PerThreadFiles):
             if self.adjust is not None:
                 refl[i] *= self.adjust[0][i][:, None, None]
                 refl[i] += self.adjust[1][i][:, None, None]
+            bad |= unusable(np.stack(stored), refl[i], axis=0)
             if qas is not None:
-                qa = qas[i].read(1, window=win).astype(np.int64)
+                try:
+                    qa = qas[i].read(1, window=win).astype(np.int64)
+                except rasterio.errors.RasterioError as exc:
+                    raise read_failed(self.qa_files[i] if self.qa_files else "QA", self._date(i), exc, what) from None
                 mask, values = self.qa_rules[i]
                 bad |= (qa & mask) != 0
                 if len(values):
@@ -393,7 +540,7 @@ def _aligned_reader(
             qa_files.append(it.assets[keys["qa"]].href)
     has_qa = loaded.qa is not None and len(qa_files) == len(files)
     rules = [qa_rule(s) if has_qa else ([], []) for s in loaded.sensors]
-    return AssetWindowReader(files, qa_files if has_qa else None, nodata, loaded.scale, loaded.offset, rules, adjust)
+    return AssetWindowReader(files, qa_files if has_qa else None, nodata, loaded.scale, loaded.offset, rules, adjust, dates=loaded.dates)
 
 
 def parse_date_from_name(path: Path) -> date:
@@ -547,7 +694,7 @@ def _finish(name: str, raw: xr.DataArray, invalid: xr.DataArray, dates: list[dat
     o = xr.DataArray(offset.astype(np.float32), dims="time", coords={"time": times})
     # Convert once to float32: the loaders would otherwise widen to float64.
     refl = _adjusted(raw.astype(np.float32) * s + o, harmonise_coefficients(sensors, region))
-    valid = ~invalid
+    valid = ~(invalid | unusable(raw, refl, axis="band"))
     refl = refl.where(valid)
     refl.name = "reflectance"
     valid.name = "valid"
@@ -558,8 +705,6 @@ def _finish(name: str, raw: xr.DataArray, invalid: xr.DataArray, dates: list[dat
 
 
 def _open_geotiff_folder(tile: TileConfig, region: RegionConfig) -> TileStack:
-    import rioxarray  # noqa: F401  (registers the engine used by open_rasterio)
-
     folder = Path(tile.path)
     if not folder.is_dir():
         raise InputNotFoundError(f"{Path(folder).absolute()}: tile {tile.name!r} folder does not exist")
@@ -582,6 +727,7 @@ def _open_geotiff_folder(tile: TileConfig, region: RegionConfig) -> TileStack:
         raise RegionError(f"{folder}: no file dated on or before region.end_date {region.end_date}")
     grid: Grid | None = None
     nodatas: list[float | None] = []
+    dtypes: list[str] = []
     first = by_date[dates[0]]
     for d in dates:
         f = by_date[d]
@@ -592,7 +738,8 @@ def _open_geotiff_folder(tile: TileConfig, region: RegionConfig) -> TileStack:
                     roles = ", ".join(region.bands) + (" + QA" if qa_band else "")
                     raise RegionError(f"{f}: has {src.count} bands, the region config expects {expected} ({roles})")
                 nodatas.append(src.nodata)
-        except rasterio.errors.RasterioIOError as exc:
+                dtypes.append(str(np.result_type(*src.dtypes)))
+        except rasterio.errors.RasterioError as exc:
             raise RegionError(f"{f}: cannot read as a raster ({exc})") from None
         if grid is None:
             grid = g
@@ -600,9 +747,8 @@ def _open_geotiff_folder(tile: TileConfig, region: RegionConfig) -> TileStack:
             raise RegionError(f"{f}: grid {g.describe()} differs from {first.name}'s {grid.describe()}")
     if grid is None:  # unreachable: files is non-empty
         raise RegionError(f"{folder}: no readable GeoTIFF")
-    chunks = {"band": -1, "y": region.chunk, "x": region.chunk}
-    arrays = [rioxarray.open_rasterio(by_date[d], chunks=chunks, lock=False, cache=False) for d in dates]
-    cube = xr.concat([a.drop_vars("spatial_ref", errors="ignore") for a in arrays], dim="time", join="override")
+    arrays = [_lazy_geotiff(by_date[d], d, expected, grid, t, region.chunk) for d, t in zip(dates, dtypes, strict=True)]
+    cube = xr.concat(arrays, dim="time", join="override")
     raw = cube.isel(band=slice(0, n_refl))
     nodata = region.nodata if region.nodata is not None else nodatas[0]
     invalid = xr.zeros_like(raw.isel(band=0), dtype=bool)
@@ -626,6 +772,7 @@ def _open_geotiff_folder(tile: TileConfig, region: RegionConfig) -> TileStack:
         offset,
         invalid_values=region.mask.invalid_values if qa_band else [],
         adjust=harmonise_coefficients(sensors, region),
+        dates=dates,
     )
     return stack
 
@@ -755,9 +902,10 @@ def _from_items(tile: TileConfig, region: RegionConfig, items: list[pystac.Item]
     raw = loaded.raw.assign_coords(time=times, band=list(region.bands))
     s = xr.DataArray(loaded.scale, dims=("time", "band"), coords={"time": times, "band": list(region.bands)})
     o = xr.DataArray(loaded.offset, dims=("time", "band"), coords={"time": times, "band": list(region.bands)})
-    valid = ~invalid.assign_coords(time=times)
     adjust = harmonise_coefficients(loaded.sensors, region)
-    refl = _adjusted(raw.astype(np.float32) * s + o, adjust).where(valid)
+    refl = _adjusted(raw.astype(np.float32) * s + o, adjust)
+    valid = ~(invalid.assign_coords(time=times) | unusable(raw, refl, axis="band"))
+    refl = refl.where(valid)
     refl.name, valid.name = "reflectance", "valid"
     for arr in (refl, valid):
         arr.attrs.update(crs=grid.crs.to_string(), transform=tuple(grid.transform)[:6])
