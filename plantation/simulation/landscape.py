@@ -26,7 +26,8 @@ window with the same result as a small one would give for the same pixels:
 Outputs (:func:`plantation.simulation.writer.write_region`): per tile, ``imagery/YYYY-MM-DD.tif`` (int16,
 bands blue…swir2 as reflectance × 10000, then a QA band: bit 0 cloud, bit 1
 shadow, bit 2 fill), ``truth.tif`` (int32 bands: class, onset_year, event,
-event_year, parcel), plus region-wide ``labels.csv`` (a stratified reference
+event_year, parcel, fire — see
+:data:`plantation.simulation.scenario.FIRE_TRUTH`), plus region-wide ``labels.csv`` (a stratified reference
 sample with interpreter errors) and ``labels_truth.csv``.
 """
 
@@ -44,7 +45,7 @@ from rasterio.features import rasterize
 from scipy.ndimage import gaussian_filter
 
 from plantation.reference.labels import LABEL_CODES
-from plantation.simulation.scenario import _CLASS_OF_EVENT, EVENTS, QA_CLOUD, QA_FILL, QA_SHADOW, SimulationConfig, check_config, dates_of, decimal_year
+from plantation.simulation.scenario import _CLASS_OF_EVENT, EVENTS, FIRE_TRUTH, QA_CLOUD, QA_FILL, QA_SHADOW, SimulationConfig, check_config, dates_of, decimal_year
 from plantation.simulation.spectra import CLOUD, HAZE, WATER, SpectralTable, default_table
 
 
@@ -115,10 +116,14 @@ class Landscape:
     year: np.ndarray  # event or onset year (0 for none)
     t_event: np.ndarray  # decimal year of the event (clearing, logging, fire)
     params: np.ndarray  # (n, 6) float: per-parcel trajectory parameters
+    #: Parcels 1..n_main are drawn over each other in order; later ones (escaped fires) only over forest background.
+    n_main: int = -1
     tree: shapely.STRtree = field(init=False)
 
     def __post_init__(self) -> None:
         self.tree = shapely.STRtree(self.geoms)
+        if self.n_main < 0:
+            self.n_main = len(self.geoms)
 
     def parcel_ids(self, r0: int, c0: int, h: int, w: int) -> np.ndarray:
         """Parcel id (1-based, 0 = forest background) of each pixel of a window."""
@@ -127,7 +132,15 @@ class Landscape:
         if hits.size == 0:
             return np.zeros((h, w), dtype=np.int32)
         transform = Affine.translation(c0, r0)
-        return rasterize(((self.geoms[i], int(i) + 1) for i in hits), out_shape=(h, w), transform=transform, fill=0, dtype="int32")
+        main, over_forest = hits[hits < self.n_main], hits[hits >= self.n_main]
+        pid = np.zeros((h, w), dtype=np.int32)
+        if main.size:
+            pid = rasterize(((self.geoms[i], int(i) + 1) for i in main), out_shape=(h, w), transform=transform, fill=0, dtype="int32")
+        if over_forest.size:
+            # An escaped fire burns forest only: roads, rivers and other parcels stop it.
+            fire = rasterize(((self.geoms[i], int(i) + 1) for i in over_forest), out_shape=(h, w), transform=transform, fill=0, dtype="int32")
+            pid = np.where(pid == 0, fire, pid)
+        return pid
 
 
 def _irregular(rng: np.random.Generator, cx: float, cy: float, radius: float, n: int = 9) -> shapely.Geometry:
@@ -256,6 +269,29 @@ def build_landscape(cfg: SimulationConfig) -> Landscape:
             xs, ys = ys * W / H, xs * H / W
         add(shapely.LineString(np.c_[xs, ys]).buffer(rng.uniform(0.8, 2.0)), "water")
 
+    n_main = len(geoms)
+    # Fire escaping a burnt clearing into the forest beside it, drawn from its
+    # own stream so that every draw above (and so the imagery of a region
+    # without escaped fires) stays as it was.
+    erng = np.random.default_rng(np.random.SeedSequence([cfg.seed, 6]))
+    conversion = (EVENTS["estate_conversion"], EVENTS["holding_conversion"])
+    for i in range(n_main) if cfg.escaped_fire_share > 0 else ():
+        if kind[i] not in conversion or params[i][0] >= cfg.burn_share or erng.uniform() >= cfg.escaped_fire_share:
+            continue
+        g = geoms[i]
+        at = g.boundary.interpolate(erng.uniform(0, 1), normalized=True)
+        r = np.sqrt(erng.uniform(*cfg.escaped_fire_ha) / px_ha / np.pi)
+        blob = _irregular(erng, at.x, at.y, r, 9).difference(g)
+        # The same dry season as the clearing fire.
+        t = min(t_ev[i] + erng.uniform(0.0, 0.1), cfg.last_year + 0.999)
+        if blob.is_empty:
+            continue
+        geoms.append(blob)
+        kind.append(EVENTS["escaped_fire"])
+        year.append(int(np.floor(t)))
+        t_ev.append(float(t))
+        params.append(erng.uniform(0.0, 1.0, 6))
+
     return Landscape(
         height=H,
         width=W,
@@ -264,6 +300,7 @@ def build_landscape(cfg: SimulationConfig) -> Landscape:
         year=np.array([0, *year], dtype=np.int32),
         t_event=np.array([0.0, *t_ev]),
         params=np.vstack([np.full(6, 0.5), *params]) if params else np.full((1, 6), 0.5),
+        n_main=n_main,
     )
 
 
@@ -379,7 +416,7 @@ class Simulator:
             soil[m] = 0.6
 
         # Fire then forest regrowth (pioneers, fast): NOT a conversion.
-        m = (kind == E["fire_regrowth"]) & after
+        m = np.isin(kind, (E["fire_regrowth"], E["escaped_fire"])) & after
         if m.any():
             d = dt[m]
             tau = 1.0 + 1.5 * p[1][m]
@@ -535,3 +572,24 @@ class Simulator:
         cls = class_of_code[kind]
         onset = np.where(cls == LABEL_CODES["conversion"], yr, 0)
         return np.stack([cls, onset, kind, yr, pid]).astype(np.int32)
+
+    def fire_truth(self, r0: int, c0: int, h: int, w: int) -> np.ndarray:
+        """The ``fire`` truth band of a window: (h, w) int32 codes of :data:`plantation.simulation.scenario.FIRE_TRUTH`.
+
+        Whether a conversion clearing burnt is the parcel's first trajectory
+        parameter below ``burn_share``, exactly as :meth:`surface` chars its
+        ground; forest cleared for crops burns below 0.5, as there. The fire's
+        year is the truth's ``event_year`` band.
+        """
+        L = self.landscape
+        pid = L.parcel_ids(r0, c0, h, w)
+        kind = L.kind[pid]
+        p0 = L.params[pid, 0]
+        E, F = EVENTS, FIRE_TRUTH
+        out = np.zeros((h, w), np.int32)
+        conv = np.isin(kind, (E["estate_conversion"], E["holding_conversion"]))
+        out[conv] = np.where(p0[conv] < self.cfg.burn_share, F["clearing_burnt"], F["clearing_not_burnt"])
+        out[kind == E["escaped_fire"]] = F["escaped_fire"]
+        out[kind == E["fire_regrowth"]] = F["forest_fire"]
+        out[(kind == E["cleared_for_crops"]) & (p0 < 0.5)] = F["other_clearing_burnt"]
+        return out

@@ -28,6 +28,22 @@ EVENTS: dict[str, int] = {
     "water": 8,
     "road": 9,
     "old_plantation": 10,
+    "escaped_fire": 11,
+}
+
+#: Codes of the truth raster's ``fire`` band (:meth:`plantation.simulation.landscape.Simulator.fire_truth`).
+FIRE_TRUTH: dict[str, int] = {
+    "none": 0,
+    # A conversion clearing done by fire (charred ground first).
+    "clearing_burnt": 1,
+    # A conversion clearing done by machines (bare soil, no char).
+    "clearing_not_burnt": 2,
+    # Forest next to a burnt clearing that burnt in the same season and regrew (not converted).
+    "escaped_fire": 3,
+    # Forest fire with regrowth not started by a clearing.
+    "forest_fire": 4,
+    # Forest cleared for crops or pasture by fire (not a conversion).
+    "other_clearing_burnt": 5,
 }
 
 #: Class of each event kind in the truth raster (codes of LABEL_CODES).
@@ -43,6 +59,7 @@ _CLASS_OF_EVENT = {
     "water": "other",
     "road": "other",
     "old_plantation": "old_plantation",
+    "escaped_fire": "stable_forest",
 }
 
 QA_CLOUD, QA_SHADOW, QA_FILL = 1, 2, 4
@@ -78,6 +95,9 @@ class SimulationConfig:
     grassland_per_100km2: float = 12.0
     rivers_per_100km2: float = 1.5
     burn_share: float = 0.7
+    # Escaped fire, drawn from its own random stream: 0 leaves every other draw and the imagery as they were.
+    escaped_fire_share: float = 0.0
+    escaped_fire_ha: list[float] = field(default_factory=lambda: [1.0, 6.0])
     # Observation
     cloud_share_by_month: list[float] = field(default_factory=lambda: [0.7, 0.68, 0.62, 0.5, 0.35, 0.25, 0.2, 0.22, 0.3, 0.45, 0.6, 0.7])
     cloud_share_jitter: float = 0.08
@@ -116,6 +136,10 @@ def check_config(cfg: SimulationConfig) -> None:
         raise ConfigError(f"sim.label_error must be in [0, 1), got {cfg.label_error}")
     if any(not 1 <= d <= 365 for d in cfg.composite_doys):
         raise ConfigError(f"sim.composite_doys must lie in 1..365, got {list(cfg.composite_doys)}")
+    if not 0 <= cfg.escaped_fire_share <= 1:
+        raise ConfigError(f"sim.escaped_fire_share must be in [0, 1], got {cfg.escaped_fire_share}")
+    if len(cfg.escaped_fire_ha) != 2 or not 0 < cfg.escaped_fire_ha[0] <= cfg.escaped_fire_ha[1]:
+        raise ConfigError(f"sim.escaped_fire_ha needs [min, max] hectares with 0 < min <= max, got {list(cfg.escaped_fire_ha)}")
     if cfg.block % 16:
         raise ConfigError(f"sim.block must be a multiple of 16 (GeoTIFF tiling), got {cfg.block}")
 

@@ -46,6 +46,10 @@ def _profile(cfg: SimulationConfig, ti: int, tj: int, count: int, dtype: str, no
     return prof
 
 
+#: Bands of a simulated tile's ``truth.tif``, in order (``fire``: codes of :data:`plantation.simulation.scenario.FIRE_TRUTH`).
+TRUTH_BANDS: tuple[str, ...] = ("class", "onset_year", "event", "event_year", "parcel", "fire")
+
+
 def tile_names(cfg: SimulationConfig) -> list[tuple[str, int, int]]:
     """(name, tile row, tile col) for every tile, row-major."""
     return [(f"t{ti * cfg.tiles_x + tj + 1:02d}", ti, tj) for ti in range(cfg.tiles_y) for tj in range(cfg.tiles_x)]
@@ -83,8 +87,8 @@ def write_region(cfg: SimulationConfig, out: str | Path, *, progress: bool = Tru
                 for b, name in enumerate(BANDS, 1):
                     dst.set_band_description(b, name)
                 dst.set_band_description(len(BANDS) + 1, "qa")
-            with rasterio.open(tmp / ti_name / "truth.tif", "w", **{**_profile(cfg, ti, tj, 5, "int32", None), "nodata": None}) as tdst:
-                for b, name in enumerate(("class", "onset_year", "event", "event_year", "parcel"), 1):
+            with rasterio.open(tmp / ti_name / "truth.tif", "w", **{**_profile(cfg, ti, tj, len(TRUTH_BANDS), "int32", None), "nodata": None}) as tdst:
+                for b, name in enumerate(TRUTH_BANDS, 1):
                     tdst.set_band_description(b, name)
                 for wr in range(0, cfg.tile_size, cfg.block):
                     for wc in range(0, cfg.tile_size, cfg.block):
@@ -92,7 +96,7 @@ def write_region(cfg: SimulationConfig, out: str | Path, *, progress: bool = Tru
                         w = min(cfg.block, cfg.tile_size - wc)
                         r0, c0 = ti * cfg.tile_size + wr, tj * cfg.tile_size + wc
                         win = Window(wc, wr, w, h)
-                        tdst.write(sim.truth(r0, c0, h, w), window=win)
+                        tdst.write(np.concatenate([sim.truth(r0, c0, h, w), sim.fire_truth(r0, c0, h, w)[None]]), window=win)
                         st = sim.static(r0 - halo, c0 - halo, h + 2 * halo, w + 2 * halo)
                         for k, dst in enumerate(dsts):
                             rng = np.random.default_rng(np.random.SeedSequence([cfg.seed, 3, r0, c0, k]))
@@ -201,7 +205,7 @@ def _write_plots(cfg: SimulationConfig, folder: Path) -> None:
     parcel_all = np.zeros((height, width), np.int32)
     for name, ti, tj in tile_names(cfg):
         with rasterio.open(folder / name / "truth.tif") as src:
-            _, _, event, event_year, parcel = src.read()
+            event, event_year, parcel = src.read([3, 4, 5])
             transform = src.transform
         parcel_all[ti * ts : (ti + 1) * ts, tj * ts : (tj + 1) * ts] = parcel
         # Every pixel of a parcel carries the parcel's event and year.
