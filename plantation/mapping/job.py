@@ -22,6 +22,7 @@ from plantation.imagery.config import RegionConfig
 from plantation.imagery.region import open_region, open_tile
 from plantation.mapping.catalog import Catalogue
 from plantation.mapping.folder import NOTICE, RECALIBRATION, Manifest, TileResult, file_digest, open_map
+from plantation.mapping.guard import FolderLock, OutputSpaceError, check_room, ensure_writable, is_disk_full, output_bytes, remove_partials
 from plantation.mapping.tiles import Settings, TileJob, input_signature, map_tile_task, tile_key
 from plantation.model.artefact import Artefact, load
 from plantation.model.card import resolve_model
@@ -59,7 +60,13 @@ class MapConfig:
     resume: bool = True
     quicklook: bool = True
     progress: bool = True
+    #: Peak memory of the whole run (this process and its dask workers), MB; window and pixel_batch are lowered to fit it (None: no budget).
+    memory_budget_mb: int | None = None
     engine: EngineConfig = field(default_factory=EngineConfig)
+
+
+def _cores() -> int:
+    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
 
 
 def check_config(cfg: MapConfig) -> None:
@@ -73,6 +80,16 @@ def check_config(cfg: MapConfig) -> None:
         raise ConfigError(f"interval_level: {cfg.interval_level!r} must be in (0, 1) or null")
     if cfg.engine.workers < 0 or cfg.engine.threads < 0:
         raise ConfigError("engine.workers and engine.threads must be 0 or more")
+    if cfg.memory_budget_mb is not None and cfg.memory_budget_mb < 1:
+        raise ConfigError(f"memory_budget_mb: {cfg.memory_budget_mb!r} must be at least 1, or null for no budget")
+    if not cfg.engine.scheduler:
+        # Processes × torch threads beyond the cores of this machine fight for them (a running scheduler's workers are its own business).
+        cores = _cores()
+        procs = max(cfg.engine.workers, 1)
+        threads = _threads_per_worker(cfg, cfg.engine.workers)
+        if procs * threads > cores:
+            what = f"engine.workers={cfg.engine.workers} × engine.threads={threads}" if cfg.engine.workers else f"engine.threads={threads}"
+            raise ConfigError(f"{what}: {procs * threads} torch threads on {cores} cores would fight for them; keep workers × threads at most {cores} (threads=0 divides the cores)")
 
 
 @dataclass
@@ -90,6 +107,11 @@ class MapSummary:
     seconds: float
     workers: int
     mapped_now_pixels: int = 0
+    #: Output pixels per window side and pixels per recurrent pass used (lowered to fit memory_budget_mb when set).
+    window: int = 0
+    pixel_batch: int = 0
+    #: Torch threads of each process that mapped tiles now, as read inside it after its tiles ("here": this process).
+    torch_threads: dict[str, int] = field(default_factory=dict)
 
     def lines(self) -> list[str]:
         out = [
@@ -109,9 +131,92 @@ class MapSummary:
 def _threads_per_worker(cfg: MapConfig, workers: int) -> int:
     if cfg.engine.threads:
         return cfg.engine.threads
-    cores = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
     # Workers × torch threads must not exceed the cores, or they fight.
-    return max(1, cores // max(workers, 1))
+    return max(1, _cores() // max(workers, 1))
+
+
+#: Bytes of a float32.
+F32 = 4
+#: Resident memory of a dask nanny process (it watches and restarts its worker), MB; measured, counted per worker in a budget.
+NANNY_MB = 100
+
+
+def window_bytes(window: int, pixel_batch: int, *, halo: int, dates: int, channels: int, years: int, network: dict[str, Any], networks: int = 1) -> int:
+    """Estimated peak bytes one mapping process spends on windows (beyond the process itself and GDAL's cache).
+
+    With ``side = window + 2·halo``: the reader keeps two windows ahead and
+    the network holds one, each ``dates × side² × (4·channels + 1)`` bytes
+    (float32 features, a validity byte), plus one read in progress (the
+    same again); the network's per-date work holds about three copies of
+    the normalised features and four of the date embeddings, ``dates ×
+    side² × (3·channels + 4·date_width) × 4`` bytes; the yearly summaries and
+    context features ``years × side² × 2·(2·date_width + 2·channels + 1 +
+    conv_width) × 4``; the recurrent part ``pixel_batch × years × 12·hidden
+    × 4`` (embedding, both GRU directions with their gates, the year head);
+    the outputs ``window² × (years + 3) × 4 × (networks + 2)``. A rule of
+    thumb checked by the resource case of the faults benchmark, not a count
+    of every allocation.
+    """
+    side2 = (window + 2 * halo) ** 2
+    d = int(network.get("date_width", 16))
+    conv = int(network.get("conv_width", 32))
+    hidden = int(network.get("hidden", 64))
+    inputs = 4 * dates * side2 * (F32 * channels + 1)
+    per_date = dates * side2 * (3 * channels + 4 * d) * F32
+    yearly = years * side2 * 2 * (2 * d + 2 * channels + 1 + conv) * F32
+    recurrent = pixel_batch * years * 12 * hidden * F32 * networks
+    outputs = window**2 * (years + 3) * F32 * (networks + 2)
+    return int(inputs + per_date + yearly + recurrent + outputs)
+
+
+@dataclass(frozen=True)
+class Budget:
+    """How a memory budget was spent: per process, MB."""
+
+    #: The budget's share of each mapping process (the whole budget in this process; with workers, what is left after this process, divided).
+    share_mb: float
+    #: A mapping process before its first window (measured on this process after loading the model).
+    process_mb: float
+    #: GDAL's block cache, counted in full in each process.
+    gdal_cache_mb: float
+    window: int
+    pixel_batch: int
+    window_mb: float
+
+
+def fit_budget(cfg: MapConfig, *, process_mb: float, halo: int, dates: int, channels: int, years: int, network: dict[str, Any], networks: int) -> Budget:
+    """The largest window (a multiple of 16, at most ``cfg.window``) and pixel batch (at most ``cfg.pixel_batch``) within ``cfg.memory_budget_mb``.
+
+    The rule: with ``w`` worker processes the budget covers this process
+    (``process_mb``) and ``w`` workers, each as large as this process plus
+    its nanny (:data:`NANNY_MB`) plus GDAL's cache plus :func:`window_bytes`;
+    without workers this process maps and the budget covers it plus GDAL's
+    cache plus the windows. The pixel batch shrinks first (down to 256),
+    then the window.
+
+    Raises:
+        ConfigError: not even a 16-pixel window fits, naming what the budget leaves.
+    """
+    budget = float(cfg.memory_budget_mb or 0)
+    workers = cfg.engine.workers if not cfg.engine.scheduler else 0
+    gdal = float(cfg.engine.gdal_cache_mb or 0)
+    share = (budget - process_mb) / workers if workers else budget
+    room = share - process_mb - gdal - (NANNY_MB if workers else 0)
+
+    def mb(win: int, batch: int) -> float:
+        return window_bytes(win, batch, halo=halo, dates=dates, channels=channels, years=years, network=network, networks=networks) / 2**20
+
+    batches = sorted({cfg.pixel_batch, *(b for b in (4096, 2048, 1024, 512, 256) if b < cfg.pixel_batch)}, reverse=True)
+    for win in range(cfg.window - cfg.window % 16, 15, -16):
+        for batch in batches:
+            if mb(win, batch) <= room:
+                return Budget(share, process_mb, gdal, win, batch, mb(win, batch))
+    need = process_mb + gdal + (NANNY_MB if workers else 0) + mb(16, batches[-1])
+    per = f"{share:,.0f} MB per worker" if workers else f"{share:,.0f} MB"
+    raise ConfigError(
+        f"memory_budget_mb: {cfg.memory_budget_mb} MB leaves {per}, less than a mapping process needs with a 16-px window "
+        f"({need:,.0f} MB: {process_mb:,.0f} MB the process itself, {gdal:,.0f} MB GDAL's cache); raise the budget, use fewer engine.workers or a smaller engine.gdal_cache_mb"
+    )
 
 
 def recalibration_of(folder: str, model_digest: str, cutoff_year: int) -> str:
@@ -143,13 +248,30 @@ def plan(cfg: MapConfig) -> tuple[list[TileJob], list[TileResult], Artefact, Set
     digest = file_digest([model_dir / "model.json", model_dir / "model.safetensors"])
     workers = cfg.engine.workers
     level = cfg.interval_level if cfg.interval_level is not None else art.card.interval_level
+    window, pixel_batch = cfg.window, cfg.pixel_batch
+    if cfg.memory_budget_mb is not None:
+        import psutil
+
+        net = art.members[0]
+        budget = fit_budget(
+            cfg,
+            process_mb=psutil.Process().memory_info().rss / 2**20,
+            halo=net.halo,
+            dates=len(art.card.dates),
+            channels=net.n_channels,
+            years=len(art.card.years),
+            network=art.card.network,
+            networks=1 if cfg.distilled and art.distilled is not None else len(art.members),
+        )
+        window, pixel_batch = budget.window, budget.pixel_batch
+        log.info("memory budget %s MB: window %d, pixel_batch %d (%.0f MB per process, %.0f MB of it windows)", cfg.memory_budget_mb, window, pixel_batch, budget.share_mb, budget.window_mb)
     settings = Settings(
         min_clear=cfg.min_clear,
         cutoff_year=cfg.cutoff_year if cfg.cutoff_year is not None else art.card.cutoff_year,
         interval_level=level,
         interval_mass=art.card.calibration.interval_mass(level),
-        window=cfg.window,
-        pixel_batch=cfg.pixel_batch,
+        window=window,
+        pixel_batch=pixel_batch,
         distilled=cfg.distilled,
         threads=_threads_per_worker(cfg, workers) if (workers or cfg.engine.threads) else 0,
         quicklook=cfg.quicklook,
@@ -197,7 +319,9 @@ def _record(manifest: Manifest, catalogue: Catalogue, result: TileResult) -> Non
     catalogue.update(manifest.tiles)
 
 
-def _run_here(jobs: list[TileJob], manifest: Manifest, catalogue: Catalogue, cfg: MapConfig, pixels_of: dict[str, int]) -> list[TileResult]:
+def _run_here(jobs: list[TileJob], manifest: Manifest, catalogue: Catalogue, cfg: MapConfig, pixels_of: dict[str, int]) -> tuple[list[TileResult], dict[str, int]]:
+    import torch
+
     results = []
     tiles_bar = _progress(len(jobs), "tile", "tiles", cfg.progress)
     for job in jobs:
@@ -207,11 +331,25 @@ def _run_here(jobs: list[TileJob], manifest: Manifest, catalogue: Catalogue, cfg
         results.append(res)
         tiles_bar.update(1)
     tiles_bar.close()
-    return results
+    return results, {"here": torch.get_num_threads()}
 
 
-def _run_dask(jobs: list[TileJob], manifest: Manifest, catalogue: Catalogue, cfg: MapConfig, pixels_of: dict[str, int]) -> list[TileResult]:
+def _torch_threads() -> int:
+    import torch
+
+    return torch.get_num_threads()
+
+
+def _run_dask(jobs: list[TileJob], manifest: Manifest, catalogue: Catalogue, cfg: MapConfig, pixels_of: dict[str, int]) -> tuple[list[TileResult], dict[str, int]]:
+    """Tiles as tasks on dask.distributed.
+
+    A worker that dies mid-tile (killed, out of memory) is restarted by its
+    nanny and the scheduler gives its tile to a worker again (up to
+    ``distributed.scheduler.allowed-failures`` times, 3 by default); the
+    tile's temporary files are rewritten from the start by the new attempt.
+    """
     from distributed import Client, LocalCluster, as_completed
+    from distributed.scheduler import KilledWorker
 
     cluster = None
     if cfg.engine.scheduler:
@@ -222,48 +360,82 @@ def _run_dask(jobs: list[TileJob], manifest: Manifest, catalogue: Catalogue, cfg
     results = []
     try:
         futures = [client.submit(map_tile_task, job, pure=False, key=f"map-{job.tile.name}-{job.key[:12]}") for job in jobs]
+        tile_of = {f.key: j.tile.name for f, j in zip(futures, jobs, strict=True)}
         total_px = sum(pixels_of[j.tile.name] for j in jobs)
         with _progress(len(jobs), "tile", "tiles", cfg.progress) as bar:
             t0, done_px = time.perf_counter(), 0
             for fut in as_completed(futures):
-                res = fut.result()
+                try:
+                    res = fut.result()
+                except KilledWorker:
+                    raise PlantationError(
+                        f"tile {tile_of[fut.key]}: every dask worker that took it died (killed, or out of memory?); lower window or engine.workers, or set memory_budget_mb"
+                    ) from None
                 _record(manifest, catalogue, res)
                 results.append(res)
                 done_px += res.pixels
                 bar.set_postfix_str(f"{done_px / max(time.perf_counter() - t0, 1e-9):,.0f} px/s, {done_px:,}/{total_px:,} px")
                 bar.update(1)
+        threads = {str(k): int(v) for k, v in client.run(_torch_threads).items()}
     finally:
         client.close()
         if cluster is not None:
             cluster.close()
-    return results
+    return results, threads
 
 
 def run(cfg: MapConfig) -> MapSummary:
     """Map the region's tiles (skipping those already finished) and return the run's summary.
 
+    The output folder is locked for the run (a second run on it is refused,
+    see :mod:`plantation.mapping.guard`); temporary files a killed run left
+    are removed; the folder must be writable and hold the outputs' estimated
+    size before any tile is mapped. A run that fails removes its temporary
+    files; a full disk is reported in one line.
+
     Raises:
-        PlantationError: the model, a tile or the config is unusable; nothing
-            is written for a tile that fails.
+        PlantationError: the model, a tile or the config is unusable, the
+            folder is busy, read-only or full; nothing is written for a tile
+            that fails.
     """
     t0 = time.perf_counter()
+    check_config(cfg)
     if cfg.engine.gdal_cache_mb:
         # Before GDAL's first read in this process; LocalCluster workers inherit it.
         os.environ.setdefault("GDAL_CACHEMAX", str(int(cfg.engine.gdal_cache_mb)))
-    jobs, done, _art, settings = plan(cfg)
     out = Path(cfg.out_dir)
+    ensure_writable(out)
+    with FolderLock(out):
+        stale = remove_partials(out)
+        if stale:
+            log.info("%s: removed %d temporary files of an earlier run that did not finish", out, len(stale))
+        try:
+            return _run_locked(cfg, out, t0)
+        except BaseException as exc:
+            remove_partials(out)
+            if isinstance(exc, Exception) and not isinstance(exc, PlantationError) and is_disk_full(exc, out):
+                first = str(exc).splitlines()[0] if str(exc) else ""
+                raise OutputSpaceError(f"out_dir: {out}: the disk filled up while writing ({type(exc).__name__}: {first}); free space there and run again (finished tiles are kept)") from exc
+            raise
+
+
+def _run_locked(cfg: MapConfig, out: Path, t0: float) -> MapSummary:
+    jobs, done, _art, settings = plan(cfg)
     manifest = Manifest(out / "manifest.json")
     catalogue = Catalogue(out, name=cfg.region.name)
     pixels_of = {}
     for j in jobs:
         g = open_tile(j.tile, j.region).grid
         pixels_of[j.tile.name] = g.height * g.width
+    concurrent = cfg.engine.workers if cfg.engine.workers and not cfg.engine.scheduler else 1
+    check_room(out, output_bytes(pixels_of.values(), concurrent, cfg.quicklook))
+    threads: dict[str, int] = {}
     if not jobs:
         results: list[TileResult] = []
     elif cfg.engine.workers or cfg.engine.scheduler:
-        results = _run_dask(jobs, manifest, catalogue, cfg, pixels_of)
+        results, threads = _run_dask(jobs, manifest, catalogue, cfg, pixels_of)
     else:
-        results = _run_here(jobs, manifest, catalogue, cfg, pixels_of)
+        results, threads = _run_here(jobs, manifest, catalogue, cfg, pixels_of)
     if not results and manifest.tiles:
         # Nothing mapped now: the Collection still covers the finished tiles (a folder mapped before it was written).
         catalogue.update(manifest.tiles)
@@ -281,6 +453,9 @@ def run(cfg: MapConfig) -> MapSummary:
         seconds=time.perf_counter() - t0,
         workers=cfg.engine.workers,
         mapped_now_pixels=sum(r.pixels for r in results),
+        window=settings.window,
+        pixel_batch=settings.pixel_batch,
+        torch_threads=threads,
     )
     tmp = out / "summary.json.partial"
     tmp.write_text(json.dumps(asdict(summary) | {"notice": NOTICE}, indent=1))
