@@ -120,3 +120,45 @@ def test_vector_file_without_crs(tmp_path):
     pyogrio.raw.write(path, shapely.to_wkb(shapely.points([x], [y])), [np.array(["other"], dtype=object), np.array([0], np.int32)], ["label", "onset_year"], geometry_type="Point", driver="GPKG")
     with pytest.raises(LabelError, match=r"nocrs\.gpkg: the file has no CRS"):
         read_labels(path, grids=GRIDS, years=YEARS)
+
+
+def test_a_byte_order_mark_is_accepted(tmp_path):
+    path = tmp_path / "bom.csv"
+    path.write_bytes(("x,y,label,onset_year\n{},{},conversion,2016\n".format(*lonlat(3, 4))).encode("utf-8-sig"))  # as spreadsheet programs save "CSV UTF-8"
+    ls = read_labels(path, grids=GRIDS, years=YEARS)
+    assert ls.points[["row", "col", "onset_year"]].values.tolist() == [[3, 4, 2016]]
+
+
+def test_a_file_not_in_utf8_names_the_line_and_byte(tmp_path):
+    path = tmp_path / "latin.csv"
+    rows = ["x,y,label,onset_year,note", "{},{},other,,ok".format(*lonlat(1, 1)), "{},{},other,,forêt".format(*lonlat(2, 2))]
+    path.write_bytes("\n".join(rows).encode("latin-1"))
+    with pytest.raises(LabelError, match=r"latin\.csv: line 3: byte 0xea is not UTF-8 text; save the file as UTF-8"):
+        read_labels(path, grids=GRIDS, years=YEARS)
+
+
+def _gpkg(path: Path, geoms: list, geometry_type: str | None) -> Path:
+    wkb = None if geometry_type is None else shapely.to_wkb(np.array(geoms, dtype=object))
+    fields = [np.array(["other"] * max(len(geoms), 1), dtype=object), np.zeros(max(len(geoms), 1), np.int32)]
+    pyogrio.raw.write(path, wkb, fields, ["label", "onset_year"], crs=None if geometry_type is None else CRS, geometry_type=geometry_type, driver="GPKG", layer="pts")
+    return path
+
+
+def test_geopackages_without_a_layer_or_points_are_refused(tmp_path):
+    import sqlite3
+
+    x, y = pixel_centre(1, 1)
+    poly = _gpkg(tmp_path / "poly.gpkg", [shapely.box(x - 5, y - 5, x + 5, y + 5)], "Polygon")
+    with pytest.raises(LabelError, match=r"poly\.gpkg: feature 1: geometry is Polygon, not a point \(1 such\)"):
+        read_labels(poly, grids=GRIDS, years=YEARS)
+    table = _gpkg(tmp_path / "table.gpkg", [], None)
+    with pytest.raises(LabelError, match=r"table\.gpkg: the layer has no geometry"):
+        read_labels(table, grids=GRIDS, years=YEARS)
+    # A GeoPackage whose only layer was dropped: GDAL no longer opens it at all.
+    empty = _gpkg(tmp_path / "empty.gpkg", [shapely.Point(x, y)], "Point")
+    with sqlite3.connect(empty) as con:
+        con.execute("DELETE FROM gpkg_contents")
+        con.execute("DELETE FROM gpkg_geometry_columns")
+        con.execute("DROP TABLE pts")
+    with pytest.raises(LabelError, match=r"empty\.gpkg: the GeoPackage has no layer"):
+        read_labels(empty, grids=GRIDS, years=YEARS)

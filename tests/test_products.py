@@ -28,7 +28,7 @@ import rasterio
 from affine import Affine
 from rasterio.warp import Resampling, reproject
 
-from plantation.errors import ConfigError, RegionError
+from plantation.errors import ConfigError, InputNotFoundError, RegionError
 from plantation.imagery.config import GridConfig, MaskConfig, RegionConfig, ScalingRule, TileConfig
 from plantation.imagery.products import find_scenes, scene_item
 from plantation.imagery.region import AssetWindowReader, open_tile
@@ -224,3 +224,40 @@ def test_bad_product_folders_and_grids_are_refused_naming_the_culprit(tmp_path):
     (tmp_path / "bad.json").write_text('{"type": "nothing"}')
     with pytest.raises(RegionError, match=r"bad\.json: cannot read as STAC"):
         open_tile((r := _region(tmp_path / "bad.json", fmt="stac")).tiles[0], r)
+
+
+def test_a_stac_item_whose_asset_is_missing_is_refused_naming_the_file_and_item(tmp_path):
+    landsat_scene(tmp_path / "scenes", "20190105", np.full((4, 4), 10000, np.uint16), np.full((4, 4), QA_CLEAR))
+    items = [scene_item(s, BANDS) for s in find_scenes(tmp_path / "scenes", BANDS)]
+    path = tmp_path / "items.json"
+    pystac.ItemCollection(items).save_object(dest_href=str(path))
+    region = _region(path, fmt="stac")
+    nir = next((tmp_path / "scenes").glob("*/*_SR_B5.TIF"))
+    nir.rename(nir.with_suffix(".bak"))  # listed in the catalogue, not downloaded
+    with pytest.raises(InputNotFoundError, match=r"items\.json: STAC item 'LC08_L2SP_118060_20190105_20200830_02_T1': the file of asset 'nir' \(band role 'nir'\) does not exist: .*SR_B5\.TIF"):
+        open_tile(region.tiles[0], region)
+    nir.with_suffix(".bak").rename(nir)
+    del items[0].assets["nir"]
+    pystac.ItemCollection(items).save_object(dest_href=str(path))
+    with pytest.raises(RegionError, match=r"items\.json: STAC item 'LC08_.*': no asset for band role 'nir'"):
+        open_tile(region.tiles[0], region)
+
+
+def test_a_product_band_file_corrupt_after_opening_names_the_file_and_date(tmp_path):
+    rng = np.random.default_rng(2)
+    dn = rng.integers(8000, 20000, (64, 64)).astype(np.uint16)
+    folder = landsat_scene(tmp_path / "scenes", "20190105", dn, np.full((64, 64), QA_CLEAR))
+    for f in folder.glob("*.TIF"):  # compressed in strips, as USGS delivers them
+        with rasterio.open(f) as src:
+            arr, prof = src.read(), src.profile
+        prof.update(compress="deflate", blockysize=8)
+        with rasterio.open(f, "w", **prof) as dst:
+            dst.write(arr)
+    region = _region(tmp_path / "scenes")
+    st = open_tile(region.tiles[0], region)
+    assert isinstance(st.reader, AssetWindowReader)
+    red = next(folder.glob("*_SR_B4.TIF"))
+    data = red.read_bytes()
+    red.write_bytes(data[: len(data) // 2] + rng.bytes(len(data) - len(data) // 2))
+    with pytest.raises(RegionError, match=r"SR_B4\.TIF: date 2019-01-05: cannot read rows 56–63"):
+        st.read(56, 0, 8, 8)

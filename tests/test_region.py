@@ -284,3 +284,128 @@ def test_pixel_areas_projected_and_geodesic():
     want = [b**2 * np.radians(1.0) / 2 * (q(hi) - q(lo)) for lo, hi in [(1, 2), (0, 1)]]
     np.testing.assert_allclose(geo.row_areas_m2(), want, rtol=1e-6)
     assert 1.2e10 < want[1] < 1.25e10  # about 12,300 km² (from memory, a 1° cell at the equator)
+
+
+# ------------------------------------------------- bad data inside valid files
+
+
+def _float_stack(folder: Path, values: np.ndarray) -> Path:
+    """One float32 GeoTIFF per date of ``DATES`` (reflectance stored as is), no QA band, no nodata tag."""
+    folder.mkdir(parents=True, exist_ok=True)
+    t, b, h, w = values.shape
+    for k, d in enumerate(DATES[:t]):
+        with rasterio.open(folder / f"scene_{d}.tif", "w", driver="GTiff", width=w, height=h, count=b, dtype="float32", transform=TRANSFORM, crs=CRS) as dst:
+            dst.write(values[k].astype(np.float32))
+    return folder
+
+
+def _both_paths(st):
+    """Reflectance and validity through the lazy arrays and the windowed reader, checked equal."""
+    refl, valid = st.read(0, 0, st.grid.height, st.grid.width)
+    np.testing.assert_array_equal(valid, st.valid.values)
+    np.testing.assert_array_equal(refl, st.reflectance.values)
+    return refl, valid
+
+
+def test_nan_inf_and_implausible_reflectance_are_masked_not_passed_on(tmp_path, tiny_values):
+    from plantation.imagery.region import PLAUSIBLE_REFLECTANCE
+
+    vals = tiny_values.astype(np.float32) * 1e-4
+    vals[0, 0, 1, 1] = np.nan
+    vals[1, 3, 2, 2] = np.inf
+    vals[2, 5, 3, 3] = -np.inf
+    vals[3, 1, 4, 4] = 12.0  # a wrong scale factor's value, far outside 0-1
+    vals[4, 2, 5, 5] = -0.6
+    vals[4, 2, 6, 6] = 1.2  # bright, but a surface can be: kept
+    vals[4, 2, 7, 7] = -0.05  # atmospheric correction's small negative: kept
+    folder = _float_stack(tmp_path / "f", vals)
+    region = RegionConfig(name="f", tiles=[TileConfig(name="t1", path=str(folder))], bands=BANDS, nodata=None, mask=MaskConfig(band=None), scaling=[ScalingRule(None, 1.0, 0.0)], chunk=4)
+    st = open_tile(region.tiles[0], region)
+    refl, valid = _both_paths(st)
+    bad = [(0, 1, 1), (1, 2, 2), (2, 3, 3), (3, 4, 4), (4, 5, 5)]
+    for t, r, c in bad:
+        assert not valid[t, r, c] and np.isnan(refl[t, :, r, c]).all(), (t, r, c)
+    assert valid.sum() == 5 * 64 - len(bad)
+    assert valid[4, 6, 6] and valid[4, 7, 7]
+    low, high = PLAUSIBLE_REFLECTANCE
+    kept = refl.transpose(1, 0, 2, 3)[:, valid]
+    assert np.isfinite(kept).all() and kept.min() >= low and kept.max() <= high
+
+
+def test_saturated_and_all_zero_dates_are_masked(make_region, tiny_values):
+    vals = tiny_values.copy()
+    vals[1, 4, 2, 3] = 32767  # int16's largest value: saturated (3.28 after scaling, out of range too)
+    vals[3] = 0  # a date delivered as zeros: fill, whatever the nodata tag says
+    vals[2, :, 6, 6] = 0  # one pixel of zeros
+    vals[2, 0, 5, 5] = 0  # one band at 0 is a (dark) value: kept
+    region = make_region(values=vals, scaling=[ScalingRule(None, 1e-4, 0.0), ScalingRule("2016-06-01", 1e-4, -0.1)])
+    refl, valid = _both_paths(open_tile(region.tiles[0], region))
+    assert not valid[3].any() and np.isnan(refl[3]).all()
+    assert not valid[1, 2, 3] and not valid[2, 6, 6]
+    assert valid[2, 5, 5] and refl[2, 0, 5, 5] == 0.0
+    assert valid.sum() == 4 * 64 - 2
+
+
+def test_unusable_flags_saturation_of_the_stored_type_even_in_range():
+    from plantation.imagery.region import saturated_value, unusable
+
+    raw = np.array([[[100]], [[65535]]], np.uint16)  # (band, y, x)
+    refl = raw.astype(np.float32) * 1e-5  # 0.655: in range, but the sensor saturated
+    assert saturated_value(np.uint16) == 65535 and saturated_value(np.float32) is None
+    assert unusable(raw, refl, axis=0).tolist() == [[True]]
+    assert unusable(raw[:1], refl[:1], axis=0).tolist() == [[False]]
+
+
+def test_cloud_on_every_date_or_everywhere_reads_without_error(make_region):
+    qa = np.zeros((5, 8, 8), np.int16)
+    qa[:, 2, 2] = 1  # one pixel cloudy on every date
+    qa[1] = 1  # one date cloudy everywhere
+    refl, valid = _both_paths(open_tile((r := make_region(qa=qa)).tiles[0], r))
+    assert not valid[:, 2, 2].any() and not valid[1].any() and valid.sum() == 4 * 63
+    # A tile without one valid pixel opens and reads: every value masked.
+    refl, valid = _both_paths(open_tile((r := make_region(qa=np.ones((5, 8, 8), np.int16))).tiles[0], r))
+    assert not valid.any() and np.isnan(refl).all()
+
+
+# ------------------------------------------------------- files broken mid-run
+
+
+def _break_after_open(path: Path, keep: float = 0.5) -> None:
+    """Overwrite the later part of a file with garbage, as a copy cut short or a bad disk leaves it."""
+    data = path.read_bytes()
+    cut = int(len(data) * keep)
+    path.write_bytes(data[:cut] + np.random.default_rng(0).bytes(len(data) - cut))
+
+
+def test_a_file_corrupt_after_opening_names_the_file_and_date_in_both_read_paths(tmp_path):
+    rng = np.random.default_rng(1)
+    vals = rng.integers(100, 4000, (5, 6, 64, 64)).astype(np.int16)
+    folder = tmp_path / "t1"
+    folder.mkdir()
+    for k, d in enumerate(DATES):  # compressed in strips, as delivered products are: garbage fails to decode
+        prof = {"driver": "GTiff", "width": 64, "height": 64, "count": 7, "dtype": "int16", "transform": TRANSFORM, "crs": CRS, "nodata": -9999, "compress": "deflate", "blockysize": 8}
+        with rasterio.open(folder / f"scene_{d}.tif", "w", **prof) as dst:
+            dst.write(np.concatenate([vals[k], np.zeros((1, 64, 64), np.int16)]))
+    region = RegionConfig(name="c", tiles=[TileConfig(name="t1", path=str(folder))], bands=BANDS, nodata=-9999, mask=MaskConfig(band=7), scaling=[ScalingRule(None, 1e-4, 0.0)], chunk=16)
+    st = open_tile(region.tiles[0], region)
+    _break_after_open(folder / "scene_2016-02-14.tif")
+    refl, _ = st.read(0, 0, 4, 4)  # the file's first strips are intact
+    np.testing.assert_allclose(refl[2], vals[2, :, :4, :4] * 1e-4, rtol=1e-6)
+    with pytest.raises(RegionError, match=r"scene_2016-02-14\.tif: date 2016-02-14: cannot read rows 48–63, cols 0–15 .*truncated or corrupt"):
+        st.read(48, 0, 16, 16)
+    with pytest.raises(RegionError, match=r"scene_2016-02-14\.tif: date 2016-02-14: cannot read rows 48–63"):
+        _ = st.reflectance.isel(y=slice(48, 64), x=slice(0, 16)).values
+    # Cut short rather than overwritten: the same.
+    st = open_tile(region.tiles[0], region)
+    data = (folder / "scene_2017-08-15.tif").read_bytes()
+    (folder / "scene_2017-08-15.tif").write_bytes(data[: len(data) // 3])
+    with pytest.raises(RegionError, match=r"scene_2017-08-15\.tif: date 2017-08-15"):
+        _ = st.valid.values
+
+
+def test_a_truncated_file_at_open_is_refused_naming_it(make_region, tmp_path):
+    region = make_region()
+    f = tmp_path / "t1" / "scene_2016-08-15.tif"
+    f.write_bytes(f.read_bytes()[:200])
+    with pytest.raises(RegionError, match=r"scene_2016-08-15\.tif: cannot read as a raster"):
+        open_tile(region.tiles[0], region)

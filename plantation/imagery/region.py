@@ -870,6 +870,7 @@ def _from_items(tile: TileConfig, region: RegionConfig, items: list[pystac.Item]
     items = [it for it in items if stac_io.solar_day(it) <= end]
     if not items:
         raise RegionError(f"{where}: no scene dated on or before region.end_date {region.end_date}")
+    stac_io.check_assets(items, region.bands, qa_asset, where)
     grid = _tile_grid(tile, items[0], stac_io.role_assets(items[0], region.bands, qa_asset)[region.bands[0]])
     prefer = harmonise_io.reference_sensor(region.harmonise.reference) if region.harmonise.enabled else None
     loaded = stac_io.load_tile(

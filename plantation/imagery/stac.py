@@ -112,6 +112,24 @@ def role_assets(item: pystac.Item, roles: Sequence[str], qa_asset: str | None) -
     return out
 
 
+def check_assets(items: Sequence[pystac.Item], roles: Sequence[str], qa_asset: str | None, where: str) -> None:
+    """Refuse, before any pixel is read, an item without an asset for a band role (or the QA asset named) or whose local asset file is missing.
+
+    Raises:
+        RegionError: an item has no asset for a role; the message names ``where`` (the STAC file or folder) and the item.
+        InputNotFoundError: a local asset's file does not exist.
+    """
+    for it in items:
+        try:
+            keys = role_assets(it, roles, qa_asset)
+        except RegionError as exc:
+            raise RegionError(f"{where}: {exc}") from None
+        for role, key in keys.items():
+            href = it.assets[key].href
+            if "://" not in href and not Path(href).is_file():
+                raise InputNotFoundError(f"{where}: STAC item {it.id!r}: the file of asset {key!r} (band role {role!r}) does not exist: {href}; download it, or leave the item out")
+
+
 def _raster_band(asset: pystac.Asset) -> dict[str, Any]:
     bands = asset.extra_fields.get("raster:bands") or asset.extra_fields.get("bands") or [{}]
     return dict(bands[0])

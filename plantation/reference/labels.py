@@ -74,10 +74,13 @@ def read_table(path: Path, csv_crs: str | None, extra: Sequence[str] = ()) -> tu
         if csv_crs is None:
             raise LabelError(f"{path}: no CRS for the x/y columns; set region.labels.crs (e.g. EPSG:4326)")
         try:
-            table = pd.read_csv(path, dtype={"label": str})
+            # utf-8-sig: a byte-order mark (as spreadsheet programs write) is read and dropped.
+            table = pd.read_csv(path, dtype={"label": str}, encoding="utf-8-sig")
         except pd.errors.EmptyDataError:
             raise LabelError(f"{path}: the labels file is empty") from None
-        except (pd.errors.ParserError, UnicodeDecodeError) as exc:
+        except UnicodeDecodeError:
+            raise LabelError(f"{path}: {_not_utf8(path)}") from None
+        except pd.errors.ParserError as exc:
             raise LabelError(f"{path}: cannot parse as CSV ({str(exc).splitlines()[0]})") from None
         table.columns = [str(c).strip() for c in table.columns]
         missing = [c for c in ("x", "y", "label", "onset_year", *extra) if c not in table.columns]
@@ -101,10 +104,14 @@ def read_table(path: Path, csv_crs: str | None, extra: Sequence[str] = ()) -> tu
         import pyogrio
         import shapely
 
+        if suffix == ".gpkg" and _geopackage_layers(path) == 0:
+            raise LabelError(f"{path}: the GeoPackage has no layer; export the points into it as a point layer")
         try:
             meta, _, geom, fields = pyogrio.raw.read(path)
         except Exception as exc:  # pyogrio raises several error types for unreadable files
             raise LabelError(f"{path}: cannot read as a vector file ({str(exc).splitlines()[0]})") from None
+        if geom is None:
+            raise LabelError(f"{path}: the layer has no geometry (a table without points); export the points as a point layer")
         if meta["crs"] is None:
             raise LabelError(f"{path}: the file has no CRS; assign one when exporting it")
         names = list(meta["fields"])
@@ -115,7 +122,8 @@ def read_table(path: Path, csv_crs: str | None, extra: Sequence[str] = ()) -> tu
         kinds = shapely.get_type_id(pts)
         if len(pts) and (kinds != shapely.GeometryType.POINT).any():
             i = int(np.flatnonzero(kinds != shapely.GeometryType.POINT)[0])
-            raise LabelError(f"{path}: feature {i + 1}: geometry is not a point")
+            kind = "missing" if pts[i] is None else pts[i].geom_type
+            raise LabelError(f"{path}: feature {i + 1}: geometry is {kind}, not a point ({int((kinds != shapely.GeometryType.POINT).sum())} such); labels are points, export centroids")
         table = pd.DataFrame(
             {
                 "x": shapely.get_x(pts),
@@ -128,6 +136,28 @@ def read_table(path: Path, csv_crs: str | None, extra: Sequence[str] = ()) -> tu
         )
         return table, CRS.from_user_input(meta["crs"]), "feature"
     raise LabelError(f"{path}: unsupported labels format {suffix!r}; use .csv, .gpkg or .geojson")
+
+
+def _not_utf8(path: Path) -> str:
+    """Where a file stops being UTF-8 text: its first undecodable byte, by line."""
+    data = path.read_bytes()
+    try:
+        data.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        line = data.count(b"\n", 0, exc.start) + 1
+        return f"line {line}: byte 0x{data[exc.start]:02x} is not UTF-8 text; save the file as UTF-8 (CSV UTF-8 in a spreadsheet program)"
+    return "not UTF-8 text; save the file as UTF-8"
+
+
+def _geopackage_layers(path: Path) -> int | None:
+    """The number of vector layers a GeoPackage lists (None: not a GeoPackage's tables, left to the reader to refuse)."""
+    import sqlite3
+
+    try:
+        with sqlite3.connect(f"file:{path}?mode=ro", uri=True) as con:
+            return int(con.execute("SELECT count(*) FROM gpkg_contents WHERE data_type IN ('features', 'attributes')").fetchone()[0])
+    except sqlite3.Error:
+        return None
 
 
 def read_labels(path: str | Path, *, grids: dict[str, Grid], years: Sequence[int], csv_crs: str | None = "EPSG:4326", inclusion_column: str | None = None) -> LabelSet:
