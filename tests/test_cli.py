@@ -179,3 +179,23 @@ def test_python_dash_m_runs_the_same_command():
     assert one_error_line(res) == "error: unknown verb 'mapp' (did you mean 'map'?); `plantation --help` lists them"
     res = subprocess.run([sys.executable, "-m", "plantation", "--help"], capture_output=True, text=True, timeout=120)
     assert res.returncode == 0 and "readme-figures" in res.stdout
+
+
+# --------------------------------------------------------------------------- --debug
+
+
+def test_debug_prints_the_traceback_of_a_refused_input_above_its_one_line(tmp_path):
+    missing = str(tmp_path / "nowhere.yaml")
+    plain = plantation("survey", f"region={missing}", env={"PLANTATION_DEBUG": ""})
+    assert "nowhere.yaml: region file not found" in one_error_line(plain)
+    for res in (plantation("--debug", "survey", f"region={missing}"), plantation("survey", f"region={missing}", env={"PLANTATION_DEBUG": "1"})):
+        assert res.returncode == 1, res.stderr
+        lines = res.stderr.strip().splitlines()
+        assert lines[0] == "Traceback (most recent call last):" and "InputNotFoundError" in res.stderr
+        assert lines[-1] == one_error_line(plain)  # the same one line, last
+    assert "--debug" in plantation("--help").stdout
+
+
+def test_debug_off_values_of_the_environment_keep_one_line(tmp_path):
+    for value in ("0", "false", "no"):
+        one_error_line(plantation("survey", f"region={tmp_path / 'nowhere.yaml'}", env={"PLANTATION_DEBUG": value}))
