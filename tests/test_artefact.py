@@ -100,7 +100,46 @@ def test_incomplete_card_and_damaged_weights_are_refused(tmp_path):
         artefact.load(tmp_path)
     artefact.save(tmp_path, _card(1), _members(1))
     (tmp_path / "model.safetensors").write_bytes(b"\x10\x00\x00\x00\x00\x00\x00\x00{broken")
+    with pytest.raises(PlantationError, match="model.safetensors: sha256 .* is not the .* recorded in model.json"):
+        artefact.load(tmp_path)
+    # Without a checksum to stop it first, the parser refuses the bytes itself.
+    meta = json.loads((tmp_path / "model.json").read_text())
+    (tmp_path / "model.json").write_text(json.dumps(meta | {"weights_sha256": ""}))
     with pytest.raises(PlantationError, match="cannot read the weights"):
+        artefact.load(tmp_path)
+
+
+def test_checksum_is_recorded_and_checked(tmp_path, caplog):
+    import hashlib
+
+    artefact.save(tmp_path, _card(1), _members(1))
+    meta = json.loads((tmp_path / "model.json").read_text())
+    assert meta["weights_sha256"] == hashlib.sha256((tmp_path / "model.safetensors").read_bytes()).hexdigest()
+    # Another valid weights file of the same shape (other values): refused, though safetensors would read it.
+    other = tmp_path / "other"
+    artefact.save(other, _card(1), [ConvRecurrentNet(**SPEC).eval()])
+    (tmp_path / "model.safetensors").write_bytes((other / "model.safetensors").read_bytes())
+    with pytest.raises(PlantationError, match=r"model.safetensors: sha256 \w{12}… is not the \w{12}… recorded in model.json") as err:
+        artefact.load(tmp_path)
+    assert "\n" not in str(err.value)
+    # A card from before checksums: loaded, with a warning saying to re-export.
+    (tmp_path / "model.json").write_text(json.dumps({k: v for k, v in meta.items() if k != "weights_sha256"}))
+    with caplog.at_level("WARNING"):
+        art = artefact.load(tmp_path)
+    assert art.card.weights_sha256 == "" and "records no checksum" in caplog.text and "re-export" in caplog.text
+
+
+def test_card_with_wrong_types_or_binary_is_refused(tmp_path):
+    artefact.save(tmp_path, _card(1), _members(1))
+    meta = json.loads((tmp_path / "model.json").read_text())
+    (tmp_path / "model.json").write_text(json.dumps(meta | {"bands": "red"}))
+    with pytest.raises(PlantationError, match="model.json: bands is a str, expected a list"):
+        artefact.load(tmp_path)
+    (tmp_path / "model.json").write_text(json.dumps(meta | {"network": SPEC | {"no_such_argument": 1}}))
+    with pytest.raises(PlantationError, match="model.json: the network's settings do not build a network"):
+        artefact.load(tmp_path)
+    (tmp_path / "model.json").write_bytes(b"\x80\x04\x95binary")
+    with pytest.raises(PlantationError, match="model.json: not a model card .*binary"):
         artefact.load(tmp_path)
 
 

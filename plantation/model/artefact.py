@@ -13,13 +13,25 @@ An artefact is two files side by side:
   cutoff year and the package version.
 
 Reading it back uses only ``safetensors`` and ``json``: no code object is
-ever unpickled.
+ever unpickled. A file planted in either place (a pickle, say) is refused as
+data: the card must be UTF-8 JSON of the card's format, and the weights must
+have the sha256 the card records (``weights_sha256``) before safetensors even
+parses them.
+
+Cards written before the checksum existed have none. They are loaded with a
+warning rather than refused: the checksum guards against a weights file
+damaged or swapped after export, not against a forger (who could rewrite the
+card's checksum as well), and safetensors parsing runs no code whatever the
+bytes, so refusing those models would cost users a retraining for no safety
+gained. Re-exporting (``plantation train``) adds the checksum.
 """
 
 from __future__ import annotations
 
+import hashlib
+import logging
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -27,10 +39,12 @@ import numpy as np
 import torch
 from safetensors.torch import load_file, save_file
 
-from plantation.errors import InputNotFoundError, PlantationError
+from plantation.errors import FileFormatError, InputNotFoundError, PlantationError
 from plantation.model.calibration import mutual_information
 from plantation.model.card import CARD, FORMAT, WEIGHTS, Calibration, ModelCard, read_card, write_card
 from plantation.model.network import ConvRecurrentNet
+
+log = logging.getLogger(__name__)
 
 
 @dataclass
@@ -96,9 +110,36 @@ def save(folder: str | Path, card: ModelCard, members: list[ConvRecurrentNet], d
         tensors |= {f"distilled.{k}": v.detach().contiguous().clone() for k, v in distilled.state_dict().items()}
     tmp = folder / (WEIGHTS + ".partial")
     save_file(tensors, str(tmp), metadata={"format": FORMAT})
+    digest = file_sha256(tmp)
     os.replace(tmp, folder / WEIGHTS)
-    write_card(folder, card)
+    write_card(folder, replace(card, weights_sha256=digest))
     return folder
+
+
+def file_sha256(path: Path) -> str:
+    """sha256 (hex) of a file's bytes, read in blocks."""
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for block in iter(lambda: f.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def verify_weights(folder: Path, card: ModelCard) -> None:
+    """Check ``model.safetensors`` against the card's ``weights_sha256`` (a warning for a card without one, see the module docstring).
+
+    Raises:
+        FileFormatError: the bytes differ from those exported.
+    """
+    weights = folder / WEIGHTS
+    if not card.weights_sha256:
+        log.warning("%s: records no checksum of %s (a model exported before checksums); its weights are loaded unchecked, re-export it to add one", folder / CARD, WEIGHTS)
+        return
+    have = file_sha256(weights)
+    if have != card.weights_sha256:
+        raise FileFormatError(
+            f"{weights}: sha256 {have[:12]}… is not the {card.weights_sha256[:12]}… recorded in {CARD}: the file was changed or replaced after export; re-export the model with `plantation train`"
+        )
 
 
 def load(folder: str | Path) -> Artefact:
@@ -106,7 +147,8 @@ def load(folder: str | Path) -> Artefact:
 
     Raises:
         InputNotFoundError: a file is missing.
-        PlantationError: the files are not a plantation model or do not match.
+        FileFormatError: the card is not a plantation model card, the weights'
+            sha256 differs from the card's, or they do not match it.
     """
     folder = Path(folder)
     meta, weights = folder / CARD, folder / WEIGHTS
@@ -114,13 +156,17 @@ def load(folder: str | Path) -> Artefact:
         if not f.is_file():
             raise InputNotFoundError(f"{f.absolute()}: model file not found (export a model with `plantation train`)")
     card = read_card(folder)
+    verify_weights(folder, card)
     try:
         tensors = load_file(str(weights))
     except Exception as exc:  # safetensors raises its own error type for a damaged file
-        raise PlantationError(f"{weights}: cannot read the weights ({str(exc).splitlines()[0]})") from None
+        raise FileFormatError(f"{weights}: cannot read the weights ({str(exc).splitlines()[0]})") from None
 
     def build(spec: dict[str, Any], prefix: str, name: str) -> ConvRecurrentNet:
-        net = build_network(spec)
+        try:
+            net = build_network(spec)
+        except (TypeError, ValueError) as exc:
+            raise FileFormatError(f"{meta}: the network's settings do not build a network ({str(exc).splitlines()[0]}); re-export the model") from None
         state = {k[len(prefix) :]: v for k, v in tensors.items() if k.startswith(prefix)}
         try:
             net.load_state_dict(state)

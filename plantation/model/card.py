@@ -118,6 +118,10 @@ class ModelCard:
     #: The sensor the training imagery was adjusted to (``region.harmonise``),
     #: ``""`` for imagery as stored; None: not recorded (older cards), no check.
     harmonised_to: str | None = None
+    #: sha256 (hex) of ``model.safetensors``, written by
+    #: :func:`plantation.model.artefact.save` and checked by ``load``; ``""``:
+    #: not recorded (cards written before it existed, see ``load``).
+    weights_sha256: str = ""
     format: str = FORMAT
 
 
@@ -176,6 +180,45 @@ def check_date_sensors(card: ModelCard, dates: list[str], sensors: list[str], wh
             raise RegionError(f"{where}: date {d} is {have}, the model was trained with {want} on that date; map imagery with the model's sensor on each date")
 
 
+def first_difference(have: list[Any], want: list[Any]) -> str:
+    """Where two lists first differ, in words: ``item 3 is 'nir' here, 'red' in the model`` (or which one is longer)."""
+    for i, (a, b) in enumerate(zip(have, want, strict=False)):
+        if a != b:
+            return f"item {i + 1} is {a!r} here, {b!r} in the model"
+    if len(have) != len(want):
+        return f"{len(have)} here, {len(want)} in the model"
+    return "none"
+
+
+def check_bands(card: ModelCard, bands: list[str], where: str) -> None:
+    """Refuse imagery whose band roles or band order differ from the training imagery's.
+
+    Raises:
+        RegionError: naming the first band that differs, both lists, and the fix.
+    """
+    if list(bands) != list(card.bands):
+        raise RegionError(
+            f"{where}: bands {list(bands)} are not the model's {card.bands} ({first_difference(list(bands), card.bands)}); list region.bands in the files' order with the model's band roles"
+        )
+
+
+def check_scaling(card: ModelCard, scaling: list[dict[str, Any]], where: str) -> None:
+    """Refuse scaling rules (stored integers → reflectance) other than the training imagery's: they would shift every value the model sees.
+
+    Raises:
+        RegionError: naming the first rule and field that differ, with both values.
+    """
+    if scaling == card.scaling:
+        return
+    detail = first_difference(scaling, card.scaling)
+    for i, (a, b) in enumerate(zip(scaling, card.scaling, strict=False)):
+        if a != b:
+            key = next((k for k in sorted(set(a) | set(b)) if a.get(k) != b.get(k)), "")
+            detail = f"rule {i + 1} has {key} {a.get(key)!r} here, {b.get(key)!r} in the model"
+            break
+    raise RegionError(f"{where}: scaling rules differ from the model's ({detail}); map with the rules the model was trained with (region.scaling)")
+
+
 def resolve_model(path: str | Path) -> Path:
     """The artefact folder of a training run folder (``<run>/model``) or of an artefact folder itself.
 
@@ -211,7 +254,10 @@ def read_card(folder: str | Path) -> ModelCard:
     if not meta.is_file():
         raise InputNotFoundError(f"{meta.absolute()}: model file not found (export a model with `plantation train`)")
     try:
-        raw = json.loads(meta.read_text())
+        raw = json.loads(meta.read_bytes().decode("utf-8"))
+    except UnicodeDecodeError as exc:
+        # A binary file in the card's place (a pickle, say) is data to refuse, never to run.
+        raise FileFormatError(f"{meta}: not a model card (byte {exc.start} is not UTF-8 text; the file is binary); re-export the model with `plantation train`") from None
     except json.JSONDecodeError as exc:
         raise FileFormatError(f"{meta}: not valid JSON ({exc.msg}, line {exc.lineno})") from None
     if not isinstance(raw, dict) or raw.get("format") != FORMAT:
@@ -219,9 +265,14 @@ def read_card(folder: str | Path) -> ModelCard:
         raise FileFormatError(f"{meta}: format {got!r}, expected {FORMAT!r}")
     try:
         raw["calibration"] = Calibration(**raw["calibration"])
-        return ModelCard(**raw)
+        card = ModelCard(**raw)
     except (TypeError, KeyError) as exc:
         raise FileFormatError(f"{meta}: not a complete model card ({exc})") from None
+    kinds = {"bands": list, "indices": list, "scaling": list, "dates": list, "years": list, "network": dict, "members": int, "weights_sha256": str}
+    wrong = [k for k, t in kinds.items() if not isinstance(getattr(card, k), t)]
+    if wrong:
+        raise FileFormatError(f"{meta}: {wrong[0]} is a {type(getattr(card, wrong[0])).__name__}, expected a {kinds[wrong[0]].__name__}; re-export the model")
+    return card
 
 
 def write_validation(folder: str | Path, record: dict[str, Any]) -> Path:

@@ -18,7 +18,7 @@ from plantation.errors import RegionError
 from plantation.imagery.config import ScalingRule
 from plantation.imagery.region import TileStack
 from plantation.model.artefact import Artefact, calibrated_mutual_information
-from plantation.model.card import check_date_sensors, check_harmonisation
+from plantation.model.card import check_bands, check_date_sensors, check_harmonisation, check_scaling
 from plantation.model.network import split_epistemic
 from plantation.model.patches import features
 
@@ -47,29 +47,33 @@ def windows(height: int, width: int, size: int) -> Iterator[tuple[int, int, int,
             yield r, c, min(size, height - r), min(size, width - c)
 
 
+def _span(dates: list[str]) -> str:
+    return f"{dates[0][:4]}-{dates[-1][:4]}" if dates else "none"
+
+
 def check_compatible(art: Artefact, stack: TileStack, scaling: Sequence[ScalingRule] | None = None) -> None:
-    """The tile must have the model's dates, bands and sensors (and, when given, its scaling rules).
+    """The tile must have the model's dates (hence years), bands in the model's order, sensors and harmonisation (and, when given, its scaling rules).
 
     Raises:
-        RegionError: dates, band roles, sensors or scaling rules differ,
-            naming the first difference.
+        RegionError: dates, band roles or their order, sensors or scaling
+            rules differ: the first difference, found here against expected
+            by the model, and the fix.
     """
+    where = f"tile {stack.name!r}"
     dates = [str(d) for d in stack.dates]
     if dates != art.card.dates:
         diff = next((i for i, (a, b) in enumerate(zip(dates, art.card.dates, strict=False)) if a != b), min(len(dates), len(art.card.dates)))
         have = dates[diff] if diff < len(dates) else "none"
         want = art.card.dates[diff] if diff < len(art.card.dates) else "none"
-        raise RegionError(f"tile {stack.name!r}: date {diff + 1} is {have}, the model was trained with {want}; map with the model's dates ({len(art.card.dates)} dates)")
-    bands = [str(b) for b in stack.reflectance["band"].values]
-    if bands != art.card.bands:
-        raise RegionError(f"tile {stack.name!r}: bands {bands} differ from the model's {art.card.bands}")
-    check_date_sensors(art.card, dates, stack.date_sensors(), f"tile {stack.name!r}")
-    check_harmonisation(art.card, stack.harmonised_to, f"tile {stack.name!r}")
+        raise RegionError(
+            f"{where}: date {diff + 1} is {have}, the model was trained with {want} ({len(dates)} dates, years {_span(dates)} here; {len(art.card.dates)} dates, "
+            f"years {_span(art.card.dates)} in the model); map with the model's dates"
+        )
+    check_bands(art.card, [str(b) for b in stack.reflectance["band"].values], where)
+    check_date_sensors(art.card, dates, stack.date_sensors(), where)
+    check_harmonisation(art.card, stack.harmonised_to, where)
     if scaling is not None:
-        have = [asdict(r) for r in scaling]
-        if have != art.card.scaling:
-            # Other scale/offset rules would shift every reflectance the model sees.
-            raise RegionError(f"tile {stack.name!r}: scaling rules {have} differ from the model's {art.card.scaling}; map with the rules the model was trained with")
+        check_scaling(art.card, [asdict(r) for r in scaling], where)
 
 
 def read_window(stack: TileStack, r0: int, c0: int, h: int, w: int, halo: int) -> tuple[np.ndarray, np.ndarray]:

@@ -31,6 +31,7 @@ split, each weighing ``surrogate.weight`` in the loss.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import logging
 import os
@@ -49,7 +50,7 @@ import torch
 from torch.utils.data import DataLoader, TensorDataset
 
 from plantation import __version__
-from plantation.errors import ConfigError
+from plantation.errors import ConfigError, FileFormatError
 from plantation.imagery.config import LabelsConfig, RegionConfig, check_labels_config, population_shares
 from plantation.imagery.region import TileStack, harmonised_to, open_region
 from plantation.model import calibration, runs
@@ -91,6 +92,8 @@ class TrainConfig:
     surrogate: SurrogateConfig = field(default_factory=SurrogateConfig)
     out_dir: str = "outputs/train"
     run_name: str = "run"
+    #: Continue an interrupted run of the same name and inputs (see :func:`prepare_resume`); false: start afresh.
+    resume: bool = True
 
 
 def check_config(cfg: TrainConfig) -> None:
@@ -296,15 +299,50 @@ def member_logits(nets: list[ConvRecurrentNet], s: PatchSet, batch: int = 512) -
     return torch.stack(out)
 
 
+class RandomState(L.Callback):
+    """Keeps the random generators' states in every checkpoint, so a fit resumed from one draws the batches and augmentation an uninterrupted fit would have.
+
+    Lightning restores weights, optimiser, schedule, early stopping and the
+    epoch, but not the generators; without them a resumed member would shuffle
+    and augment differently from the epoch it resumes at. Stored as tensors
+    and plain values, so the checkpoint loads with ``weights_only=True``.
+    """
+
+    def state_dict(self) -> dict[str, Any]:
+        import random
+
+        kind, keys, pos, has_gauss, gauss = np.random.get_state()
+        return {
+            "torch": torch.get_rng_state(),
+            "numpy": {"kind": str(kind), "keys": torch.from_numpy(np.asarray(keys, dtype=np.int64)), "pos": int(pos), "has_gauss": int(has_gauss), "gauss": float(gauss)},
+            "python": random.getstate(),
+        }
+
+    def load_state_dict(self, state_dict: dict[str, Any]) -> None:
+        import random
+
+        torch.set_rng_state(state_dict["torch"])
+        n = state_dict["numpy"]
+        np.random.set_state((n["kind"], n["keys"].numpy().astype(np.uint32), n["pos"], n["has_gauss"], n["gauss"]))
+        random.setstate(state_dict["python"])
+
+
+def last_checkpoint(folder: Path, name: str) -> Path:
+    """The checkpoint of the last finished epoch of a fit named ``name`` (``member<i>``, ``distilled``), which a resumed run continues from."""
+    return folder / "checkpoints" / f"{name}-last.ckpt"
+
+
 def make_trainer(cfg: TrainerConfig, max_epochs: int, patience: int, folder: Path, name: str) -> L.Trainer:
-    """A Lightning trainer with early stopping and a best-validation checkpoint."""
+    """A Lightning trainer with early stopping, a best-validation checkpoint and a last-epoch one (:func:`last_checkpoint`)."""
     from lightning.pytorch.callbacks import EarlyStopping, ModelCheckpoint
     from lightning.pytorch.loggers import CSVLogger
 
     # Lightning's start-up notes (no GPU, logger tips) are noise on a CPU tool.
     for logger in ("lightning.pytorch", "lightning.fabric"):
         logging.getLogger(logger).setLevel(logging.WARNING)
-    ckpt = ModelCheckpoint(dirpath=folder / "checkpoints", filename=name, monitor="val_loss", mode="min", save_top_k=1, enable_version_counter=False)
+    ckpt = ModelCheckpoint(dirpath=folder / "checkpoints", filename=name, monitor="val_loss", mode="min", save_top_k=1, save_last=True, enable_version_counter=False)
+    # Members share one folder: each keeps its own last checkpoint (Lightning's default name, "last", is one for all).
+    ckpt.CHECKPOINT_NAME_LAST = last_checkpoint(folder, name).stem
     strategy: Any = cfg.strategy
     if strategy == "ddp":
         from lightning.pytorch.strategies import DDPStrategy
@@ -317,7 +355,7 @@ def make_trainer(cfg: TrainerConfig, max_epochs: int, patience: int, folder: Pat
         strategy=strategy,
         precision=cfg.precision,  # type: ignore[arg-type]
         max_epochs=max_epochs,
-        callbacks=[ckpt, EarlyStopping(monitor="val_loss", mode="min", patience=patience)],
+        callbacks=[ckpt, EarlyStopping(monitor="val_loss", mode="min", patience=patience), RandomState()],
         logger=CSVLogger(folder, name="logs", version=name),
         enable_progress_bar=cfg.enable_progress_bar,
         enable_model_summary=False,
@@ -325,6 +363,163 @@ def make_trainer(cfg: TrainerConfig, max_epochs: int, patience: int, folder: Pat
         limit_train_batches=cfg.limit_train_batches,
         deterministic=True,
     )
+
+
+#: The record of a run folder's resumable state: the inputs' key and the fits already finished (``checkpoints/resume.json``).
+RESUME = "resume.json"
+RESUME_FORMAT = "plantation-resume/1"
+#: Keys that do not change what a training computes: a rerun that changes only these may resume.
+NOT_CONTENT: tuple[str, ...] = ("out_dir", "run_name", "resume", "trainer.enable_progress_bar", "trainer.log_every_n_steps", "training.threads")
+
+
+def rank() -> int:
+    """This process's rank among DDP's processes (0 for a single process; the processes Lightning starts set the variables)."""
+    return int(os.environ.get("LOCAL_RANK", "0")) + int(os.environ.get("NODE_RANK", "0"))
+
+
+def usable_cores() -> int:
+    """Cores this process may run on (a container's CPU set or ``taskset`` can make them fewer than the machine's)."""
+    return len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+
+
+def threads_per_process(threads: int, processes: int, cores: int | None = None) -> int:
+    """Torch threads for each training process on this machine.
+
+    ``threads`` > 0 is taken as asked, but capped at cores ÷ processes when
+    several processes share the machine; 0 gives each process its share of the
+    cores (at least one). ``cores``: usable cores (default: those this process
+    may run on, which a container or ``taskset`` can make fewer than the machine's).
+    """
+    if cores is None:
+        cores = usable_cores()
+    share = max(1, cores // max(1, processes))
+    return min(threads, share) if threads > 0 and processes > 1 else threads if threads > 0 else share
+
+
+def resume_key(cfg: TrainConfig, samples: PatchSet, start: Start | None = None) -> str:
+    """sha256 over what a training computes from: the config (less :data:`NOT_CONTENT`), the samples' arrays and the start weights.
+
+    A run folder's checkpoints are resumed only by a run with the same key, so
+    a rerun with other labels, settings or imagery starts afresh.
+    """
+    conf = asdict(cfg)
+    for key in NOT_CONTENT:
+        *path, last = key.split(".")
+        d = conf
+        for part in path:
+            d = d[part]
+        d.pop(last, None)
+    h = hashlib.sha256(json.dumps(conf, sort_keys=True, default=str).encode())
+    for a in (samples.x, samples.valid, samples.target, samples.split, samples.weight_or_ones(), samples.dates.astype("datetime64[D]").astype(np.int64)):
+        h.update(np.ascontiguousarray(a).tobytes())
+    if start is not None:
+        h.update(json.dumps(start.spec, sort_keys=True).encode())
+        for state in [*start.members, *([start.distilled] if start.distilled is not None else [])]:
+            for k in sorted(state):
+                h.update(k.encode())
+                h.update(state[k].detach().contiguous().numpy().tobytes())
+    return h.hexdigest()
+
+
+def read_resume(folder: Path) -> dict[str, Any] | None:
+    """``checkpoints/resume.json`` of a run folder (None where absent).
+
+    Raises:
+        FileFormatError: present but not JSON, not UTF-8 or of another kind.
+    """
+    path = folder / "checkpoints" / RESUME
+    if not path.is_file():
+        return None
+    try:
+        doc = json.loads(path.read_bytes().decode("utf-8"))
+    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise FileFormatError(f"{path}: not a resume record ({type(exc).__name__}); delete the folder {folder} or train afresh with resume=false") from None
+    if not isinstance(doc, dict) or doc.get("format") != RESUME_FORMAT or not isinstance(doc.get("finished"), dict):
+        raise FileFormatError(f"{path}: not a resume record of format {RESUME_FORMAT!r}; delete the folder {folder} or train afresh with resume=false")
+    return doc
+
+
+def _write_resume(folder: Path, doc: dict[str, Any]) -> None:
+    path = folder / "checkpoints" / RESUME
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(path.name + ".partial")
+    tmp.write_text(json.dumps(doc, indent=1))
+    os.replace(tmp, path)
+
+
+def prepare_resume(folder: Path, key: str, *, resume: bool) -> dict[str, Any]:
+    """The resume record ``fit`` works from: the folder's own when ``resume`` and its key is ``key``, else a fresh one (the old checkpoints removed).
+
+    Only the first process writes; the others (DDP) read what it decided.
+    """
+    doc = read_resume(folder) if resume else None
+    if doc is not None and doc.get("key") == key:
+        if doc["finished"] or any((folder / "checkpoints").glob("*-last.ckpt")):
+            log.warning("%s: resuming an interrupted training (finished: %s)", folder, ", ".join(doc["finished"]) or "none")
+        return doc
+    doc = {"format": RESUME_FORMAT, "key": key, "finished": {}}
+    if rank() == 0:
+        shutil.rmtree(folder / "checkpoints", ignore_errors=True)
+        _write_resume(folder, doc)
+    return doc
+
+
+def finish(folder: Path, doc: dict[str, Any], name: str, net: torch.nn.Module, epochs: int) -> None:
+    """Record a finished fit: its weights as ``checkpoints/<name>.safetensors`` (no pickle) with their sha256, and its epochs (first process only)."""
+    from safetensors.torch import save_file
+
+    if rank() != 0:
+        return
+    path = folder / "checkpoints" / f"{name}.safetensors"
+    tmp = path.with_name(path.name + ".partial")
+    save_file({k: v.detach().contiguous().clone() for k, v in net.state_dict().items()}, str(tmp))
+    os.replace(tmp, path)
+    doc["finished"][name] = {"epochs": int(epochs), "sha256": hashlib.sha256(path.read_bytes()).hexdigest()}
+    _write_resume(folder, doc)
+
+
+def load_finished(folder: Path, doc: dict[str, Any], name: str, net: torch.nn.Module) -> int:
+    """Load a finished fit's weights into ``net`` (checked against the recorded sha256); its epochs.
+
+    Raises:
+        FileFormatError: the file is missing, changed since it was recorded or does not fit the network.
+    """
+    from safetensors.torch import load_file
+
+    path = folder / "checkpoints" / f"{name}.safetensors"
+    rec = doc["finished"][name]
+    hint = f"delete the folder {folder} or train afresh with resume=false"
+    if not path.is_file() or hashlib.sha256(path.read_bytes()).hexdigest() != rec.get("sha256"):
+        raise FileFormatError(f"{path}: missing or changed since {name} finished (sha256 differs from {RESUME}); {hint}")
+    try:
+        net.load_state_dict(load_file(str(path)))
+    except Exception as exc:  # safetensors and torch raise their own types for a damaged or foreign file
+        raise FileFormatError(f"{path}: does not fit {name}'s network ({str(exc).splitlines()[0]}); {hint}") from None
+    return int(rec["epochs"])
+
+
+def resumable_checkpoint(folder: Path, name: str) -> tuple[Path, int] | None:
+    """The last checkpoint of an interrupted fit and the epochs it holds, checked to load as tensors and plain values only (None: none, start the fit afresh).
+
+    Loaded with ``weights_only=True``: torch's restricted unpickler builds
+    tensors and plain containers and refuses any other object, so a file
+    planted in its place runs no code.
+
+    Raises:
+        FileFormatError: the file is damaged, not a checkpoint, or holds other objects.
+    """
+    path = last_checkpoint(folder, name)
+    if not path.is_file():
+        return None
+    hint = "delete it (the fit restarts) or train afresh with resume=false"
+    try:
+        ck = torch.load(path, map_location="cpu", weights_only=True)
+    except Exception as exc:  # UnpicklingError for foreign objects, RuntimeError for a damaged archive
+        why = "it holds objects other than tensors and plain values" if "weights_only" in str(exc).lower() or "unpickl" in type(exc).__name__.lower() else "unreadable"
+        raise FileFormatError(f"{path}: refused as a checkpoint to resume from ({why}); {hint}") from None
+    if not isinstance(ck, dict) or not {"state_dict", "loops", "epoch"} <= set(ck):
+        raise FileFormatError(f"{path}: not a training checkpoint (no state_dict, loops or epoch); {hint}")
+    return path, int(ck["epoch"]) + 1
 
 
 @dataclass
@@ -359,6 +554,16 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
     probabilities) is needed by ``calibration.prior=inclusion``, the
     region's ``stacks`` by ``bbse``. ``start``: weights to start from (a
     warm start); the calibration is fitted afresh either way.
+
+    Resuming (``cfg.resume``): each fit keeps the checkpoint of its last
+    epoch (``checkpoints/member<i>-last.ckpt``, random states included) and
+    a finished fit's weights go to ``checkpoints/member<i>.safetensors``,
+    recorded in ``checkpoints/resume.json`` with the key of the inputs
+    (:func:`resume_key`). Called again on the same folder and inputs, finished
+    members are loaded rather than trained and the interrupted one continues
+    from its last epoch (:func:`resumable_checkpoint`), so the result is the
+    one an uninterrupted run gives (the slow test in ``tests/test_resume.py``
+    compares them). Other inputs start afresh.
     """
     check_config(cfg)
     train, val = samples.part("train"), samples.part("val")
@@ -372,8 +577,18 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
     nets: list[ConvRecurrentNet] = []
     epochs: list[int] = []
     began = time.perf_counter()
-    is_zero = True
+    is_zero = rank() == 0
+    doc = prepare_resume(folder, resume_key(cfg, samples, start), resume=cfg.resume)
+    # What an interrupted run left and this one took up: "finished", or the epochs of the checkpoint continued from.
+    resumed: dict[str, int | str] = {}
     for m in range(cfg.network.members):
+        name = f"member{m}"
+        if name in doc["finished"]:
+            net = ConvRecurrentNet(**spec)
+            epochs.append(load_finished(folder, doc, name, net))
+            nets.append(net.eval())
+            resumed[name] = "finished"
+            continue
         L.seed_everything(cfg.training.seed * 1000 + m, workers=True, verbose=False)
         t = cfg.training
         task = ConversionTask(
@@ -391,7 +606,10 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
         )
         if start is not None:
             task.net.load_state_dict(carry_weights(start.members[m % len(start.members)], spec).state_dict())
-        trainer = make_trainer(cfg.trainer, cfg.training.max_epochs, cfg.training.patience, folder, f"member{m}")
+        trainer = make_trainer(cfg.trainer, cfg.training.max_epochs, cfg.training.patience, folder, name)
+        last = resumable_checkpoint(folder, name) if cfg.resume else None
+        if last is not None:
+            resumed[name] = last[1]
         with warnings.catch_warnings():
             # One small in-memory dataset: Lightning's advice to add loader workers does not apply.
             warnings.filterwarnings("ignore", message=".*does not have many workers.*")
@@ -400,7 +618,7 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
             warnings.filterwarnings("ignore", message=".*treespec, LeafSpec.*")
             # Members share one checkpoint folder, each with its own file name.
             warnings.filterwarnings("ignore", message=".*exists and is not empty.*")
-            trainer.fit(task, SampleDataModule(samples, cfg.training.batch_size))
+            trainer.fit(task, SampleDataModule(samples, cfg.training.batch_size), ckpt_path=last[0] if last else None, weights_only=True)
         is_zero = trainer.is_global_zero
         best = trainer.checkpoint_callback.best_model_path if trainer.checkpoint_callback else ""
         if best and Path(best).is_file():
@@ -408,6 +626,7 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
             task.load_state_dict(state)
         epochs.append(int(trainer.current_epoch))
         nets.append(task.net.eval())
+        finish(folder, doc, name, task.net, trainer.current_epoch)
     train_seconds = time.perf_counter() - began
 
     # The sample's mix is that of the interpreters' labels (weight 1); rule labels (surrogate) are drawn at random and would blur it.
@@ -424,6 +643,7 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
         cal.conformal_qhat = calibration.conformal_threshold(np.exp(val_lp), val.target, cfg.calibration.conformal_alpha)
     metrics: dict[str, Any] = {
         "train_seconds": round(train_seconds, 1),
+        **({"resumed": resumed} if resumed else {}),
         "epochs": epochs,
         "temperature": round(cal.temperature, 4),
         "val_nll_before_temperature": round(calibration.nll(uncal, val.target), 4),
@@ -470,7 +690,7 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
     student = None
     if cfg.distillation.enabled and len(nets) > 1:
         # After the calibration: the distilled epistemic term is that of the calibrated members.
-        student, metrics["distillation"] = distil(nets, cal, spec, samples, cfg, folder, stacks, start=start.distilled if start is not None else None)
+        student, metrics["distillation"] = distil(nets, cal, spec, samples, cfg, folder, stacks, start=start.distilled if start is not None else None, resume=doc)
     return TrainedModel(nets, spec, cal, metrics, is_zero, student)
 
 
@@ -560,10 +780,13 @@ def distil(
     stacks: Sequence[TileStack],
     *,
     start: dict[str, torch.Tensor] | None = None,
+    resume: dict[str, Any] | None = None,
 ) -> tuple[ConvRecurrentNet | None, dict[str, Any]]:
     """The network distilled from ``nets`` (None when it misses the tolerance) and its record for the card.
 
     ``start``: a parent's distilled network to start from (a warm start) instead of member 0.
+    ``resume``: the run's resume record (:func:`prepare_resume`): a distillation
+    finished before is loaded, an interrupted one continues from its last epoch.
     """
     dc = cfg.distillation
     train, val = samples.part("train"), samples.part("val")
@@ -579,19 +802,28 @@ def distil(
     task = DistillationTask(nets, cal, spec, lr=dc.lr, epistemic_weight=dc.epistemic_weight, max_epochs=dc.max_epochs, date_dropout=cfg.training.date_dropout, weight_decay=cfg.training.weight_decay)
     if start is not None:
         task.net.load_state_dict(carry_weights(start, {**spec, "epistemic": True}).state_dict())
-    trainer = make_trainer(cfg.trainer, dc.max_epochs, dc.patience, folder, "distilled")
-    with warnings.catch_warnings():
-        warnings.filterwarnings("ignore", message=".*does not have many workers.*")
-        warnings.filterwarnings("ignore", message=".*treespec, LeafSpec.*")
-        warnings.filterwarnings("ignore", message=".*exists and is not empty.*")
-        trainer.fit(task, DataLoader(data, batch_size=max(cfg.training.batch_size, 128), shuffle=True, drop_last=True), DataLoader(held, batch_size=256))
-    best = trainer.checkpoint_callback.best_model_path if trainer.checkpoint_callback else ""
-    if best and Path(best).is_file():
-        task.load_state_dict(torch.load(best, map_location="cpu", weights_only=True)["state_dict"])
+    if resume is not None and "distilled" in resume["finished"]:
+        n_epochs = load_finished(folder, resume, "distilled", task.net)
+    else:
+        trainer = make_trainer(cfg.trainer, dc.max_epochs, dc.patience, folder, "distilled")
+        last = resumable_checkpoint(folder, "distilled") if resume is not None else None
+        last_path = last[0] if last else None
+        with warnings.catch_warnings():
+            warnings.filterwarnings("ignore", message=".*does not have many workers.*")
+            warnings.filterwarnings("ignore", message=".*treespec, LeafSpec.*")
+            warnings.filterwarnings("ignore", message=".*exists and is not empty.*")
+            data_loader = DataLoader(data, batch_size=max(cfg.training.batch_size, 128), shuffle=True, drop_last=True)
+            trainer.fit(task, data_loader, DataLoader(held, batch_size=256), ckpt_path=last_path, weights_only=True)
+        best = trainer.checkpoint_callback.best_model_path if trainer.checkpoint_callback else ""
+        if best and Path(best).is_file():
+            task.load_state_dict(torch.load(best, map_location="cpu", weights_only=True)["state_dict"])
+        n_epochs = int(trainer.current_epoch)
+        if resume is not None:
+            finish(folder, resume, "distilled", task.net, n_epochs)
     net = task.net.eval()
     record: dict[str, Any] = {
         "inputs": {"training_patches": len(train), "unlabelled_pixels": len(data) - len(train)},
-        "epochs": int(trainer.current_epoch),
+        "epochs": n_epochs,
         "seconds": round(time.perf_counter() - began, 1),
         "tolerance": {"mean_tv_distance": dc.tolerance},
         "validation": agreement(nets, net, cal, torch.from_numpy(val.x), torch.from_numpy(val.valid)),
@@ -765,6 +997,15 @@ def model_card(cfg: TrainConfig, samples: PatchSet, trained: TrainedModel, label
     )
 
 
+def set_threads(cfg: TrainConfig) -> int:
+    """Set torch's threads for this process (:func:`threads_per_process`: DDP's processes on one machine share its cores, see DEVELOPERS.md); the number set (0: left as torch chose)."""
+    n = threads_per_process(cfg.training.threads, cfg.trainer.devices)
+    if cfg.training.threads > 0 or cfg.trainer.devices > 1:
+        torch.set_num_threads(n)
+        return n
+    return 0
+
+
 def sample_splits(samples: PatchSet) -> dict[tuple[str, int, int], int]:
     """(tile, row, col) → split code of every sample."""
     return {(str(t), int(r), int(c)): int(s) for t, r, c, s in zip(samples.tile, samples.row, samples.col, samples.split, strict=True)}
@@ -798,18 +1039,14 @@ def run(
     caller has already read them.
     """
     check_config(cfg)
-    if cfg.training.threads > 0:
-        torch.set_num_threads(cfg.training.threads)
-    elif cfg.trainer.devices > 1:
-        # Processes on one machine share its cores (see DEVELOPERS.md).
-        torch.set_num_threads(max(1, (os.cpu_count() or 1) // cfg.trainer.devices))
+    threads = set_threads(cfg)
     stacks, labels, samples = loaded if loaded is not None else load_region_samples(cfg, inherit=inherit)
     final = Path(cfg.out_dir) / cfg.run_name
     work = final.with_name(final.name + ".partial")
     # Processes started by DDP re-run this script (LOCAL_RANK / NODE_RANK > 0):
     # only the first process may clear a folder left by an interrupted run.
-    rank = int(os.environ.get("LOCAL_RANK", "0")) + int(os.environ.get("NODE_RANK", "0"))
-    if rank == 0 and work.exists():
+    # With resume, fit keeps its checkpoints when the inputs are the same (and clears them otherwise).
+    if rank() == 0 and work.exists() and not cfg.resume:
         shutil.rmtree(work)
     work.mkdir(parents=True, exist_ok=True)
     trained = fit(samples, cfg, work, stacks=stacks, labels=labels, start=start)
@@ -819,6 +1056,8 @@ def run(
     record.update(lineage or {})
     if after_fit is not None:
         record.update(after_fit(samples, trained))
+    # What each process was given, so a run on a shared machine can be checked for oversubscription.
+    trained.metrics["threads"] = {"torch_per_process": threads or torch.get_num_threads(), "processes_per_machine": cfg.trainer.devices, "usable_cores": usable_cores()}
     split_counts = {name: int((samples.split == i).sum()) for i, name in enumerate(SPLITS)}
     split_counts["dropped_buffer"] = int((samples.split == -1).sum())
     (work / runs.LABELS).write_text(json.dumps({"path": str(labels.path), "fingerprint": labels.fingerprint, "counts": labels.counts(), "split": split_counts}, indent=2))

@@ -30,7 +30,7 @@ from __future__ import annotations
 import re
 import time
 from collections.abc import Callable
-from dataclasses import dataclass, field, fields, replace
+from dataclasses import asdict, dataclass, field, fields, replace
 from pathlib import Path
 from typing import Any
 
@@ -40,7 +40,7 @@ from omegaconf import MISSING
 from plantation.errors import ConfigError, InputNotFoundError
 from plantation.model import artefact as art_io
 from plantation.model import runs
-from plantation.model.card import check_harmonisation, check_sensors, read_card, resolve_model
+from plantation.model.card import check_bands, check_harmonisation, check_scaling, check_sensors, read_card, resolve_model
 from plantation.model.config import CalibrationConfig
 from plantation.model.network import ConvRecurrentNet
 from plantation.model.outcomes import Outcomes
@@ -204,6 +204,11 @@ def run(cfg: RetrainConfig, resolved_config: str | None = None, echo: Callable[[
     card = read_card(model_dir)
     if card.region != cfg.region.name:
         raise ConfigError(f"parent: {parent} was trained on region {card.region!r}, not {cfg.region.name!r}; give region={card.region} (its file, with the grown imagery)")
+    # Before the samples are read: a parent whose inputs differ, or whose files were changed, is refused at once.
+    where = f"region {cfg.region.name!r}"
+    check_bands(card, list(cfg.region.bands), where)
+    check_scaling(card, [asdict(r) for r in cfg.region.scaling], where)
+    old = art_io.load(model_dir)
     warm = cfg.retrain.start == "warm"
     tc = training_config(cfg, warm=warm)
     check_config(tc)
@@ -225,7 +230,6 @@ def run(cfg: RetrainConfig, resolved_config: str | None = None, echo: Callable[[
         echo(line)
     years = [int(y) for y in samples.outcomes.years]
     kind, start = "afresh", None
-    old = art_io.load(model_dir)
     if warm:
         spec = transfer_spec(card.network, network_spec(samples, tc), parent_years=list(card.years), child_years=years)
         kind = "extended" if len(years) > len(card.years) else "warm"

@@ -1,0 +1,238 @@
+"""Training killed and resumed, checkpoints that cannot be trusted, and training's memory and threads.
+
+A killed ``plantation train`` rerun with the same run name continues: the
+members already trained are loaded, the interrupted one goes on from its last
+epoch (:func:`plantation.model.training.fit`). The kill case compares the
+resumed run's test metrics and weights with an uninterrupted run's of the same
+seed (``resume_metric_delta``: the largest absolute difference of a test
+metric). Training is deterministic (``deterministic=True``, the random
+generators' states kept in every checkpoint), so the difference expected is 0.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from plantation.benchmarks.faults import Case, FaultsConfig, Outcome, Ran, Workspace
+from plantation.benchmarks.faults.models import MARKER, pickle_payload, refusal
+
+#: A small training that still has what a resume must get right: two members (one finished, one interrupted), several epochs each.
+QUICK: tuple[str, ...] = (
+    "network.members=2",
+    "training.max_epochs=3",
+    "trainer.limit_train_batches=0.25",
+    "calibration.prior=sample",
+    "distillation.enabled=false",
+    "trainer.enable_progress_bar=false",
+)
+#: Seconds any one training of a case may take.
+TIMEOUT = 1800
+
+
+@dataclass
+class Measured:
+    """A command run to its end while its process tree's memory was sampled."""
+
+    ran: Ran
+    #: Largest sum of the resident set sizes of the process and its descendants seen, MB.
+    peak_rss_mb: float
+
+
+def tree_rss_mb(proc: Any) -> float:
+    """Resident memory of a process and all its descendants, MB (0 once it is gone)."""
+    import psutil
+
+    try:
+        procs = [proc, *proc.children(recursive=True)]
+    except psutil.Error:
+        return 0.0
+    total = 0
+    for p in procs:
+        try:
+            total += p.memory_info().rss
+        except psutil.Error:
+            continue
+    return total / 2**20
+
+
+def run_measured(ws: Workspace, verb: str, *keys: str, log: Path, every: float = 0.1, timeout: float = TIMEOUT) -> Measured:
+    """Run a verb to its end, sampling its process tree's resident memory every ``every`` seconds (psutil)."""
+    import psutil
+
+    began = time.perf_counter()
+    proc = ws.start(verb, *keys, log=log)
+    ps = psutil.Process(proc.pid)
+    peak = 0.0
+    while proc.poll() is None:
+        peak = max(peak, tree_rss_mb(ps))
+        if time.perf_counter() - began > timeout:
+            os.killpg(proc.pid, signal.SIGKILL)
+            proc.wait()
+            break
+        time.sleep(every)
+    text = log.read_text() if log.is_file() else ""
+    return Measured(Ran(proc.returncode, "", text, time.perf_counter() - began), round(peak, 1))
+
+
+def kill_when(proc: subprocess.Popen, ready: Callable[[], bool], timeout: float = TIMEOUT) -> bool:
+    """SIGKILL ``proc``'s process group as soon as ``ready()``; False when the process ended (or timed out) first."""
+    began = time.perf_counter()
+    while proc.poll() is None:
+        if ready():
+            os.killpg(proc.pid, signal.SIGKILL)
+            proc.wait()
+            return True
+        if time.perf_counter() - began > timeout:
+            os.killpg(proc.pid, signal.SIGKILL)
+            proc.wait()
+            return False
+        time.sleep(0.1)
+    return False
+
+
+def _metrics(run: Path) -> dict[str, Any]:
+    return json.loads((run / "metrics.json").read_text())
+
+
+def metric_delta(a: dict[str, Any], b: dict[str, Any]) -> float:
+    """Largest absolute difference between two runs' test metrics, validation NLL and temperature (inf where a key is missing from one)."""
+    keys = [("test", k) for k in a.get("test", {})] + [("val_nll",), ("temperature",)]
+    worst = 0.0
+    for key in keys:
+        va: Any = a
+        vb: Any = b
+        for part in key:
+            va = va.get(part) if isinstance(va, dict) else None
+            vb = vb.get(part) if isinstance(vb, dict) else None
+        if not isinstance(va, (int, float)) or not isinstance(vb, (int, float)):
+            return float("inf")
+        worst = max(worst, abs(float(va) - float(vb)))
+    return worst
+
+
+def killed_mid_member(ws: Workspace, scratch: Path) -> Outcome:
+    """Train cleanly; train again and SIGKILL it one epoch into its second member; rerun; compare."""
+    from plantation.model import artefact
+
+    runs = scratch / "runs"
+    keys = [f"region={ws.region}", f"out_dir={runs}", *QUICK]
+    clean = run_measured(ws, "train", *keys, "run_name=clean", log=scratch / "clean.log")
+    if clean.ran.returncode:
+        return Outcome(False, f"the uninterrupted training failed: {clean.ran.last_line}")
+    ckpts = runs / "killed.partial" / "checkpoints"
+    proc = ws.start("train", *keys, "run_name=killed", log=scratch / "killed.log")
+    if not kill_when(proc, lambda: (ckpts / "member1-last.ckpt").is_file()):
+        return Outcome(False, "the training ended before it could be killed inside its second member", detail={"returncode": proc.returncode})
+    left = json.loads((ckpts / "resume.json").read_text())
+    again = run_measured(ws, "train", *keys, "run_name=killed", log=scratch / "resumed.log")
+    if again.ran.returncode:
+        return Outcome(False, f"the resumed training failed: {again.ran.last_line}", traceback=again.ran.traceback, detail={"finished_when_killed": sorted(left["finished"])})
+    a, b = _metrics(runs / "clean"), _metrics(runs / "killed")
+    delta = metric_delta(a, b)
+    same_weights = (runs / "clean" / "model" / "model.safetensors").read_bytes() == (runs / "killed" / "model" / "model.safetensors").read_bytes()
+    corrupt = 0
+    try:
+        artefact.load(runs / "killed" / "model")
+    except Exception:  # any failure to load is a corrupt output
+        corrupt = 1
+    resumed = b.get("resumed", {})
+    took_up = resumed.get("member0") == "finished" and isinstance(resumed.get("member1"), int)
+    held = took_up and delta == 0 and a["epochs"] == b["epochs"] and same_weights and not corrupt and not (runs / "killed.partial").exists()
+    return Outcome(
+        held=held,
+        message=f"resumed ({resumed}); test metrics differ by at most {delta}, weights {'identical' if same_weights else 'different'}",
+        corrupt_outputs=corrupt,
+        detail={
+            "resume_metric_delta": delta,
+            "weights_identical": same_weights,
+            "finished_when_killed": sorted(left["finished"]),
+            "resumed": resumed,
+            "epochs": {"clean": a["epochs"], "resumed": b["epochs"]},
+            "peak_rss_mb": max(clean.peak_rss_mb, again.peak_rss_mb),
+            "seconds": {"clean": round(clean.ran.seconds, 1), "resumed": round(again.ran.seconds, 1)},
+        },
+    )
+
+
+def checkpoint_pickle(ws: Workspace, scratch: Path) -> Outcome:
+    """Kill a training after its first epoch, plant a pickle as the checkpoint the rerun resumes from: refused in one line, never run."""
+    runs = scratch / "runs"
+    keys = [f"region={ws.region}", f"out_dir={runs}", "run_name=r", *QUICK]
+    last = runs / "r.partial" / "checkpoints" / "member0-last.ckpt"
+    proc = ws.start("train", *keys, log=scratch / "killed.log")
+    if not kill_when(proc, last.is_file):
+        return Outcome(False, "the training ended before its first checkpoint could be replaced", detail={"returncode": proc.returncode})
+    last.write_bytes(pickle_payload(scratch / MARKER))
+    r = ws.cli("train", *keys, timeout=TIMEOUT)
+    out = refusal(r, scratch, names="member0-last.ckpt")
+    if (runs / "r").exists():
+        out.held, out.corrupt_outputs = False, out.corrupt_outputs + 1
+    return out
+
+
+def resume_record_damaged(ws: Workspace, scratch: Path) -> Outcome:
+    """Kill a training after its first epoch and put binary bytes in its resume record: the rerun refuses in one line naming it."""
+    runs = scratch / "runs"
+    keys = [f"region={ws.region}", f"out_dir={runs}", "run_name=r", *QUICK]
+    ckpts = runs / "r.partial" / "checkpoints"
+    proc = ws.start("train", *keys, log=scratch / "killed.log")
+    if not kill_when(proc, (ckpts / "member0-last.ckpt").is_file):
+        return Outcome(False, "the training ended before it could be killed", detail={"returncode": proc.returncode})
+    (ckpts / "resume.json").write_bytes(pickle_payload(scratch / MARKER))
+    r = ws.cli("train", *keys, timeout=TIMEOUT)
+    return refusal(r, scratch, names="resume.json")
+
+
+def ddp_threads_and_memory(ws: Workspace, scratch: Path) -> Outcome:
+    """Two DDP processes on this machine: each gets cores ÷ processes torch threads, and the whole tree stays within the memory budget."""
+    budget = FaultsConfig().memory_budget_mb
+    runs = scratch / "runs"
+    keys = [f"region={ws.region}", f"out_dir={runs}", "run_name=ddp", "trainer=ddp_cpu", "network.members=1", "training.max_epochs=1", *QUICK[2:]]
+    m = run_measured(ws, "train", *keys, log=scratch / "ddp.log")
+    if m.ran.returncode:
+        return Outcome(False, f"DDP training failed: {m.ran.last_line}", traceback=m.ran.traceback, detail={"peak_rss_mb": m.peak_rss_mb})
+    t = _metrics(runs / "ddp")["threads"]
+    fits = t["torch_per_process"] * t["processes_per_machine"] <= t["usable_cores"] or t["torch_per_process"] == 1
+    held = fits and m.peak_rss_mb <= budget
+    return Outcome(
+        held=held,
+        message=f"{t['processes_per_machine']} processes x {t['torch_per_process']} torch threads on {t['usable_cores']} cores; peak {m.peak_rss_mb} MB for the tree (budget {budget} MB)",
+        detail={"peak_rss_mb": m.peak_rss_mb, "memory_budget_mb": budget, **t, "seconds": round(m.ran.seconds, 1)},
+    )
+
+
+def peak_rss(ws: Workspace, scratch: Path) -> Outcome:
+    """A quick training with the full pipeline (distillation, the bbse prior from the region's pixels) within the memory budget."""
+    budget = FaultsConfig().memory_budget_mb
+    runs = scratch / "runs"
+    keys = [f"region={ws.region}", f"out_dir={runs}", "run_name=mem", "network.members=2", "training.max_epochs=2", "distillation.max_epochs=2", "trainer.enable_progress_bar=false"]
+    m = run_measured(ws, "train", *keys, log=scratch / "train.log")
+    if m.ran.returncode:
+        return Outcome(False, f"training failed: {m.ran.last_line}", traceback=m.ran.traceback, detail={"peak_rss_mb": m.peak_rss_mb})
+    return Outcome(
+        held=m.peak_rss_mb <= budget,
+        message=f"peak {m.peak_rss_mb} MB (budget {budget} MB) in {m.ran.seconds:.0f} s",
+        detail={"peak_rss_mb": m.peak_rss_mb, "memory_budget_mb": budget, "seconds": round(m.ran.seconds, 1)},
+    )
+
+
+CASES: list[Case] = [
+    Case(
+        "train_killed_mid_member",
+        "kill",
+        "`plantation train` (2 members) SIGKILLed one epoch into its second member, then rerun: the first member is kept, the second continues, and metrics and weights equal an uninterrupted run's",
+        killed_mid_member,
+    ),
+    Case("train_checkpoint_pickle", "model_file", "a pickle planted as the last checkpoint a killed training resumes from: the rerun refuses it in one line, the pickle never runs", checkpoint_pickle),
+    Case("train_resume_record_damaged", "bad_input", "binary bytes in a killed training's resume record: the rerun refuses it in one line naming the file", resume_record_damaged),
+    Case("train_ddp_threads", "resource", "DDP training, two processes on one machine: threads x processes within the cores, the tree's peak memory within budget", ddp_threads_and_memory),
+    Case("train_peak_rss", "resource", "a quick training with distillation and the bbse prior: peak resident memory of the process tree within the budget", peak_rss),
+]
