@@ -205,6 +205,14 @@ def benchmark_plots(cfg: DictConfig) -> None:
     print(f"written to {pc.result}")
 
 
+def benchmark_evidence(cfg: DictConfig) -> None:
+    from plantation.benchmarks.evidence import EvidenceBenchConfig, run, summary_lines
+
+    ec = to_object(cfg, EvidenceBenchConfig)
+    print("\n".join(summary_lines(run(ec))))
+    print(f"written to {ec.result}")
+
+
 def benchmark_faults(cfg: DictConfig) -> None:
     from plantation.benchmarks.faults import FaultsConfig, run
 
@@ -239,6 +247,7 @@ VERBS: dict[str, Verb] = {
         Verb("benchmark-labels", "benchmark_labels", "what to label next, wrong labels, rule labels, warm starts and a new year, scored on a held-out region", benchmark_labels),
         Verb("benchmark-read", "benchmark_read", "peak memory of reading a large stack window by window, and delivered product folders against pre-stacked GeoTIFFs", benchmark_read),
         Verb("benchmark-plots", "benchmark_plots", "check the farm-plot verdicts against the simulated region's truth", benchmark_plots),
+        Verb("benchmark-evidence", "benchmark_evidence", "time drawing evidence pages for many flagged plots, with their peak memory", benchmark_evidence),
         Verb("benchmark-faults", "benchmark_faults", "kill runs, feed bad, broken and untrusted files, and check every one is survived or refused cleanly", benchmark_faults),
         Verb("readme-figures", "readme_figures", "rewrite the README's figure tables from the JSON the jobs wrote (check=true: only check)", readme_figures),
     )

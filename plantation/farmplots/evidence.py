@@ -382,129 +382,421 @@ def page_text(ev: PlotEvidence, row: dict[str, Any], cutoff_date: date, plot_lev
     return lines
 
 
-def draw_page(ev: PlotEvidence, row: dict[str, Any], cutoff_date: date, *, plot_level: float, map_level: float | None, years: Sequence[int], dpi: int = 80) -> bytes:
-    """The page as PNG bytes (matplotlib, Agg, a bare Figure: no pyplot state)."""
-    from matplotlib.colors import BoundaryNorm, ListedColormap
-    from matplotlib.dates import date2num
-    from matplotlib.figure import Figure
-    from matplotlib.patches import Patch
+#: Size of a page: inches across per chip column (at least four columns), height in inches, dots per inch.
+_COL_INCHES, _PAGE_INCHES, _DPI = 2.3, 10.4, 80
+#: Chip labels by position: (a) the first chip, (b) the next...
+_LETTERS = "abcdefghijklmnopqrstuvwxyz"
 
-    n = max(len(ev.chip_dates), 1)
-    cols = max(n, 4)
-    fig = Figure(figsize=(2.3 * cols + 0.4, 10.4))
-    gs = fig.add_gridspec(4, cols, height_ratios=[1.2, 1.0, 1.0, 1.1], left=0.04, right=0.985, top=0.93, bottom=0.05, hspace=0.55, wspace=0.12)
-    pid = str(row.get("id"))
-    fig.suptitle(f"Plot {pid}: evidence of conversion after {cutoff_date.isoformat()}", fontsize=12, fontweight="bold", x=0.04, ha="left")
-    h, w = ev.inside.shape
 
-    def outline(ax: Any) -> None:
-        for ring in ev.outline:
-            ax.plot(ring[:, 0] - 0.5, ring[:, 1] - 0.5, color=OUTLINE, linewidth=1.6)
-        ax.set_xlim(-0.5, w - 0.5)
-        ax.set_ylim(h - 0.5, -0.5)
+def _year_rgb(onset_map: np.ndarray, years: Sequence[int], cut_year: int) -> tuple[np.ndarray, dict[int, str]]:
+    """The map window as RGB (h, w, 3) in 0–1: each onset year its colour of :func:`year_colours` over ``years``, other classes pale grey, no data white; and the colour of each year."""
+    from matplotlib.colors import to_rgb
+
+    colour = dict(zip(years, year_colours(years, cut_year), strict=True))
+    base = np.where(onset_map == -1, 1.0, 0.88).astype(np.float32)
+    rgb = np.repeat(base[..., None], 3, axis=-1)
+    for y in np.unique(onset_map[onset_map > 0]):
+        rgb[onset_map == y] = to_rgb(colour[int(y)])
+    return rgb, colour
+
+
+def _rings_line(rings: Sequence[np.ndarray], offsets: Sequence[float]) -> tuple[np.ndarray, np.ndarray]:
+    """Every ring at every x offset as one polyline broken by NaN (x, y in the axes' data units: pixel centres at integers)."""
+    xs, ys = [], []
+    for x0 in offsets:
+        for ring in rings:
+            xs.extend([ring[:, 0] - 0.5 + x0, [np.nan]])
+            ys.extend([ring[:, 1] - 0.5, [np.nan]])
+    return (np.concatenate(xs), np.concatenate(ys)) if xs else (np.empty(0), np.empty(0))
+
+
+class PageCanvas:
+    """One figure drawn once and reused from page to page: what every page shares is drawn once, a page redraws only what is its own.
+
+    The axes, their ticks and labels, the chips' caption and the index axis
+    (the region's dates, fixed limits) are drawn once into a background; a
+    page restores it, updates the data of a fixed set of artists (map and
+    chip images, outlines, spans, series, markers; ``set_data``) and draws
+    only those. The words (titles, the verdict's numbers, chip dates, the
+    legend) are set with the same font (DejaVu Sans, as matplotlib's
+    default) on the finished pixels, since matplotlib lays text out glyph
+    by glyph in Python and that was most of a page's time. The PNG is
+    written from the pixels with zlib level 1.
+
+    Args:
+        cols: chip columns (at least 4).
+        dates: every acquisition date (``datetime64[D]``); the index axis spans them and the map's years.
+        years: the map's years (the legend's colours and the index axis).
+        cutoff_date: the cutoff, drawn on the index axis.
+    """
+
+    def __init__(self, cols: int, dates: np.ndarray, years: Sequence[int], cutoff_date: date, dpi: int = _DPI) -> None:
+        from matplotlib.backends.backend_agg import FigureCanvasAgg
+        from matplotlib.dates import date2num
+        from matplotlib.figure import Figure
+        from matplotlib.lines import Line2D
+        from matplotlib.patches import Rectangle
+
+        self.cols, self.dpi, self.cutoff_date = cols, dpi, cutoff_date
+        self.years = sorted(int(y) for y in years)
+        self.fig = fig = Figure(figsize=(_COL_INCHES * cols + 0.4, _PAGE_INCHES), dpi=dpi)
+        self.canvas = FigureCanvasAgg(fig)
+        self.gs = gs = fig.add_gridspec(4, cols, height_ratios=[1.2, 1.0, 1.0, 1.1], left=0.04, right=0.985, top=0.93, bottom=0.05, hspace=0.55, wspace=0.12)
+
+        # The map window: one RGB image (onset years, other classes pale, no data white) and the plot's outline.
+        self.map_ax = ax = fig.add_subplot(gs[0, 0])
         ax.set_xticks([])
         ax.set_yticks([])
+        self.map_img = ax.imshow(np.ones((2, 2, 3), np.float32), interpolation="nearest")
+        self.map_line = Line2D([], [], color=OUTLINE, linewidth=1.6)
+        ax.add_line(self.map_line)
 
-    # The map window: onset years split at the cutoff, other classes pale, no data white.
-    ax = fig.add_subplot(gs[0, 0])
-    yrs = sorted(set(int(y) for y in years) | {int(y) for y in np.unique(ev.onset_map[ev.onset_map > 0])})
-    cut_year = cutoff_date.year if (cutoff_date.month, cutoff_date.day) == (12, 31) else cutoff_date.year - 1
-    if yrs:
-        cmap = ListedColormap(year_colours(yrs, cut_year))
-        norm = BoundaryNorm(np.arange(yrs[0] - 0.5, yrs[-1] + 1.0), cmap.N) if len(yrs) > 1 else None
-        base = np.where(ev.onset_map == -1, 1.0, 0.88)
-        ax.imshow(np.dstack([base, base, base]), interpolation="nearest")
-        conv = np.ma.masked_array(ev.onset_map, mask=ev.onset_map <= 0)
-        ax.imshow(conv, cmap=cmap, norm=norm, interpolation="nearest", vmin=None if norm else yrs[0] - 0.5, vmax=None if norm else yrs[0] + 0.5)
-        shown = [y for y in yrs if (ev.onset_map == y).any()]
-        handles = [Patch(facecolor=c, label=str(y)) for y, c in zip(shown, year_colours(shown, cut_year), strict=True)] if shown else []
-        handles.append(Patch(facecolor="#e0e0e0", label="not converted"))
-        ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.02, 1.0), fontsize=6.5, frameon=False, title="onset year", title_fontsize=7, borderaxespad=0)
-    outline(ax)
-    ax.set_title(f"Map: onset year (tile {ev.tile})", fontsize=8.5)
+        # The chips of a row in one image, all outlines of the row in one line.
+        self.chip_ax, self.chip_img, self.chip_line = [], [], []
+        for r in range(2):
+            cax = fig.add_subplot(gs[1 + r, :])
+            cax.set_xticks([])
+            cax.set_yticks([])
+            for sp in cax.spines.values():
+                sp.set_visible(False)
+            self.chip_ax.append(cax)
+            self.chip_img.append(cax.imshow(np.ones((2, 2, 3), np.float32), interpolation="nearest"))
+            line = Line2D([], [], color=OUTLINE, linewidth=1.4)
+            cax.add_line(line)
+            self.chip_line.append(line)
 
-    # The numbers, in words.
-    # Words as figure text, not an axes: an axes costs more to draw than its text.
-    box = gs[0, 2:].get_position(fig) if cols >= 3 else gs[0, 1:].get_position(fig)
-    body = "\n".join(textwrap.fill(s, width=int(31 * (cols - 2) + 8)) for s in page_text(ev, row, cutoff_date, plot_level, map_level))
-    fig.text(box.x0 - 0.04 * box.width, box.y1 + 0.01, body, va="top", ha="left", fontsize=7.6, linespacing=1.3)
+        # The plot's median indices through time: the axis is the region's dates and the map's years, the same on every page.
+        self.ts = ts = fig.add_subplot(gs[3, :])
+        d = np.asarray(dates, dtype="datetime64[D]")
+        lo = min(date2num(d.min()), date2num(date(self.years[0], 1, 1))) if len(d) else date2num(date(self.years[0], 1, 1))
+        hi = max(date2num(d.max()), date2num(date(self.years[-1] + 1, 1, 1))) if len(d) else date2num(date(self.years[-1] + 1, 1, 1))
+        pad = 0.05 * (hi - lo)  # matplotlib's default margin
+        ts.set_xlim(lo - pad, hi + pad)
+        ts.set_ylim(-1.0, 1.0)
+        ts.set_yticks([-1.0, -0.5, 0.0, 0.5, 1.0])
+        ts.set_ylabel("index", fontsize=8)
+        ts.xaxis_date()
+        ts.tick_params(labelsize=7)
+        ts.grid(alpha=0.25)
+        xform = ts.get_xaxis_transform()
+        self.span_interval = Rectangle((0, 0), 0, 1, transform=xform, color="#f7c873", alpha=0.35, lw=0)
+        self.span_onset = Rectangle((0, 0), 0, 1, transform=xform, color="#e8872c", alpha=0.45, lw=0)
+        self.cutoff_line = Line2D([date2num(cutoff_date)] * 2, [0, 1], transform=xform, color="black", linestyle="--", linewidth=1.3)
+        self.ndvi = Line2D([], [], linestyle="-", marker="o", color="#1b7837", markersize=3.5, linewidth=1.1)
+        self.nbr = Line2D([], [], linestyle="-", marker="s", color="#762a83", markersize=3.0, linewidth=1.1)
+        self.not_clear = Line2D([], [], linestyle="none", marker="|", color="#999999", markersize=6)
+        self.chip_marks = Line2D([], [], transform=xform, color="#00a0b8", linewidth=0.8)
+        for p in (self.span_interval, self.span_onset):
+            ts.add_patch(p)
+        for ln in (self.cutoff_line, self.ndvi, self.nbr, self.not_clear, self.chip_marks):
+            ts.add_line(ln)
+        fig.text(
+            0.04,
+            ts.get_position().y1 + 0.052,
+            "Chips: true colour = red, green, blue (reflectance 0–0.15 each); false colour = SWIR1, NIR, red as red, green, blue "
+            "(0–0.40, 0–0.50, 0–0.15):\nvegetation green, cleared land magenta to brown. Grey: no clear observation on that date. Cyan outline: the plot.",
+            fontsize=7,
+            va="bottom",
+            color="#444444",
+        )
 
-    labels = "abcdefghij"
-    # All chips of a row in one image (one axes per row: each axes costs more to draw than its pixels).
-    gap = max(1, w // 8)
-    picks = ev.chip_dates
-    span = len(picks) * w + (len(picks) - 1) * gap
-    for r, (arr, name) in enumerate(((ev.true_colour, "true colour"), (ev.false_colour, "false colour"))):
+        # The background: everything but the artists a page updates (and the map's frame, which moves with its window's shape).
+        self.dynamic = [self.map_img, self.map_line, *self.chip_img, *self.chip_line, self.span_interval, self.span_onset, self.cutoff_line, self.ndvi, self.nbr, self.not_clear, self.chip_marks]
+        frame = list(ax.spines.values())
+        for a in self.dynamic + frame:
+            a.set_visible(False)
+        self.canvas.draw()
+        self.background = self.canvas.copy_from_bbox(fig.bbox)
+        for a in self.dynamic + frame:
+            a.set_visible(True)
+        xlo, xhi = ts.get_xlim()
+        self.grid = [t.gridline for t in ts.xaxis.get_major_ticks() if xlo <= t.get_loc() <= xhi] + [t.gridline for t in ts.yaxis.get_major_ticks() if -1.0 <= t.get_loc() <= 1.0]
+        self.width, self.height = (int(v) for v in self.canvas.get_width_height())
+
+    # ------------------------------------------------------------------ text on the pixels
+
+    def _xy(self, display: tuple[float, float]) -> tuple[float, float]:
+        """matplotlib display coordinates (origin bottom left) → pixel coordinates (origin top left)."""
+        return float(display[0]), self.height - float(display[1])
+
+    def _fig_xy(self, fx: float, fy: float) -> tuple[float, float]:
+        return self._xy(self.fig.transFigure.transform((fx, fy)))
+
+    # ------------------------------------------------------------------ one page
+
+    def draw(self, ev: PlotEvidence, row: dict[str, Any], *, plot_level: float, map_level: float | None) -> bytes:
+        """The page of one plot as PNG bytes."""
+        from matplotlib.dates import date2num
+        from PIL import Image
+
+        fig, cutoff_date = self.fig, self.cutoff_date
+        self.canvas.restore_region(self.background)
+        h, w = ev.inside.shape
+        cut_year = cutoff_date.year if (cutoff_date.month, cutoff_date.day) == (12, 31) else cutoff_date.year - 1
+        yrs = sorted(set(self.years) | {int(y) for y in np.unique(ev.onset_map[ev.onset_map > 0])})
+
+        # The map window.
+        ax = self.map_ax
+        rgb, colour = _year_rgb(ev.onset_map, yrs, cut_year)
+        self.map_img.set_data(rgb)
+        self.map_img.set_extent((-0.5, w - 0.5, h - 0.5, -0.5))
+        ax.set_xlim(-0.5, w - 0.5)
+        ax.set_ylim(h - 0.5, -0.5)
+        ax.apply_aspect()
+        self.map_line.set_data(*_rings_line(ev.outline, [0.0]))
+        for a in (self.map_img, self.map_line, *ax.spines.values()):
+            fig.draw_artist(a)
+
+        # The chips.
+        picks = ev.chip_dates
+        gap = max(1, w // 8)
+        span = len(picks) * w + (len(picks) - 1) * gap
+        for r, arr in enumerate((ev.true_colour, ev.false_colour)):
+            if not picks:
+                break
+            row_img = np.ones((h, span, 3), np.float32)
+            for k in range(len(picks)):
+                row_img[:, k * (w + gap) : k * (w + gap) + w] = arr[k]
+            cax = self.chip_ax[r]
+            self.chip_img[r].set_data(row_img)
+            self.chip_img[r].set_extent((-0.5, span - 0.5, h - 0.5, -0.5))
+            cax.set_xlim(-0.5, span - 0.5)
+            cax.set_ylim(h - 0.5, -0.5)
+            cax.apply_aspect()
+            self.chip_line[r].set_data(*_rings_line(ev.outline, [k * (w + gap) for k in range(len(picks))]))
+            fig.draw_artist(self.chip_img[r])
+            fig.draw_artist(self.chip_line[r])
+
+        # The plot's median NDVI and NBR through time.
+        ts = self.ts
+        x = date2num(ev.dates.astype("datetime64[D]"))
+        spans = []
+        if ev.onset_lo is not None and ev.onset_hi is not None:
+            x0 = date2num(date(ev.onset_lo, 1, 1))
+            self.span_interval.set_x(x0)
+            self.span_interval.set_width(date2num(date(ev.onset_hi + 1, 1, 1)) - x0)
+            spans.append(self.span_interval)
+        if ev.onset_year is not None:
+            x0 = date2num(date(ev.onset_year, 1, 1))
+            self.span_onset.set_x(x0)
+            self.span_onset.set_width(date2num(date(ev.onset_year + 1, 1, 1)) - x0)
+            spans.append(self.span_onset)
+        ok = ev.clear
+        self.ndvi.set_data(x[ok], ev.ndvi[ok])
+        self.nbr.set_data(x[ok], ev.nbr[ok])
+        self.not_clear.set_data(x[~ok], np.full(int((~ok).sum()), -0.95))
+        marks = np.array([[x[t], x[t], np.nan] for t in picks]).ravel() if picks else np.empty(0)
+        self.chip_marks.set_data(marks, np.tile([0.0, 1.0, np.nan], len(picks)))
+        # In matplotlib's order: spans, then the grid, then the lines, then the frame.
+        for a in (*spans, *(self.grid if spans else []), self.cutoff_line, self.ndvi, self.nbr, self.not_clear, self.chip_marks, *(ts.spines.values() if spans else [])):
+            fig.draw_artist(a)
+
+        # The words, set on the pixels.
+        px = np.array(np.asarray(self.canvas.buffer_rgba())[..., :3])
+        paint = _Painter(px, self.dpi)
+        pid = str(row.get("id"))
+        paint.text(self._fig_xy(0.04, 0.98), f"Plot {pid}: evidence of conversion after {cutoff_date.isoformat()}", 12, va="top", bold=True)
+        bb = ax.get_window_extent()
+        pad = 6 * self.dpi / 72  # axes.titlepad
+        paint.text(self._xy(((bb.x0 + bb.x1) / 2, bb.y1 + pad)), f"Map: onset year (tile {ev.tile})", 8.5, ha="center")
+        self._legend(paint, bb, [(str(y), colour[y]) for y in yrs if (ev.onset_map == y).any()])
+        box = self.gs[0, 2:].get_position(fig) if self.cols >= 3 else self.gs[0, 1:].get_position(fig)
+        body = "\n".join(textwrap.fill(s, width=int(31 * (self.cols - 2) + 8)) for s in page_text(ev, row, cutoff_date, plot_level, map_level))
+        paint.text(self._fig_xy(box.x0 - 0.04 * box.width, box.y1 + 0.01), body, 7.6, va="top", linespacing=1.3)
+        for r, name in enumerate(("true colour", "false colour")):
+            if not picks:
+                break
+            cax = self.chip_ax[r]
+            for k, t in enumerate(picks):
+                if ev.onset_year is None:
+                    role = "before cutoff" if k == 0 and ev.before is not None else "after cutoff"
+                else:
+                    role = "before onset year" if k == 0 and ev.before is not None else "from onset year on"
+                label = f"({_LETTERS[k]}) {_day(ev.dates[t])}" + (f"\n{role}" if r == 0 else "")
+                paint.text(self._xy(cax.transData.transform((k * (w + gap) + w / 2 - 0.5, -1.0))), label, 7.5, ha="center", va="bottom")
+            cb = cax.get_window_extent()
+            # The y label: rotated a quarter turn, axes.labelpad (4 points) left of the axes, centred on it.
+            paint.text(self._xy((cb.x0 - 4 * self.dpi / 72, (cb.y0 + cb.y1) / 2)), name, 8, ha="right", va="center", vertical=True)
         if not picks:
-            break
-        row_img = np.ones((h, span, 3), np.float32)
-        for k in range(len(picks)):
-            row_img[:, k * (w + gap) : k * (w + gap) + w] = arr[k]
-        cax = fig.add_subplot(gs[1 + r, :])
-        cax.imshow(row_img, interpolation="nearest", extent=(-0.5, span - 0.5, h - 0.5, -0.5))
+            cell = self.gs[1, :].get_position(fig)
+            paint.text(self._fig_xy(cell.x0, (cell.y0 + cell.y1) / 2), "No clear view of the plot in the imagery: no chip to show.", 9)
+        xform = ts.get_xaxis_transform()
         for k, t in enumerate(picks):
-            x0 = k * (w + gap)
-            for ring in ev.outline:
-                cax.plot(ring[:, 0] - 0.5 + x0, ring[:, 1] - 0.5, color=OUTLINE, linewidth=1.4)
-            if ev.onset_year is None:
-                role = "before cutoff" if k == 0 and ev.before is not None else "after cutoff"
-            else:
-                role = "before onset year" if k == 0 and ev.before is not None else "from onset year on"
-            label = f"({labels[k]}) {_day(ev.dates[t])}" + (f"\n{role}" if r == 0 else "")
-            cax.text(x0 + w / 2 - 0.5, -1.0, label, fontsize=7.5, ha="center", va="bottom")
-        cax.set_xlim(-0.5, span - 0.5)
-        cax.set_ylim(h - 0.5, -0.5)
-        cax.set_xticks([])
-        cax.set_yticks([])
-        for sp in cax.spines.values():
-            sp.set_visible(False)
-        cax.set_ylabel(name, fontsize=8)
-    if not ev.chip_dates:
-        cax = fig.add_subplot(gs[1, :])
-        cax.axis("off")
-        cax.text(0.0, 0.5, "No clear view of the plot in the imagery: no chip to show.", fontsize=9)
-    ts = fig.add_subplot(gs[3, :])
-    fig.text(
-        0.04,
-        ts.get_position().y1 + 0.052,
-        "Chips: true colour = red, green, blue (reflectance 0–0.15 each); false colour = SWIR1, NIR, red as red, green, blue "
-        "(0–0.40, 0–0.50, 0–0.15):\nvegetation green, cleared land magenta to brown. Grey: no clear observation on that date. Cyan outline: the plot.",
-        fontsize=7,
-        va="bottom",
-        color="#444444",
-    )
+            paint.text(self._xy(xform.transform((x[t], 0.97))), f"({_LETTERS[k]})", 7, ha="center", va="top", colour="#007a8c", box="white")
+        # A caption in words rather than a legend box: the same key, a fraction of the drawing time.
+        span_words = f"orange: mapped onset year {ev.onset_year}; pale orange: its interval {ev.onset_lo}–{ev.onset_hi}; " if ev.onset_year is not None else ""
+        tb = ts.get_window_extent()
+        paint.text(
+            self._xy(((tb.x0 + tb.x1) / 2, tb.y1 + pad)),
+            "The plot's median NDVI (green dots) and NBR (purple squares) on each clear view; grey ticks: dates not clear;\n"
+            f"{span_words}dashed: the cutoff {cutoff_date.isoformat()}; cyan: the chips' dates",
+            7.8,
+            ha="center",
+        )
+        buf = io.BytesIO()
+        # zlib level 1: much less time than the default level, files within a few per cent (the chips' pixels hardly compress).
+        Image.fromarray(px).save(buf, format="PNG", compress_level=1)
+        return buf.getvalue()
 
-    # The plot's median NDVI and NBR through time.
-    x = date2num(ev.dates.astype("datetime64[D]").astype(object))
-    if ev.onset_lo is not None and ev.onset_hi is not None:
-        ts.axvspan(date2num(date(ev.onset_lo, 1, 1)), date2num(date(ev.onset_hi + 1, 1, 1)), color="#f7c873", alpha=0.35, lw=0, label=f"onset interval {ev.onset_lo}–{ev.onset_hi}")
-    if ev.onset_year is not None:
-        ts.axvspan(date2num(date(ev.onset_year, 1, 1)), date2num(date(ev.onset_year + 1, 1, 1)), color="#e8872c", alpha=0.45, lw=0, label=f"mapped onset year {ev.onset_year}")
-    ts.axvline(date2num(cutoff_date), color="black", linestyle="--", linewidth=1.3, label=f"cutoff {cutoff_date.isoformat()}")
-    ok = ev.clear
-    ts.plot(x[ok], ev.ndvi[ok], "-o", color="#1b7837", markersize=3.5, linewidth=1.1, label="NDVI (plot median)")
-    ts.plot(x[ok], ev.nbr[ok], "-s", color="#762a83", markersize=3.0, linewidth=1.1, label="NBR (plot median)")
-    ts.plot(x[~ok], np.full(int((~ok).sum()), -0.95), "|", color="#999999", markersize=6, label="date not clear")
-    for k, t in enumerate(ev.chip_dates):
-        ts.axvline(x[t], color="#00a0b8", linewidth=0.8)
-        ts.text(x[t], 0.97, f"({labels[k]})", fontsize=7, ha="center", va="top", color="#007a8c", transform=ts.get_xaxis_transform(), backgroundcolor="white")
-    ts.set_ylim(-1.0, 1.0)
-    ts.set_yticks([-1.0, -0.5, 0.0, 0.5, 1.0])
-    ts.set_ylabel("index", fontsize=8)
-    ts.xaxis_date()
-    ts.tick_params(labelsize=7)
-    ts.grid(alpha=0.25)
-    # A caption in words rather than a legend box: the same key, a fraction of the drawing time.
-    span_words = f"orange: mapped onset year {ev.onset_year}; pale orange: its interval {ev.onset_lo}–{ev.onset_hi}; " if ev.onset_year is not None else ""
-    ts.set_title(
-        "The plot's median NDVI (green dots) and NBR (purple squares) on each clear view; grey ticks: dates not clear;\n"
-        f"{span_words}dashed: the cutoff {cutoff_date.isoformat()}; cyan: the chips' dates",
-        fontsize=7.8,
-    )
-    buf = io.BytesIO()
-    # zlib level 1: a seventh less drawing time, files within a few per cent of the default level's (the chips' pixels hardly compress).
-    fig.savefig(buf, format="png", dpi=dpi, pil_kwargs={"compress_level": 1})
-    return buf.getvalue()
+    def _legend(self, paint: _Painter, bb: Any, entries: list[tuple[str, str]]) -> None:
+        """The map's key beside it, as matplotlib's legend at (1.02, 1) of the axes without a frame: a title, a swatch per onset year shown, and the other classes."""
+        entries = entries + [("not converted", "#e0e0e0")]
+        fs = 6.5 * self.dpi / 72  # legend spacings are in font sizes
+        x0, y = self._xy((bb.x1 + 0.02 * bb.width, bb.y1))
+        x0, y = x0 + 0.4 * fs, y + 0.4 * fs  # borderpad
+        body = 2.8 * fs + max(paint.width(s, 6.5) for s, _ in entries)  # handlelength + handletextpad + text
+        y = paint.text((x0 + body / 2, y), "onset year", 7, ha="center", va="top")
+        for label, c in entries:
+            y += 0.5 * fs  # labelspacing
+            top = y
+            y = paint.text((x0 + 2.8 * fs, y), label, 6.5, va="top")
+            mid = (top + y) / 2
+            paint.fill(x0, mid - 0.35 * fs, x0 + 2.0 * fs, mid + 0.35 * fs, c)
+
+
+#: Rasterised text lines kept per process (:meth:`_Painter._line`), and how many at most.
+_LINES: dict[tuple[str, float, bool, int], tuple[np.ndarray, float, float, float, float]] = {}
+_LINES_KEPT = 2048
+
+
+class _Painter:
+    """Text and boxes on an RGB page (uint8 (h, w, 3), origin top left), with matplotlib's fonts, hinting and line layout.
+
+    Each line is laid out and rasterised by FreeType in one call
+    (:class:`matplotlib.ft2font.FT2Font`, the font matplotlib itself uses)
+    and blended onto the pixels in the text's colour.
+    """
+
+    def __init__(self, pixels: np.ndarray, dpi: int) -> None:
+        self.px, self.dpi = pixels, dpi
+
+    @staticmethod
+    def _font(size_pt: float, bold: bool, dpi: int) -> Any:
+        from matplotlib.font_manager import FontProperties, findfont, get_font
+
+        font = get_font(findfont(FontProperties(family="DejaVu Sans", weight="bold" if bold else "normal")))
+        font.set_size(size_pt, dpi)
+        return font
+
+    def _line(self, s: str, size_pt: float, bold: bool) -> tuple[np.ndarray, float, float, float, float]:
+        """One line laid out and rasterised: coverage (h, w) uint8, width, ascent, descent and the bitmap's x offset, pixels (kept: titles, dates and legend entries recur from page to page)."""
+        from matplotlib.backends.backend_agg import get_hinting_flag
+
+        key = (s, size_pt, bold, self.dpi)
+        got = _LINES.get(key)
+        if got is None:
+            font = self._font(size_pt, bold, self.dpi)
+            font.set_text(s, 0.0, flags=get_hinting_flag())
+            w, h = font.get_width_height()
+            d = font.get_descent() / 64.0
+            font.draw_glyphs_to_bitmap(antialiased=True)
+            got = (np.array(font.get_image()), w / 64.0, h / 64.0 - d, d, font.get_bitmap_offset()[0] / 64.0)
+            if len(_LINES) >= _LINES_KEPT:
+                _LINES.clear()
+            _LINES[key] = got
+        return got
+
+    def width(self, s: str, size_pt: float, bold: bool = False) -> float:
+        return self._line(s, size_pt, bold)[1]
+
+    def fill(self, x0: float, y0: float, x1: float, y1: float, colour: str) -> None:
+        from matplotlib.colors import to_rgb
+
+        r0, r1 = max(int(round(y0)), 0), min(int(round(y1)), self.px.shape[0])
+        c0, c1 = max(int(round(x0)), 0), min(int(round(x1)), self.px.shape[1])
+        if r1 > r0 and c1 > c0:
+            self.px[r0:r1, c0:c1] = np.round(np.asarray(to_rgb(colour)) * 255).astype(np.uint8)
+
+    def text(
+        self,
+        xy: tuple[float, float],
+        text: str,
+        size_pt: float,
+        *,
+        ha: str = "left",
+        va: str = "baseline",
+        bold: bool = False,
+        colour: str = "black",
+        linespacing: float = 1.2,
+        box: str | None = None,
+        vertical: bool = False,
+    ) -> float:
+        """Text at pixel ``xy``, aligned as matplotlib aligns it (``va``: top, bottom, center, or the last line's baseline); lines centred when ``ha`` is center.
+
+        ``box`` fills a background of that colour with matplotlib's 4-point
+        pad first; ``vertical`` turns the text a quarter turn (reading
+        upwards; ``ha`` and ``va`` then apply to the turned block). Returns the
+        pixel row of the block's bottom edge (unturned text).
+        """
+        from matplotlib.colors import to_rgb
+
+        font = self._font(size_pt, bold, self.dpi)
+        os2 = font.get_sfnt_table("OS/2")
+        scale = size_pt * self.dpi / 72 / font.get_sfnt_table("head")["unitsPerEm"]
+        asc_min, desc_min = os2["sTypoAscender"] * scale, -os2["sTypoDescender"] * scale
+        lines = text.split("\n")
+        # matplotlib's layout: with several lines, each is linespacing × the font's height, its ink centred in it.
+        step = linespacing * (asc_min + desc_min) if len(lines) > 1 else None
+        laid = []
+        y = 0.0
+        d = 0.0
+        for s in lines:
+            glyphs, w, a, d, xo = self._line(s, size_pt, bold)
+            if step is not None:
+                lead = step - (a + d)
+                a, d = a + lead / 2, d + lead / 2
+            laid.append((glyphs, w, y + a, xo))
+            y += a + d
+        total_h, last_d = y, d
+        total_w = max((w for _, w, _, _ in laid), default=0.0)
+        bw, bh = (total_h, total_w) if vertical else (total_w, total_h)
+        x, yy = xy
+        left = {"left": x, "center": x - bw / 2, "right": x - bw}[ha]
+        top = {"top": yy, "bottom": yy - bh, "center": yy - bh / 2}.get(va, yy - (total_h - last_d))
+        if box is not None:
+            pad = 4 * self.dpi / 72
+            self.fill(left - pad, top - pad, left + bw + pad, top + bh + pad, box)
+        rgb = np.asarray(to_rgb(colour), np.float32) * 255
+        for (glyphs, w, base, xo), s in zip(laid, lines, strict=True):
+            if not s:
+                continue
+            desc = self._line(s, size_pt, bold)[3]
+            lx = (total_w - w) / 2 if ha == "center" else 0.0
+            # The bitmap's bottom row sits at the baseline plus the descent.
+            r0, c0 = base + desc - glyphs.shape[0], lx + xo
+            if vertical:
+                # A quarter turn anticlockwise: (row, col) of the block → (total_w - col, row).
+                r0, c0 = top + total_w - (c0 + glyphs.shape[1]), left + r0
+                glyphs = np.rot90(glyphs)
+            else:
+                r0, c0 = top + r0, left + c0
+            self._blend(glyphs, int(round(r0)), int(round(c0)), rgb)
+        return top + bh
+
+    def _blend(self, alpha: np.ndarray, r0: int, c0: int, rgb: np.ndarray) -> None:
+        h, w = alpha.shape
+        ra, ca = max(r0, 0), max(c0, 0)
+        rb, cb = min(r0 + h, self.px.shape[0]), min(c0 + w, self.px.shape[1])
+        if rb <= ra or cb <= ca:
+            return
+        a = alpha[ra - r0 : rb - r0, ca - c0 : cb - c0, None].astype(np.float32) / 255.0
+        dst = self.px[ra:rb, ca:cb]
+        dst[...] = np.round(dst * (1.0 - a) + rgb * a).astype(np.uint8)
+
+
+_CANVASES: dict[tuple[Any, ...], PageCanvas] = {}
+
+
+def draw_page(ev: PlotEvidence, row: dict[str, Any], cutoff_date: date, *, plot_level: float, map_level: float | None, years: Sequence[int], dpi: int = _DPI) -> bytes:
+    """The page as PNG bytes (matplotlib's Agg canvas, no pyplot state), drawn on this process's :class:`PageCanvas` for the page's layout (made once, then reused)."""
+    cols = max(len(ev.chip_dates), 4)
+    key = (cols, dpi, cutoff_date, tuple(int(y) for y in years), ev.dates.tobytes())
+    canvas = _CANVASES.get(key)
+    if canvas is None:
+        if len(_CANVASES) >= 4:  # a few layouts at most in one run; don't let figures pile up
+            _CANVASES.clear()
+        canvas = _CANVASES[key] = PageCanvas(cols, ev.dates, years, cutoff_date, dpi)
+    return canvas.draw(ev, row, plot_level=plot_level, map_level=map_level)
 
 
 # --------------------------------------------------------------------------- the pages
