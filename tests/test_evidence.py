@@ -32,7 +32,9 @@ from plantation.farmplots.evidence import (
     FALSE_COLOUR,
     TRUE_COLOUR,
     EvidenceConfig,
+    PageCanvas,
     choose_dates,
+    draw_page,
     gather,
     page_name,
     page_text,
@@ -42,6 +44,7 @@ from plantation.farmplots.evidence import (
 from plantation.imagery.config import LabelsConfig, MaskConfig, RegionConfig, ScalingRule, TileConfig
 from plantation.imagery.region import open_tile
 from plantation.mapping.folder import FORMAT
+from plantation.mapping.styles import year_colours
 from tests.conftest import BANDS, CRS, TRANSFORM, write_map_tile, write_stack
 
 SIDE = 16
@@ -207,6 +210,76 @@ def test_page_names_are_plain_and_distinct() -> None:
     # Two ids that clean to the same text still get two files.
     a, b = page_name("a b", taken), page_name("a:b", taken)
     assert a != b
+
+
+# --------------------------------------------------------------------------- the drawn page
+
+ROW = {
+    "id": "P-conv",
+    "verdict": "strong_evidence",
+    "expected_after_ha": 2.92,
+    "after_lo_ha": 3.24,
+    "after_hi_ha": 3.24,
+    "mapped_ha": 3.24,
+    "share_after": 0.9,
+    "reasons": ["at least 3.24 ha converted"],
+}
+
+
+def _pixels(png: bytes) -> np.ndarray:
+    import io
+
+    with Image.open(io.BytesIO(png)) as im:
+        return np.asarray(im.convert("RGB"))
+
+
+def _count(px: np.ndarray, rgb01: np.ndarray) -> int:
+    """Pixels of the page of this colour (a chip or map colour in 0–1), to within one 8-bit step (rounding or truncation)."""
+    want = np.asarray(rgb01, np.float64) * 255
+    return int((np.abs(px.astype(np.float64) - want) <= 1.0).all(-1).sum())
+
+
+def test_the_page_shows_the_map_colours_and_the_chips_pixels(region: RegionConfig, tmp_path: Path) -> None:
+    from matplotlib.colors import to_rgb
+
+    maps = write_map(tmp_path / "maps")
+    stack = open_tile(region.tiles[0], region)
+    cutoff = date(2020, 12, 31)
+    ev = gather(box(5, 5, 11, 11), maps / "t1.tif", stack, region.bands, cutoff, EvidenceConfig(views_after=3, margin=2, min_window=12))
+    px = _pixels(draw_page(ev, ROW, cutoff, plot_level=0.9, map_level=0.8, years=[2019, 2020, 2021, 2022]))
+    # The map window and the key's swatch in the colour of 2021 among the map's years, split at the cutoff (the QGIS style's colours).
+    onset_colour = to_rgb(year_colours([2019, 2020, 2021, 2022], 2020)[2])
+    assert _count(px, onset_colour) > 300
+    # The chips are the imagery's pixels: bare soil after the clearing (chip b), forest before it (chip a), drawn block by block.
+    soil, forest = ev.true_colour[1][5, 5], ev.true_colour[0][5, 5]
+    assert not np.allclose(soil, forest)
+    assert _count(px, soil) > 300 and _count(px, forest) > 300
+    assert _count(px, ev.false_colour[1][5, 5]) > 300
+
+
+def test_a_reused_canvas_draws_each_page_as_a_fresh_one(region: RegionConfig, tmp_path: Path) -> None:
+    import dataclasses
+
+    maps = write_map(tmp_path / "maps")
+    stack = open_tile(region.tiles[0], region)
+    cutoff = date(2020, 12, 31)
+    cfg = EvidenceConfig(views_after=3, margin=2, min_window=12)
+    conv = gather(box(5, 5, 11, 11), maps / "t1.tif", stack, region.bands, cutoff, cfg)
+    forest = gather(box(0, 0, 3, 3), maps / "t1.tif", stack, region.bands, cutoff, cfg)
+    no_chips = dataclasses.replace(conv, before=None, after=[])
+    years = [2019, 2020, 2021, 2022]
+    first = draw_page(conv, ROW, cutoff, plot_level=0.9, map_level=0.8, years=years)
+    other = draw_page(forest, {"id": "P-forest", "verdict": "review"}, cutoff, plot_level=0.9, map_level=0.8, years=years)
+    bare = draw_page(no_chips, ROW, cutoff, plot_level=0.9, map_level=0.8, years=years)
+    again = draw_page(conv, ROW, cutoff, plot_level=0.9, map_level=0.8, years=years)
+    # Nothing of the pages between lingers: the same plot gives the same bytes, and the same as on a canvas of its own.
+    assert again == first
+    assert PageCanvas(4, conv.dates, years, cutoff).draw(conv, ROW, plot_level=0.9, map_level=0.8) == first
+    assert other != first
+    # A page without chips shows none, not the chips of the page before.
+    px = _pixels(bare)
+    assert _count(px, conv.true_colour[1][5, 5]) == 0 and _count(px, conv.true_colour[0][5, 5]) == 0
+    assert _count(_pixels(first), conv.true_colour[1][5, 5]) > 300
 
 
 # --------------------------------------------------------------------------- through the plot check
