@@ -18,11 +18,17 @@ from pathlib import Path
 import pytest
 import torch
 
-from plantation.benchmarks.faults.models import pickle_payload
-from plantation.errors import FileFormatError, PlantationError
+from plantation.benchmarks.faults.models import Payload, pickle_payload
+from plantation.errors import FileFormatError, PlantationError, RegionError
+from plantation.imagery.config import ScalingRule
+from plantation.imagery.region import open_region
 from plantation.model import artefact, training
+from plantation.model.card import check_bands
+from plantation.model.inference import check_compatible
+from plantation.model.network import ConvRecurrentNet
 from plantation.model.training import load_finished, resumable_checkpoint
-from tests.test_artefact import _card, _members
+from tests.conftest import BANDS, DATES
+from tests.test_artefact import SPEC, _card, _members
 
 PACKAGE = Path(__file__).resolve().parents[1] / "plantation"
 
@@ -64,8 +70,6 @@ def test_pickle_planted_as_the_checkpoint_to_resume_is_refused_and_never_runs(tm
     if form == "raw pickle":
         path.write_bytes(pickle_payload(marker))
     else:
-        from plantation.benchmarks.faults.models import Payload
-
         torch.save({"state_dict": {}, "loops": {}, "epoch": 0, "hook": Payload(marker)}, path)
     with pytest.raises(FileFormatError, match=r"member0-last.ckpt: refused as a checkpoint to resume from \(it holds objects other than tensors") as err:
         resumable_checkpoint(tmp_path, "member0")
@@ -102,15 +106,6 @@ def test_finished_member_changed_after_it_was_recorded_is_refused(tmp_path):
 
 
 def test_mismatched_region_is_refused_with_expected_and_found(make_region):
-    from plantation.errors import RegionError
-    from plantation.imagery.config import ScalingRule
-    from plantation.imagery.region import open_region
-    from plantation.model.card import check_bands
-    from plantation.model.inference import check_compatible
-    from plantation.model.network import ConvRecurrentNet
-    from tests.conftest import BANDS, DATES
-    from tests.test_artefact import SPEC
-
     spec = SPEC | {"n_channels": 10, "date_year": [0, 0, 1, 1, 2], "day_of_year": [0.1, 0.6, 0.1, 0.6, 0.6]}
     card = _card(1)
     card.network, card.bands, card.indices, card.dates, card.years = spec, list(BANDS), ["NDVI", "EVI", "NBR", "NDMI"], list(DATES), [2015, 2016, 2017]

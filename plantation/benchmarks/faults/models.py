@@ -13,7 +13,10 @@ import pickle
 import shutil
 from pathlib import Path
 
+from safetensors.torch import load_file, save_file
+
 from plantation.benchmarks.faults import Case, Outcome, Ran, Workspace
+from plantation.model import artefact
 
 #: Name of the file a planted payload creates when it is unpickled.
 MARKER = "PICKLE_RAN"
@@ -43,8 +46,6 @@ def pickle_payload(marker: Path) -> bytes:
 
 def model_copy(ws: Workspace, dest: Path) -> Path:
     """A copy of the workspace's run folder under ``dest`` with its artefact saved again (weights' sha256 in the card); the run folder."""
-    from plantation.model import artefact
-
     run = dest / "run"
     shutil.copytree(ws.model, run)
     art = artefact.load(run / "model")
@@ -88,8 +89,6 @@ def card_pickle(ws: Workspace, scratch: Path) -> Outcome:
 
 def weights_swapped(ws: Workspace, scratch: Path) -> Outcome:
     """Weights of the same shape but other values (a valid safetensors file): only the checksum can tell."""
-    from safetensors.torch import load_file, save_file
-
     run = model_copy(ws, scratch)
     path = run / "model" / "model.safetensors"
     tensors = load_file(str(path))

@@ -23,6 +23,7 @@ from typing import Any
 
 from plantation.benchmarks.faults import Case, FaultsConfig, Outcome, Ran, Workspace
 from plantation.benchmarks.faults.models import MARKER, pickle_payload, refusal
+from plantation.model import artefact
 
 #: A small training that still has what a resume must get right: two members (one finished, one interrupted), several epochs each.
 QUICK: tuple[str, ...] = (
@@ -120,8 +121,6 @@ def metric_delta(a: dict[str, Any], b: dict[str, Any]) -> float:
 
 def killed_mid_member(ws: Workspace, scratch: Path) -> Outcome:
     """Train cleanly; train again and SIGKILL it one epoch into its second member; rerun; compare."""
-    from plantation.model import artefact
-
     runs = scratch / "runs"
     keys = [f"region={ws.region}", f"out_dir={runs}", *QUICK]
     clean = run_measured(ws, "train", *keys, "run_name=clean", log=scratch / "clean.log")
