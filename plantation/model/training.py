@@ -432,8 +432,10 @@ def read_resume(folder: Path) -> dict[str, Any] | None:
         return None
     try:
         doc = json.loads(path.read_bytes().decode("utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise FileFormatError(f"{path}: not a resume record ({type(exc).__name__}); delete the folder {folder} or train afresh with resume=false") from None
+    except UnicodeDecodeError as exc:
+        raise FileFormatError(f"{path}: not a resume record (byte {exc.start} is not UTF-8 text; the file is binary); delete the folder {folder} or train afresh with resume=false") from None
+    except json.JSONDecodeError as exc:
+        raise FileFormatError(f"{path}: not a resume record (not valid JSON: {exc.msg}, line {exc.lineno}); delete the folder {folder} or train afresh with resume=false") from None
     if not isinstance(doc, dict) or doc.get("format") != RESUME_FORMAT or not isinstance(doc.get("finished"), dict):
         raise FileFormatError(f"{path}: not a resume record of format {RESUME_FORMAT!r}; delete the folder {folder} or train afresh with resume=false")
     return doc
