@@ -379,7 +379,7 @@ def _stac_missing_asset(ws: Workspace, scratch: Path) -> Outcome:
     folder.mkdir()
     lon, lat = 117.1, 1.5
     when = dt.datetime(2013, 2, 14, 2, tzinfo=dt.UTC)
-    item = pystac.Item(id="toy_2013-02-14", geometry={"type": "Point", "coordinates": [lon, lat]}, bbox=[lon, lat, lon, lat], datetime=when, properties={"platform": "landsat-8", "instruments": ["oli"]})
+    item = pystac.Item(id="toy_2013-02-14", geometry={"type": "Point", "coordinates": [lon, lat]}, bbox=[lon, lat, lon, lat], datetime=when, properties={"instruments": ["oli"]})
     for i, b in enumerate(bands):
         f = folder / f"{b}.tif"
         with rasterio.open(f, "w", **prof) as dst:
