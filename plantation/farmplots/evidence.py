@@ -270,7 +270,9 @@ def gather(geom: Any, map_path: Path, stack: Any, bands: Sequence[str], cutoff_d
     if not inside.any():
         inside = rasterio.features.geometry_mask([geom], out_shape=(h, w), transform=wt, invert=True, all_touched=True)
     with rasterio.open(map_path) as src:
-        m = src.read([BAND["class"], BAND["onset_year"], BAND["onset_lo"], BAND["onset_hi"], BAND["p_after_cutoff"]], window=win, boundless=True, fill_value=NODATA)
+        # A boundless read builds a VRT each time; the window lies inside the tile unless the map's grid is not the imagery's.
+        inside_map = row >= 0 and col >= 0 and row + h <= src.height and col + w <= src.width
+        m = src.read([BAND["class"], BAND["onset_year"], BAND["onset_lo"], BAND["onset_hi"], BAND["p_after_cutoff"]], window=win, boundless=not inside_map, fill_value=NODATA)
     cls, onset, lo, hi, p_raw = m
     data = cls != NODATA
     conv = data & (cls == _CONVERSION) & (onset > 0)
@@ -417,11 +419,14 @@ class PageCanvas:
     (the region's dates, fixed limits) are drawn once into a background; a
     page restores it, updates the data of a fixed set of artists (map and
     chip images, outlines, spans, series, markers; ``set_data``) and draws
-    only those. The words (titles, the verdict's numbers, chip dates, the
-    legend) are set with the same font (DejaVu Sans, as matplotlib's
-    default) on the finished pixels, since matplotlib lays text out glyph
-    by glyph in Python and that was most of a page's time. The PNG is
-    written from the pixels with zlib level 1.
+    only those. The words that change (titles, the verdict's numbers, chip
+    dates, the map's key) are set on the finished pixels a line at a time
+    with matplotlib's own font, hinting and line layout (:class:`_Painter`):
+    matplotlib 3.11 places and renders text glyph by glyph in Python, and
+    that was most of a page's time. The index axis spans the region's dates
+    and the map's years on every page (before, each page fitted it to its
+    own marks: the same span but for the onset interval's edges). The PNG
+    is written from the pixels with zlib level 1.
 
     Args:
         cols: chip columns (at least 4).
@@ -674,7 +679,7 @@ class _Painter:
     def _font(size_pt: float, bold: bool, dpi: int) -> Any:
         from matplotlib.font_manager import FontProperties, findfont, get_font
 
-        font = get_font(findfont(FontProperties(family="DejaVu Sans", weight="bold" if bold else "normal")))
+        font = get_font(findfont(FontProperties(weight="bold" if bold else "normal")))  # the rcParams font, as the figure's own text
         font.set_size(size_pt, dpi)
         return font
 
@@ -847,6 +852,16 @@ def _init(ctx: _Context) -> None:
     """Open the region's tiles once per process (lazily: only headers are read)."""
     _STATE["ctx"] = ctx
     _STATE["stacks"] = {t.name: open_tile(t, ctx.region) for t in ctx.region.tiles if t.name in ctx.map_paths}
+
+
+def _init_worker(ctx: _Context) -> None:
+    """:func:`_init` in a worker process, with GDAL's block cache capped: each window is read once, so a large cache only holds memory."""
+    os.environ.setdefault("GDAL_CACHEMAX", str(_WORKER_GDAL_CACHE_MB))
+    _init(ctx)
+
+
+#: GDAL's block cache in a page-drawing worker, MB (GDAL's default is 5% of RAM per process).
+_WORKER_GDAL_CACHE_MB = 64
 
 
 def _draw(job: _Job) -> dict[str, Any]:
@@ -1096,9 +1111,10 @@ def write_pages(
                     bar.update()
             finally:
                 _STATE.clear()
+                _CANVASES.clear()
         else:
             # spawn: a fresh process holds no GDAL handle or thread of this one.
-            with ProcessPoolExecutor(max_workers=workers, mp_context=get_context("spawn"), initializer=_init, initargs=(ctx,)) as pool:
+            with ProcessPoolExecutor(max_workers=workers, mp_context=get_context("spawn"), initializer=_init_worker, initargs=(ctx,)) as pool:
                 for res in pool.map(_draw, jobs, chunksize=8):
                     pages.append(res)
                     bar.update()
