@@ -67,6 +67,7 @@ def test_the_command_draws_pages_over_the_truth_and_writes_the_result(tmp_path: 
     assert res["met"] == (res["seconds_per_1000"] < 120)
     assert len(res["loadavg_start"]) == 3 and all(x >= 0 for x in res["loadavg_start"])
     assert res["peak_rss_mb"] >= res["parent_peak_rss_mb"] > 50
+    assert 0 < res["cores_used"] <= res["cpu_count"] + 0.5 and res["cpu_seconds_per_page"] == pytest.approx(res["cpu_seconds"] / 4, abs=0.002)
     assert res["built"]["flagged"] >= 4 and sum(v for k, v in res["built"]["verdicts"].items() if k != "problem") == 6
 
     # The pages and their record, as the plot check writes them.

@@ -27,8 +27,10 @@ calls it (the folder swapped in whole, ``evidence.json`` written). Memory: a
 thread samples the resident set of this process and of its children every
 0.1 s while the pages are drawn; ``peak_rss_mb`` is the largest sum seen,
 ``parent_peak_rss_mb`` and ``worker_peak_rss_mb`` the largest single
-figures. The machine's load average is recorded before each repeat, since a
-shared machine's reading must be judged by it. The result goes to
+figures. The machine's load average is recorded before each repeat, and the
+CPU seconds of this process and its workers (``cores_used``: CPU seconds
+over wall seconds), since a shared machine's reading must be judged by
+them. The result goes to
 ``bench/results/evidence.json`` (configs/benchmark_evidence.yaml).
 """
 
@@ -358,7 +360,10 @@ def run(cfg: EvidenceBenchConfig) -> dict[str, Any]:
         "peak_rss_mb": max(r["peak_rss_mb"] for r in runs),
         "parent_peak_rss_mb": max(r["parent_peak_rss_mb"] for r in runs),
         "worker_peak_rss_mb": max(r["worker_peak_rss_mb"] for r in runs),
+        "cpu_seconds": med["cpu_seconds"],
         "cpu_seconds_per_page": round(med["cpu_seconds"] / n, 3),
+        # The share of the machine's cores the run got: well under workers / cores means other jobs were taking the rest.
+        "cores_used": round(med["cpu_seconds"] / med["seconds"], 2),
         "loadavg_start": med["loadavg_start"],
         "page_kb_mean": med["page_kb_mean"],
         "repeats": runs,
@@ -379,5 +384,5 @@ def summary_lines(result: dict[str, Any]) -> list[str]:
         f"{result['pages']} evidence pages in {result['seconds']} s with {result['workers']} workers: {result['pages_per_second']} pages/s, "
         f"{result['seconds_per_1000']} s per 1,000 (target {result['target_seconds_per_1000']:.0f} s: {met})",
         f"peak RSS {result['peak_rss_mb']} MB in all (parent {result['parent_peak_rss_mb']} MB, largest worker {result['worker_peak_rss_mb']} MB); "
-        f"{result['cpu_seconds_per_page']} CPU s a page; load average at the start {la[0]}, {la[1]}, {la[2]} on {result['cpu_count']} cores",
+        f"{result['cpu_seconds_per_page']} CPU s a page, {result['cores_used']} cores used on average; load average at the start {la[0]}, {la[1]}, {la[2]} on {result['cpu_count']} cores",
     ]
