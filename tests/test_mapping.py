@@ -16,7 +16,8 @@ from affine import Affine
 from plantation.errors import ConfigError, InputNotFoundError, RegionError
 from plantation.imagery.config import MaskConfig, RegionConfig, ScalingRule, TileConfig
 from plantation.imagery.region import open_region
-from plantation.mapping.folder import BAND, LAYERS, NODATA
+from plantation.mapping.fire import FIRE_CODES, attribute, decimal_years, resolve_escaped
+from plantation.mapping.folder import BAND, LAYERS, MAP_LAYERS, NODATA, SCALE
 from plantation.mapping.job import EngineConfig, MapConfig, run
 from plantation.mapping.tiles import Settings, encode_layers, window_probabilities
 from plantation.model import artefact
@@ -130,8 +131,9 @@ def test_tile_cog_has_the_input_grid_named_bands_and_decoded_layers(region, mode
     with rasterio.open(tmp_path / "out" / "t0.tif") as src:
         assert src.crs == rasterio.crs.CRS.from_string(CRS) and src.transform == stack.grid.transform
         assert (src.height, src.width) == (37, 45)
-        assert src.descriptions == tuple(name for name, _, _ in LAYERS)
-        assert src.nodatavals == (NODATA,) * len(LAYERS)
+        assert src.descriptions == tuple(name for name, _, _ in MAP_LAYERS)
+        assert src.descriptions[: len(LAYERS)] == tuple(name for name, _, _ in LAYERS)  # fire layers come after: band indices keep their meaning
+        assert src.nodatavals == (NODATA,) * len(MAP_LAYERS)
         assert src.scales[BAND["p_conversion"] - 1] == pytest.approx(1e-4)
         assert src.tags()["cutoff_year"] == "2015" and "verify" in src.tags()["notice"].lower()
         got = src.read()
@@ -139,7 +141,21 @@ def test_tile_cog_has_the_input_grid_named_bands_and_decoded_layers(region, mode
     # The streaming pipeline gives what the plain whole-tile loop gives.
     tp = predict_tile(art, stack, window=64)
     want = encode_layers(tp.probs, tp.epistemic, tp.clear, YEARS, cutoff_year=2015, level=0.8, min_clear=4)
-    np.testing.assert_array_equal(got, want)
+    np.testing.assert_array_equal(got[: len(LAYERS)], want)
+    # The fire layers are the attribution of the whole tile's series at once, escaped fire resolved over the tile.
+    refl, valid = read_window(stack, 0, 0, 37, 45, 0)
+    fw = attribute(refl, valid, decimal_years(stack.dates), BANDS, want[0] == 2, want[1], forest=want[0] == 1)
+    code, year = resolve_escaped(fw.code, fw.year, fw.candidate_year, want[1])
+    unmapped = want[0] == NODATA
+    np.testing.assert_array_equal(got[BAND["fire"] - 1], np.where(unmapped, NODATA, code))
+    np.testing.assert_array_equal(got[BAND["fire_year"] - 1], np.where(unmapped, NODATA, year))
+    dn = got[BAND["dnbr"] - 1]
+    np.testing.assert_array_equal(dn == NODATA, unmapped | ~np.isfinite(fw.dnbr))
+    np.testing.assert_allclose(dn[dn != NODATA] * SCALE, fw.dnbr[dn != NODATA], atol=6e-5)
+    # Every pixel mapped as converted has a fire code of a clearing, and no other pixel has one.
+    fire = got[BAND["fire"] - 1]
+    is_clearing = np.isin(fire, [FIRE_CODES["converted_burnt"], FIRE_CODES["converted_not_burnt"], FIRE_CODES["converted_unknown"]])
+    np.testing.assert_array_equal(is_clearing, got[0] == 2)
     seen = tp.clear >= 4
     assert seen.mean() > 0.5 and (p_conv.mask == ~seen).all()
     np.testing.assert_allclose(p_conv.data[seen], tp.probs[..., 3:].sum(-1)[seen], atol=6e-5)

@@ -29,9 +29,11 @@ import rasterio
 from matplotlib.colors import to_rgb
 
 import tests.test_mapping as tm
+from plantation.imagery.burn import SEVERITY_CLASSES
+from plantation.mapping.fire import FIRE_CODES
 from plantation.mapping.folder import BAND, LAYERS, SCALE
 from plantation.mapping.job import run
-from plantation.mapping.styles import CLASS_STYLE, P_TRANSPARENT_BELOW, onset_style, p_after_cutoff_style, write_style, year_colours
+from plantation.mapping.styles import CLASS_STYLE, DNBR_CLASSES, FIRE_STYLE, P_TRANSPARENT_BELOW, dnbr_style, fire_style, onset_style, p_after_cutoff_style, write_style, year_colours
 
 # The mapping tests' toy region and model (fixtures), for the styles written beside a mapped tile.
 region = tm.region
@@ -172,3 +174,56 @@ def test_mapped_tile_gets_the_p_after_cutoff_style_beside_it(region, model_dir, 
         assert src.descriptions[band - 1] == "p_after_cutoff" and src.scales[band - 1] == pytest.approx(SCALE)
     onset = ET.parse(out / "t1.onset_year.qml").getroot().findall(".//item")
     assert [i.get("color") for i in onset] == year_colours(tm.YEARS, 2015)
+
+
+# --------------------------------------------------------------------------- fire layers
+
+CVD = ("Protanomaly", "Deuteranomaly", "Tritanomaly")
+
+
+def test_fire_style_draws_every_fire_code_but_none(tmp_path):
+    root = _written(fire_style(BAND["fire"]), tmp_path / "t.fire.qml")
+    r = root.find("pipe/rasterrenderer")
+    assert r.get("type") == "paletted" and r.get("band") == str(BAND["fire"]) == "9"
+    values = sorted(int(e.get("value")) for e in r.findall("colorPalette/paletteEntry"))
+    assert values == sorted(v for v in FIRE_CODES.values() if v != FIRE_CODES["none"])
+
+
+@pytest.mark.parametrize("deficiency", (None, *CVD))
+def test_fire_colours_stay_apart_with_colour_vision_deficiencies(deficiency):
+    colours = [c for _, c in FIRE_STYLE.values()]
+    seen = [_simulate(c, deficiency) if deficiency else c for c in colours]
+    for a, b in product(range(len(seen)), repeat=2):
+        if a < b:
+            assert delta_e(seen[a], seen[b]) > APART, (deficiency, colours[a], colours[b])
+
+
+def test_dnbr_style_follows_key_and_benson_breaks(tmp_path):
+    """The discrete ramp's class ends: one stored step (0.0001) below each published break (Key & Benson 2006: -100, 100, 270, 440, 660 on dNBR x 1000)."""
+    root = _written(dnbr_style(BAND["dnbr"]), tmp_path / "t.dnbr.qml")
+    r = root.find("pipe/rasterrenderer")
+    assert r.get("band") == str(BAND["dnbr"]) == "11"
+    shader = r.find("rastershader/colorrampshader")
+    assert shader.get("colorRampType") == "DISCRETE"
+    values = [i.get("value") for i in shader.findall("item")]
+    assert values[-1] == "inf"
+    breaks = [-100, 100, 270, 440, 660]
+    assert [round(float(v) * 1000 + 0.1) for v in values[:-1]] == breaks
+    # Each class's highest value falls in that class and the next stored value in the next one.
+    for (upper, _, _), (code, _, _) in zip(DNBR_CLASSES[:-1], SEVERITY_CLASSES[:-1], strict=True):
+        assert burn_class(upper) == code and burn_class(round(upper + SCALE, 4)) == code + 1
+
+
+def burn_class(d: float) -> int:
+    from plantation.imagery.burn import severity_class
+
+    return int(severity_class(np.array([d]))[0])
+
+
+@pytest.mark.parametrize("deficiency", (None, *CVD))
+def test_severity_colours_darken_in_order_and_stay_apart(deficiency):
+    colours = [c for _, c, _ in DNBR_CLASSES[1:]]  # unburned .. high
+    seen = [_simulate(c, deficiency) if deficiency else c for c in colours]
+    lightness = [float(_lab(c)[0]) for c in seen]
+    assert all(a > b for a, b in pairwise(lightness)), lightness
+    assert all(delta_e(a, b) > 10 for a, b in pairwise(seen))

@@ -47,14 +47,12 @@ def dnbr(nir_before: Any, swir2_before: Any, nir_after: Any, swir2_after: Any) -
 def severity_class(d: Any) -> np.ndarray:
     """Key & Benson (2006) severity code (:data:`SEVERITY_CLASSES`) of dNBR values (unitless, not × 1000); 0 where dNBR is NaN.
 
-    The published breaks are integers of dNBR × 1000 (``100–269`` low), so a
-    class starts at its lower break: 0.100 is low, 0.0999 unburned.
+    A class starts at its published break and runs up to the next: low is
+    0.100 ≤ dNBR < 0.270 (the table's 100–269 on dNBR × 1000 integers).
     """
     v = np.asarray(d, dtype=np.float64)
-    # Round to the published integer scale first, so 0.26999 (269.99 → 270) lands where the table puts 270.
-    scaled = np.rint(np.where(np.isfinite(v), v, 0.0) * 1000.0)
-    breaks = np.array([lo * 1000.0 for _, _, lo in SEVERITY_CLASSES[1:]])
-    code = np.searchsorted(breaks, scaled, side="right") + 1
+    breaks = np.array([lo for _, _, lo in SEVERITY_CLASSES[1:]])
+    code = np.searchsorted(breaks, np.where(np.isfinite(v), v, 0.0), side="right") + 1
     return np.where(np.isfinite(v), code, 0).astype(np.int16)
 
 

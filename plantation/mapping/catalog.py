@@ -23,7 +23,10 @@ Each Item describes one tile's COG, read from the file itself:
   (data type, nodata, scale and offset where a layer is scaled, unit), with
   the classification extension's ``classification:classes`` on the class
   band (codes of :data:`plantation.reference.labels.LABEL_CODES`, names and
-  colour hints of the QGIS style, :data:`plantation.mapping.styles.CLASS_STYLE`);
+  colour hints of the QGIS style, :data:`plantation.mapping.styles.CLASS_STYLE`)
+  and on the fire band (codes of :data:`plantation.mapping.fire.FIRE_CODES`,
+  colours of :data:`plantation.mapping.styles.FIRE_STYLE`), where the tile has
+  the fire layers (maps made before them have the first eight only);
 - the file extension's ``file:checksum`` (sha256 multihash) and
   ``file:size`` of the COG;
 - the QGIS styles (role ``metadata``) and the quicklook PNG (role
@@ -70,8 +73,9 @@ from pystac.utils import datetime_to_str, make_relative_href
 
 from plantation.errors import FileFormatError
 from plantation.mapping import folder as map_folder
-from plantation.mapping.folder import BAND, LAYER_MEANING, LAYERS, MANIFEST, NOTICE, read_manifest
-from plantation.mapping.styles import CLASS_STYLE
+from plantation.mapping.fire import FIRE_CODES
+from plantation.mapping.folder import BAND, LAYER_MEANING, LAYERS, MANIFEST, MAP_LAYERS, NOTICE, read_manifest
+from plantation.mapping.styles import CLASS_STYLE, FIRE_STYLE
 from plantation.reference.labels import LABEL_CODES
 
 log = logging.getLogger(__name__)
@@ -109,6 +113,15 @@ def _classes() -> list[Classification]:
     return [Classification.create(value=code, name=name_of[code], description=label, color_hint=colour.lstrip("#").upper()) for code, (label, colour) in sorted(CLASS_STYLE.items())]
 
 
+def _fire_classes() -> list[Classification]:
+    """The fire band's classes: codes and names of :data:`FIRE_CODES`, description and colour of the QGIS style (code 0 has no colour: it is not drawn)."""
+    out = []
+    for name, code in FIRE_CODES.items():
+        label, colour = FIRE_STYLE.get(code, ("not converted and no escaped fire", ""))
+        out.append(Classification.create(value=code, name=name, description=label, color_hint=colour.lstrip("#").upper() or None))
+    return out
+
+
 def _period(years: list[int]) -> tuple[datetime, datetime]:
     return datetime(years[0], 1, 1, tzinfo=UTC), datetime(years[-1], 12, 31, 23, 59, 59, tzinfo=UTC)
 
@@ -144,9 +157,10 @@ def tile_item(folder: Path, name: str, entry: Mapping[str, Any]) -> pystac.Item:
     start, end = _period(years)
     notes = layer_notes()
     with rasterio.open(path) as src:
-        names = tuple(n for n, _, _ in LAYERS)
+        layers = MAP_LAYERS if src.count == len(MAP_LAYERS) else LAYERS
+        names = tuple(n for n, _, _ in layers)
         if tuple(src.descriptions) != names:
-            raise FileFormatError(f"{path}: bands {list(src.descriptions)}, expected {list(names)} (a map written by `plantation map`)")
+            raise FileFormatError(f"{path}: bands {list(src.descriptions)}, expected {[n for n, _, _ in MAP_LAYERS]} (a map written by `plantation map`)")
         props: dict[str, Any] = {
             "title": f"tile {name}",
             "start_datetime": datetime_to_str(start),
@@ -176,7 +190,7 @@ def tile_item(folder: Path, name: str, entry: Mapping[str, Any]) -> pystac.Item:
         proj.transform = list(src.transform)[:6]
         proj.bbox = list(src.bounds)
         bands = []
-        for i, (_, _, unit) in enumerate(LAYERS):
+        for i, (_, _, unit) in enumerate(layers):
             scaled = src.scales[i] != 1.0 or src.offsets[i] != 0.0
             band = RasterBand.create(
                 data_type=src.dtypes[i],
@@ -187,10 +201,12 @@ def tile_item(folder: Path, name: str, entry: Mapping[str, Any]) -> pystac.Item:
             )
             if i == BAND["class"] - 1:
                 ClassificationExtension.ext(band).classes = _classes()
+            if i == BAND["fire"] - 1:
+                ClassificationExtension.ext(band).classes = _fire_classes()
             bands.append(band)
     asset = item.assets["data"]
     asset.title = f"map layers of tile {name} (Cloud-Optimized GeoTIFF)"
-    asset.extra_fields["bands"] = [{"name": layer, **({"description": notes[layer]} if layer in notes else {})} for layer, _, _ in LAYERS]
+    asset.extra_fields["bands"] = [{"name": layer, **({"description": notes[layer]} if layer in notes else {})} for layer, _, _ in layers]
     RasterExtension.ext(asset, add_if_missing=True).bands = bands
     ClassificationExtension.add_to(item)
     FileExtension.ext(asset, add_if_missing=True).apply(checksum="1220" + str(entry.get("sha256", "")), size=path.stat().st_size)
@@ -198,6 +214,8 @@ def tile_item(folder: Path, name: str, entry: Mapping[str, Any]) -> pystac.Item:
         ("style", ".qml", "QGIS style: map class (the default style QGIS loads with the tile)", ["metadata"], pystac.MediaType.XML),
         ("style_onset_year", ".onset_year.qml", "QGIS style: onset year, split at the cutoff", ["metadata"], pystac.MediaType.XML),
         ("style_p_after_cutoff", ".p_after_cutoff.qml", "QGIS style: probability of conversion after the cutoff", ["metadata"], pystac.MediaType.XML),
+        ("style_fire", ".fire.qml", "QGIS style: fire in the clearing, and fire escaped from it", ["metadata"], pystac.MediaType.XML),
+        ("style_dnbr", ".dnbr.qml", "QGIS style: the clearing's dNBR in Key & Benson's severity classes", ["metadata"], pystac.MediaType.XML),
         ("quicklook", ".png", "quicklook: map class and onset year", ["overview"], pystac.MediaType.PNG),
     ):
         other = path.with_name(name + suffix)
@@ -329,7 +347,7 @@ class Catalogue:
             title=f"{self.name}: year of conversion of natural forest to tree-crop plantation",
             description=(
                 "Per-pixel map of natural forest converted to tree-crop plantation, one Cloud-Optimized GeoTIFF per tile "
-                "(layers: " + ", ".join(n for n, _, _ in LAYERS) + "), written by `plantation map`. " + NOTICE
+                "(layers: " + ", ".join(n for n, _, _ in MAP_LAYERS) + "), written by `plantation map`. " + NOTICE
             ),
             extent=pystac.Extent(spatial, temporal),
             license="other",

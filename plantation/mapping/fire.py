@@ -107,6 +107,14 @@ class FireWindow:
     candidate_year: np.ndarray
 
 
+def decimal_years(dates: np.ndarray | Sequence[np.datetime64]) -> np.ndarray:
+    """Calendar year plus the fraction of it elapsed at noon of each date (``datetime64``), float64."""
+    d = np.asarray(dates).astype("datetime64[D]")
+    start = d.astype("datetime64[Y]")
+    length = ((start + 1).astype("datetime64[D]") - start.astype("datetime64[D]")).astype(np.float64)
+    return start.astype(np.int64) + 1970 + ((d - start.astype("datetime64[D]")).astype(np.float64) + 0.5) / length
+
+
 def _previous_view(valid: np.ndarray) -> np.ndarray:
     """Index of the last clear date before each date, per pixel (−1: none): (time, ...) int."""
     n = valid.shape[0]

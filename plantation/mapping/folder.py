@@ -27,10 +27,23 @@ band   description     content
 6      p_after_cutoff  probability of conversion after the cutoff year (× 1e-4)
 7      epistemic       ensemble disagreement, mutual information in nats (× 1e-4; the distilled network's estimate of it, by default)
 8      clear_dates     dates on which the pixel was observed (never nodata)
+9      fire            fire in the clearing (:data:`FIRE_LAYERS`): 0 not
+                       converted and no escaped fire, 1 converted and
+                       cleared with fire, 2 converted and cleared without
+                       fire, 3 converted and fire unknown (no clear view
+                       close enough after the clearing), 4 forest burnt by
+                       fire escaped from a clearing
+10     fire_year       year of the fire (the onset year of a burnt clearing,
+                       the year of an escaped fire); 0 where none
+11     dnbr            the clearing's dNBR (Key & Benson 2006; × 1e-4),
+                       last clear view before minus first after; nodata
+                       where no clearing was seen
 =====  ==============  =====================================================
 
-Bands 1–7 hold :data:`NODATA` where a pixel has fewer than ``min_clear``
-clear dates.
+Bands 1–7 and 9–11 hold :data:`NODATA` where a pixel has fewer than
+``min_clear`` clear dates. Bands 9–11 (:data:`FIRE_LAYERS`) come after the
+eight of :data:`LAYERS`, so readers by band index keep working; maps made
+before them have the eight only (:attr:`MapTile.has_fire`).
 
 A tile whose probabilities were corrected after mapping (`plantation
 recalibrate`, :mod:`plantation.assessment.recalibrate`) carries the
@@ -45,7 +58,7 @@ import hashlib
 import json
 import os
 from collections.abc import Sequence
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -56,6 +69,7 @@ import rasterio.shutil
 from plantation import __version__
 from plantation.errors import FileFormatError, InputNotFoundError, PlantationError, RegionError
 from plantation.imagery.region import Grid
+from plantation.mapping.fire import FIRE_CODES, FIRE_MEANING
 from plantation.model.calibration import apply_recalibration
 from plantation.records import load_object
 
@@ -77,7 +91,15 @@ LAYERS: tuple[tuple[str, float, str], ...] = (
     ("epistemic", SCALE, "nats"),
     ("clear_dates", 1.0, "dates"),
 )
-BAND = {name: i + 1 for i, (name, _, _) in enumerate(LAYERS)}
+#: The fire layers after :data:`LAYERS` (:mod:`plantation.mapping.fire`).
+FIRE_LAYERS: tuple[tuple[str, float, str], ...] = (
+    ("fire", 1.0, "code"),
+    ("fire_year", 1.0, "year"),
+    ("dnbr", SCALE, "dNBR"),
+)
+#: Every layer the mapping job writes, in band order.
+MAP_LAYERS: tuple[tuple[str, float, str], ...] = LAYERS + FIRE_LAYERS
+BAND = {name: i + 1 for i, (name, _, _) in enumerate(MAP_LAYERS)}
 #: What each layer holds, in words (the layer table above, for catalogues and band descriptions).
 LAYER_MEANING: dict[str, str] = {
     "class": "1 stable natural forest, 2 converted to plantation during the series, 3 plantation before the series, 4 other land or disturbance",
@@ -88,7 +110,12 @@ LAYER_MEANING: dict[str, str] = {
     "p_after_cutoff": "probability of conversion after the cutoff year (cutoff_year tag)",
     "epistemic": "ensemble disagreement: mutual information of the members, in nats (the distilled network's estimate of it, by default)",
     "clear_dates": "dates on which the pixel was observed clear (never nodata)",
+    "fire": FIRE_MEANING,
+    "fire_year": "year of the fire: the onset year of a clearing cleared with fire, the year of the first clear view after an escaped fire; 0 where none",
+    "dnbr": "the clearing's dNBR (Key & Benson 2006): NBR at the last clear view before it minus NBR at the first after; nodata where no clearing was seen",
 }
+#: Fire codes by name (:data:`plantation.mapping.fire.FIRE_CODES`), for the map's readers.
+FIRE = FIRE_CODES
 
 #: GeoTIFF tag (dataset level) and manifest entry key of a probability correction applied after mapping.
 CORRECTION_TAG = "probability_correction"
@@ -126,6 +153,10 @@ class TileResult:
     model_sha256: str = ""
     #: The probability correction the tile carries (:data:`CORRECTION_TAG`); None for maps made before it was recorded.
     probability_correction: dict[str, Any] | None = None
+    #: Hectares of each fire code but ``none`` (names of :data:`FIRE`); empty for maps made before the fire layers.
+    fire_ha: dict[str, float] = field(default_factory=dict)
+    #: Hectares mapped as converted with fire whose fire year is after the cutoff year.
+    fire_after_cutoff_ha: float = 0.0
 
 
 def file_digest(paths: Sequence[Path]) -> str:
@@ -313,6 +344,8 @@ class MapTile:
     offset: float
     #: The probability correction applied after mapping (its :data:`CORRECTION_TAG`); None: the probabilities as the model gave them.
     correction: dict[str, Any] | None = None
+    #: The tile has the fire layers (:data:`FIRE_LAYERS`); maps made before them have not.
+    has_fire: bool = False
 
 
 @dataclass
@@ -377,6 +410,7 @@ def open_map(folder: str | Path, *, verify: bool = True) -> MappedRegion:
     if not raw["tiles"]:
         raise PlantationError(f"{man}: lists no finished tile; map the region with `plantation map`")
     names = tuple(name for name, _, _ in LAYERS)
+    with_fire = tuple(name for name, _, _ in MAP_LAYERS)
     band = BAND["p_after_cutoff"] - 1
     tiles: list[MapTile] = []
     converted: dict[int, float] = {}
@@ -390,13 +424,13 @@ def open_map(folder: str | Path, *, verify: bool = True) -> MappedRegion:
         if verify and digest != e.get("sha256"):
             raise PlantationError(f"{path}: its bytes differ from the manifest (sha256); the map was changed after mapping, map it again")
         with rasterio.open(path) as src:
-            if tuple(src.descriptions) != names:
-                raise PlantationError(f"{path}: bands {list(src.descriptions)}, expected {list(names)} (a map written by `plantation map`)")
+            if tuple(src.descriptions) not in (names, with_fire):
+                raise PlantationError(f"{path}: bands {list(src.descriptions)}, expected {list(with_fire)} (a map written by `plantation map`)")
             tag = str(src.tags().get("cutoff_year", "")).strip()
             if not tag.lstrip("-").isdigit():
                 raise PlantationError(f"{path}: no cutoff_year tag; map the region again with `plantation map`")
             grid = Grid(src.crs, src.transform, src.height, src.width)
-            tile = MapTile(name, path, digest, grid, int(tag), float(src.scales[band]), float(src.offsets[band]), read_correction(src.tags(), path))
+            tile = MapTile(name, path, digest, grid, int(tag), float(src.scales[band]), float(src.offsets[band]), read_correction(src.tags(), path), src.count == len(with_fire))
         t = grid.transform
         if t.b != 0 or t.d != 0 or t.a <= 0 or t.e >= 0:
             raise RegionError(f"{path}: the grid is rotated or not north-up; reproject the map to a north-up grid first")

@@ -5,8 +5,11 @@ opens with the class legend. Two alternative styles (Layer Properties →
 Style → Load Style) sit beside it: ``<name>.onset_year.qml`` colours the
 conversion year, years up to the cutoff on a cool ramp and years after it on
 a warm one, and ``<name>.p_after_cutoff.qml`` shades the probability of
-conversion after the cutoff. The palettes are the project's own; the XML is
-written with ElementTree.
+conversion after the cutoff. Two more sit beside them for the fire layers:
+``<name>.fire.qml`` (whether a clearing was burnt, and escaped fire) and
+``<name>.dnbr.qml`` (the clearing's dNBR in the severity classes of Key &
+Benson 2006). The palettes are the project's own; the XML is written with
+ElementTree.
 
 Probability bands are stored as int16 ``round(value × 10000)`` with a GDAL
 scale of 0.0001. QGIS's GDAL provider applies a band's scale and offset to every block
@@ -54,6 +57,28 @@ P_AFTER_CUTOFF_RAMP: tuple[tuple[float, str, int, str], ...] = (
     (0.5, "#b07fb8", 255, "0.5 – as likely as not"),
     (0.75, "#7d3f8f", 255, "0.75 – likely"),
     (1.0, "#4a1660", 255, "1.0 – strong evidence of conversion after the cutoff"),
+)
+
+#: Fire band code → (legend label, colour); code 0 (no fire, not converted) is not drawn. Dark char, sand-coloured bare soil,
+#: a pale blue for "unknown" and a warm red for escaped fire: apart in lightness or on the blue-yellow axis, which red-green
+#: colour-vision deficiencies keep.
+FIRE_STYLE: dict[int, tuple[str, str]] = {
+    1: ("converted, cleared with fire", "#2b1a24"),
+    2: ("converted, cleared without fire", "#e6c88f"),
+    3: ("converted, fire unknown (no clear view close enough after the clearing)", "#7ea6d6"),
+    4: ("forest burnt by fire escaped from a clearing", "#d4452b"),
+}
+
+#: Key & Benson (2006) severity classes on dNBR (real values; QGIS applies the band's 0.0001 scale): (highest value, colour, label).
+#: A discrete ramp gives an item the values up to and including its own, so each class ends one stored step (0.0001) below the
+#: next class's published break. From "unburned" to "high" the colours darken step by step, so the order reads in grey as well.
+DNBR_CLASSES: tuple[tuple[float, str, str], ...] = (
+    (-0.1001, "#3f8f5f", "< -0.100 enhanced regrowth"),
+    (0.0999, "#e9e7df", "-0.100 to 0.099 unburned"),
+    (0.2699, "#fbe08a", "0.100 to 0.269 low severity"),
+    (0.4399, "#f4a04a", "0.270 to 0.439 moderate-low severity"),
+    (0.6599, "#d2493a", "0.440 to 0.659 moderate-high severity"),
+    (float("inf"), "#5c1744", ">= 0.660 high severity"),
 )
 
 QGIS_VERSION = "3.34.0"
@@ -153,6 +178,27 @@ def p_after_cutoff_style(cutoff_year: int, band: int = 6) -> ET.ElementTree:
     shader = ET.SubElement(ET.SubElement(r, "rastershader"), "colorrampshader", colorRampType="INTERPOLATED", classificationMode="1", clip="0", minimumValue="0", maximumValue="1")
     for value, colour, alpha, label in P_AFTER_CUTOFF_RAMP:
         ET.SubElement(shader, "item", value=f"{value:g}", color=colour, label=label.replace("the cutoff", f"the cutoff ({cutoff_year})"), alpha=str(alpha))
+    return _document(r)
+
+
+def fire_style(band: int = 9) -> ET.ElementTree:
+    """Paletted renderer for the fire band (:data:`FIRE_STYLE`); code 0 is left out, so only clearings and escaped fire are drawn."""
+    r = ET.Element("rasterrenderer", type="paletted", band=str(band), opacity="1", alphaBand="-1", nodataColor="")
+    ET.SubElement(r, "rasterTransparency")
+    pal = ET.SubElement(r, "colorPalette")
+    for code, (label, colour) in FIRE_STYLE.items():
+        ET.SubElement(pal, "paletteEntry", value=str(code), color=colour, label=label, alpha="255")
+    return _document(r)
+
+
+def dnbr_style(band: int = 11) -> ET.ElementTree:
+    """Discrete colours for the dNBR band in Key & Benson's severity classes (:data:`DNBR_CLASSES`), in real dNBR values."""
+    r = ET.Element("rasterrenderer", type="singlebandpseudocolor", band=str(band), opacity="1", alphaBand="-1", classificationMin="-0.5", classificationMax="1.3", nodataColor="")
+    ET.SubElement(r, "rasterTransparency")
+    _fixed_range(r)
+    shader = ET.SubElement(ET.SubElement(r, "rastershader"), "colorrampshader", colorRampType="DISCRETE", classificationMode="1", clip="0", minimumValue="-0.5", maximumValue="1.3")
+    for upper, colour, label in DNBR_CLASSES:
+        ET.SubElement(shader, "item", value="inf" if upper == float("inf") else f"{upper:g}", color=colour, label=label, alpha="255")
     return _document(r)
 
 

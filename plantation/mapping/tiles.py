@@ -30,9 +30,10 @@ import torch
 from plantation import __version__
 from plantation.imagery.config import RegionConfig, TileConfig
 from plantation.imagery.region import TileStack, open_tile
-from plantation.mapping.folder import BAND, FORMAT, LAYERS, NODATA, NOTICE, RECALIBRATION, SCALE, TileResult, file_digest, recalibrate_stored, write_cog
+from plantation.mapping.fire import FIRE_CODES, FireRule, FireWindow, attribute, decimal_years, resolve_escaped
+from plantation.mapping.folder import BAND, FORMAT, LAYERS, MAP_LAYERS, NODATA, NOTICE, RECALIBRATION, SCALE, TileResult, file_digest, recalibrate_stored, write_cog
 from plantation.mapping.quicklook import quicklook
-from plantation.mapping.styles import class_style, onset_style, p_after_cutoff_style, write_style
+from plantation.mapping.styles import class_style, dnbr_style, fire_style, onset_style, p_after_cutoff_style, write_style
 from plantation.model.artefact import Artefact, load
 from plantation.model.inference import check_compatible, read_window, window_probabilities, windows
 from plantation.model.outcomes import summarise
@@ -59,10 +60,13 @@ class Settings:
     recalibration: str = ""
     #: Map with the model's distilled network when it has one (False: every ensemble member).
     distilled: bool = True
+    #: Thresholds of the fire layers (:class:`plantation.mapping.fire.FireRule`).
+    fire: FireRule = FireRule()
 
     def content_key(self) -> dict[str, Any]:
         # Window, batch and threads change float rounding at most, not what the map says.
         key = {"min_clear": self.min_clear, "cutoff_year": self.cutoff_year, "interval_level": self.interval_level, "interval_mass": self.interval_mass, "format": FORMAT}
+        key["fire"] = asdict(self.fire)
         rec = self.recalibration_record()
         if rec is not None:
             key["recalibration"] = [rec["coef_conversion"], rec["coef_after_cutoff"]]
@@ -162,6 +166,17 @@ def encode_layers(
     return out
 
 
+def encode_fire(fw: FireWindow, unmapped: np.ndarray) -> np.ndarray:
+    """The int16 fire layers (3, h, w) of :data:`plantation.mapping.folder.FIRE_LAYERS` from a window's attribution; :data:`NODATA` where ``unmapped``."""
+    out = np.empty((3,) + fw.code.shape, np.int16)
+    out[0] = fw.code
+    out[1] = fw.year
+    ok = np.isfinite(fw.dnbr)
+    out[2] = np.where(ok, np.rint(np.clip(np.where(ok, fw.dnbr, 0.0), -3.0, 3.0) / SCALE), NODATA)
+    out[:, unmapped] = NODATA
+    return out
+
+
 # --------------------------------------------------------------------------- one tile
 
 
@@ -171,7 +186,7 @@ def _profile(stack: TileStack, window: int) -> dict[str, Any]:
         "driver": "GTiff",
         "height": g.height,
         "width": g.width,
-        "count": len(LAYERS),
+        "count": len(MAP_LAYERS),
         "dtype": "int16",
         "crs": g.crs,
         "transform": g.transform,
@@ -191,12 +206,18 @@ def map_tile(
     *,
     region: RegionConfig | None = None,
     on_window: Callable[[int], None] | None = None,
-) -> tuple[int, dict[int, float], float]:
-    """Map one tile to a COG at ``dest``; returns (mapped pixels, converted ha by year, ha converted after the cutoff).
+) -> tuple[int, dict[int, float], float, tuple[dict[str, float], float]]:
+    """Map one tile to a COG at ``dest``; returns (mapped pixels, converted ha by year, ha converted after the cutoff, fire areas).
 
     Reads ahead one window and writes behind one, so the network never
     waits on the disk when the disk is faster than the network.
     ``on_window(pixels)`` is called after each window is written.
+    The fire layers are attributed window by window from the same reads
+    (:func:`plantation.mapping.fire.attribute`); escaped fire, which looks
+    beyond a window, is resolved once the tile's windows are written, from
+    the tile's fire codes, onsets and canopy-loss years held as int16 (6
+    bytes a pixel). Fire areas: (hectares by fire code name but ``none``,
+    hectares cleared with fire after the cutoff year).
     """
     check_compatible(art, stack, region.scaling if region is not None else None)
     g = stack.grid
@@ -209,19 +230,32 @@ def map_tile(
     mapped = 0
     by_year = np.zeros(len(years))
     after = 0.0
+    t_years = decimal_years(stack.dates)
+    bands = list(art.card.bands)
+    # What the tile-wide escaped-fire pass needs, filled window by window.
+    fire_code = np.full((g.height, g.width), NODATA, np.int16)
+    fire_year = np.zeros((g.height, g.width), np.int16)
+    onsets = np.zeros((g.height, g.width), np.int16)
+    candidates = np.zeros((g.height, g.width), np.int16)
 
     recal = settings.recalibration_record()
 
-    def read(win: tuple[int, int, int, int]) -> tuple[torch.Tensor, torch.Tensor]:
+    def read(win: tuple[int, int, int, int]) -> tuple[torch.Tensor, torch.Tensor, np.ndarray, np.ndarray]:
         r0, c0, h, w = win
         refl, valid = read_window(stack, r0, c0, h, w, halo)
-        return torch.from_numpy(features(refl, art.card.bands, art.card.indices)), torch.from_numpy(valid)
+        inner = (slice(None), slice(halo, halo + h), slice(halo, halo + w))
+        return torch.from_numpy(features(refl, art.card.bands, art.card.indices)), torch.from_numpy(valid), refl[:, :, inner[1], inner[2]], valid[inner]
 
-    def write(dst: Any, win: tuple[int, int, int, int], probs: np.ndarray, epi: np.ndarray, clear: np.ndarray) -> int:
+    def write(dst: Any, win: tuple[int, int, int, int], probs: np.ndarray, epi: np.ndarray, clear: np.ndarray, refl: np.ndarray, valid: np.ndarray) -> int:
         nonlocal mapped, after
         r0, c0, h, w = win
         layers = encode_layers(probs, epi, clear, years, cutoff_year=settings.cutoff_year, level=settings.interval_mass, min_clear=settings.min_clear, recalibration=recal)
-        dst.write(layers, window=rasterio.windows.Window(c0, r0, w, h))
+        fw = attribute(refl, valid, t_years, bands, layers[0] == conv, layers[1], settings.fire, forest=layers[0] == LABEL_CODES["stable_forest"])
+        fire = encode_fire(fw, layers[0] == NODATA)
+        dst.write(np.concatenate([layers, fire]), window=rasterio.windows.Window(c0, r0, w, h))
+        rows, cols = slice(r0, r0 + h), slice(c0, c0 + w)
+        fire_code[rows, cols], fire_year[rows, cols], onsets[rows, cols] = fire[0], fire[1], layers[1]
+        candidates[rows, cols] = fw.candidate_year
         ok = layers[0] != NODATA
         mapped += int(ok.sum())
         is_conv = ok & (layers[0] == conv)
@@ -233,14 +267,17 @@ def map_tile(
 
     try:
         with rasterio.open(raw, "w", **_profile(stack, settings.window)) as dst, ThreadPoolExecutor(1, "read") as reader, ThreadPoolExecutor(1, "write") as writer:
-            for i, (name, _, units) in enumerate(LAYERS, start=1):
+            for i, (name, _, units) in enumerate(MAP_LAYERS, start=1):
                 dst.set_band_description(i, name)
                 dst.update_tags(i, units=units)
-            dst.scales = [s for _, s, _ in LAYERS]
-            dst.offsets = [0.0] * len(LAYERS)
+            dst.scales = [s for _, s, _ in MAP_LAYERS]
+            dst.offsets = [0.0] * len(MAP_LAYERS)
             dst.update_tags(
                 notice=NOTICE,
                 class_codes="1 stable natural forest; 2 converted to tree-crop plantation; 3 plantation before the series; 4 other land or disturbance",
+                fire_codes="; ".join(f"{v} {k}" for k, v in FIRE_CODES.items()),
+                # The thresholds the fire layers were attributed with (plantation.mapping.fire.FireRule).
+                fire_rule=json.dumps(asdict(settings.fire), sort_keys=True),
                 cutoff_year=str(settings.cutoff_year),
                 interval_level=str(settings.interval_level),
                 # The mass the intervals hold in the model's distribution, recalibrated so their coverage on held-out data is interval_level.
@@ -256,12 +293,12 @@ def map_tile(
             ahead: deque[Future] = deque(reader.submit(read, w) for w in wins[:2])
             behind: deque[Future] = deque()
             for k, win in enumerate(wins):
-                x, v = ahead.popleft().result()
+                x, v, refl, valid = ahead.popleft().result()
                 if k + 2 < len(wins):
                     ahead.append(reader.submit(read, wins[k + 2]))
                 probs, epi = window_probabilities(art, x, v, settings.pixel_batch, distilled=settings.distilled)
                 clear = v[:, halo : v.shape[1] - halo, halo : v.shape[2] - halo].sum(0).numpy().astype(np.int16)
-                behind.append(writer.submit(write, dst, win, probs, epi, clear))
+                behind.append(writer.submit(write, dst, win, probs, epi, clear, refl, valid))
                 while len(behind) > 1:
                     n = behind.popleft().result()
                     if on_window:
@@ -270,12 +307,18 @@ def map_tile(
                 n = behind.popleft().result()
                 if on_window:
                     on_window(n)
+            # Escaped fire reaches beyond a window: resolved on the whole tile once every window is in.
+            code, fyear = resolve_escaped(fire_code, fire_year, candidates, onsets, settings.fire)
+            dst.write(code, indexes=BAND["fire"])
+            dst.write(fyear, indexes=BAND["fire_year"])
         write_cog(raw, dest)
+        fire_ha = {name: float((areas[:, None] * (code == c)).sum()) for name, c in FIRE_CODES.items() if c != FIRE_CODES["none"]}
+        fire_after = float((areas[:, None] * ((code == FIRE_CODES["converted_burnt"]) & (fyear > settings.cutoff_year))).sum())
     finally:
         raw.unlink(missing_ok=True)
         if stack.reader is not None:
             stack.reader.close()
-    return mapped, {int(y): float(a) for y, a in zip(years, by_year, strict=True)}, after
+    return mapped, {int(y): float(a) for y, a in zip(years, by_year, strict=True)}, after, (fire_ha, fire_after)
 
 
 # --------------------------------------------------------------------------- tasks
@@ -302,8 +345,10 @@ def map_tile_task(job: TileJob, on_window: Callable[[int], None] | None = None) 
     stack = open_tile(job.tile, job.region)
     out = Path(job.out_dir)
     dest = out / f"{job.tile.name}.tif"
-    mapped, by_year, after = map_tile(stack, art, job.settings, dest, region=job.region, on_window=on_window)
+    mapped, by_year, after, (fire_ha, fire_after) = map_tile(stack, art, job.settings, dest, region=job.region, on_window=on_window)
     write_style(class_style(BAND["class"]), out / f"{job.tile.name}.qml")
+    write_style(fire_style(BAND["fire"]), out / f"{job.tile.name}.fire.qml")
+    write_style(dnbr_style(BAND["dnbr"]), out / f"{job.tile.name}.dnbr.qml")
     write_style(onset_style(art.card.years, job.settings.cutoff_year, BAND["onset_year"]), out / f"{job.tile.name}.onset_year.qml")
     write_style(p_after_cutoff_style(job.settings.cutoff_year, BAND["p_after_cutoff"]), out / f"{job.tile.name}.p_after_cutoff.qml")
     if job.settings.quicklook:
@@ -323,4 +368,6 @@ def map_tile_task(job: TileJob, on_window: Callable[[int], None] | None = None) 
         model=job.model_dir,
         model_sha256=job.model_digest,
         probability_correction=job.settings.correction(art),
+        fire_ha=fire_ha,
+        fire_after_cutoff_ha=fire_after,
     )
