@@ -108,7 +108,15 @@ def _masked(ws: Workspace, scratch: Path, damage: Callable[[list[Path]], np.ndar
     if wrong.any():
         r, c = np.argwhere(wrong)[0]
         return Outcome(False, f"clear-date count at row {r}, col {c} is {got[r, c]}, expected {want[r, c]} ({int(wrong.sum())} pixels wrong)", detail=detail)
+    if detail["pixel_dates_spoilt"] < 100:
+        return Outcome(False, f"only {detail['pixel_dates_spoilt']} spoilt pixel-dates were clear: the case tests too little", detail=detail)
     return Outcome(True, f"survey finished; {detail['pixel_dates_spoilt']} spoilt pixel-dates left out of the clear count, none elsewhere", detail=detail)
+
+
+def _clearest(files: list[Path], rank: int) -> int:
+    """The date whose block is clear on the most pixels (``rank`` 0), the next (1), ...: a spoilt cloudy date would test nothing."""
+    counts = [int(_clear(f)[BLOCK].sum()) for f in files]
+    return int(np.argsort(counts, kind="stable")[::-1][rank])
 
 
 def _rewrite(path: Path, change: Callable[[np.ndarray], np.ndarray], dtype: str | None = None) -> None:
@@ -148,7 +156,7 @@ def _nan_inf(ws: Workspace, scratch: Path) -> Outcome:
             b[4, 2::3] = -np.inf
 
         # A float32 date among int16 ones: NaN and inf are only storable as floats.
-        return _spoil(files, 5, change, dtype="float32")
+        return _spoil(files, _clearest(files, 0), change, dtype="float32")
 
     return _masked(ws, scratch, damage)
 
@@ -159,21 +167,22 @@ def _out_of_range(ws: Workspace, scratch: Path) -> Outcome:
             b[3] = 25000  # 2.5 after scaling: a value no surface reflects
             b[1, ::2] = -5000  # −0.5
 
-        return _spoil(files, 9, change)
+        return _spoil(files, _clearest(files, 1), change)
 
     return _masked(ws, scratch, damage)
 
 
 def _saturated(ws: Workspace, scratch: Path) -> Outcome:
     def damage(files: list[Path]) -> np.ndarray:
-        return _spoil(files, 14, lambda b: b[5].fill(np.iinfo(np.int16).max))
+        return _spoil(files, _clearest(files, 2), lambda b: b[5].fill(np.iinfo(np.int16).max))
 
     return _masked(ws, scratch, damage)
 
 
 def _zero_date(ws: Workspace, scratch: Path) -> Outcome:
     def damage(files: list[Path]) -> np.ndarray:
-        k = 30  # a date after 2021-01-01, where the scaling's −0.1 offset would make 0 stored a plausible −0.1
+        # A clear date after 2021-01-01, where the scaling's −0.1 offset would make 0 stored a plausible −0.1.
+        k = max((i for i, f in enumerate(files) if f.name >= "2021"), key=lambda i: int(_clear(files[i]).sum()))
         _rewrite(files[k], lambda d: np.concatenate([np.zeros_like(d[: TOY_QA_BAND - 1]), np.zeros_like(d[TOY_QA_BAND - 1 :])]))
         spoilt = np.zeros((len(files), *_clear(files[0]).shape), bool)
         spoilt[k] = True
