@@ -27,6 +27,19 @@ The figures at the top of each method are of the map after all three; the
 ones before step 3, and with the sample's mix (no correction), are kept
 beside them. The truth is used only to label the assessment sample and to
 score.
+
+Fire in the clearing (:mod:`plantation.mapping.fire`) is scored on the
+simulated region, whose truth raster has a ``fire`` band: the network's map
+(its class and onset year) is attributed as ``plantation map`` attributes it
+and scored against the truth (:func:`plantation.benchmarks.scores.fire_scores`:
+``fire_balanced_accuracy`` over observed clearings, ``escaped_fire_area_ratio``),
+under the model's ``fire``; the same attribution with the truth's own class
+and onset (``fire_with_true_onsets`` in the region's facts) separates the
+attribution's errors from the map's. ``fire_only=true`` scores only that,
+without training, from the truth's onsets and, with ``fire_map=<folder>``,
+from a map of the held-out region made by ``plantation map``, and writes
+the figures into the ``fire`` entry of the simulated region in ``out``,
+leaving the rest of the file as it was.
 """
 
 from __future__ import annotations
@@ -45,19 +58,21 @@ import rasterio
 import torch
 
 from plantation.benchmarks.baselines import AnnualForest, AnnualTrees, BreakRule, annual_features
-from plantation.benchmarks.scores import false_conversion_rate, map_scores, per_class_f1
+from plantation.benchmarks.scores import false_conversion_rate, fire_scores, map_scores, per_class_f1
 from plantation.benchmarks.semireal import SemiRealConfig, ensure_semireal_region, region_config
 from plantation.benchmarks.semireal import simulation_config as semireal_simulation
 from plantation.errors import ConfigError
 from plantation.imagery.config import LabelsConfig, RegionConfig, TileConfig
 from plantation.imagery.region import TileStack, open_region
+from plantation.mapping.fire import FireRule, attribute, decimal_years, resolve_escaped
+from plantation.mapping.folder import BAND, open_map
 from plantation.model import artefact as art_io
 from plantation.model.calibration import apply_recalibration, bbse_prior, expected_calibration_error, fit_recalibration, outcome_groups, reweight
-from plantation.model.inference import predict_tile
+from plantation.model.inference import predict_tile, read_window
 from plantation.model.outcomes import Outcomes, Summary, mass_for_coverage, summarise
 from plantation.model.patches import PatchSet, features, year_of
 from plantation.model.training import TrainConfig, fit, interval_curve, load_region_samples, model_card, resolve_prior
-from plantation.records import write_object
+from plantation.records import load_object, write_object
 from plantation.simulation.landscape import Landscape, build_landscape
 from plantation.simulation.scenario import EVENTS, SimulationConfig, dates_of, decimal_year
 from plantation.simulation.writer import tile_names, write_region
@@ -127,6 +142,12 @@ class ComparisonConfig(TrainConfig):
     progress: bool = True
     #: Also keep the trained model artefact here (None: discard it).
     model_dir: str | None = None
+    #: Thresholds of the fire attribution scored (the mapping job's defaults).
+    fire: FireRule = field(default_factory=FireRule)
+    #: Score only fire in the clearing on the simulated held-out region, without training (see the module docstring).
+    fire_only: bool = False
+    #: With fire_only: a map of the held-out region made by `plantation map`, whose fire layers are scored too (None: the truth's onsets only).
+    fire_map: str | None = None
 
 
 def train_config(cfg: ComparisonConfig) -> TrainConfig:
@@ -170,6 +191,34 @@ def _truth(tile: TileConfig) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.nda
         raise ConfigError(f"tile {tile.name!r}: the evaluation region needs truth rasters")
     with rasterio.open(tile.truth) as src:
         return src.read(1), src.read(2), src.read(3), src.read(4)
+
+
+def _truth_fire(tile: TileConfig) -> np.ndarray | None:
+    """The ``fire`` band (6) of a tile's truth raster, or None for truth rasters made before it (and semi-real regions)."""
+    with rasterio.open(str(tile.truth)) as src:
+        return src.read(6) if src.count >= 6 else None
+
+
+def tile_fire(stack: TileStack, bands: list[str], label: np.ndarray, onset: np.ndarray, rule: FireRule) -> tuple[np.ndarray, np.ndarray]:
+    """Fire codes and years of one tile from its whole series, as the mapping job attributes them (window halo aside)."""
+    refl, valid = read_window(stack, 0, 0, stack.grid.height, stack.grid.width, 0)
+    fw = attribute(refl, valid, decimal_years(stack.dates), bands, label == 2, onset, rule, forest=label == 1)
+    return resolve_escaped(fw.code, fw.year, fw.candidate_year, onset, rule)
+
+
+def region_fire_scores(stacks: list[TileStack], tiles: list[TileConfig], bands: list[str], labels: list[np.ndarray], onsets: list[np.ndarray], rule: FireRule) -> dict[str, Any] | None:
+    """:func:`fire_scores` over a region's tiles for mapped class and onset arrays (one (h, w) pair per tile); None when its truth has no fire band."""
+    parts: dict[str, list[np.ndarray]] = {k: [] for k in ("label", "code", "year", "true_label", "true_fire", "true_year")}
+    for st, tile, lab, ons in zip(stacks, tiles, labels, onsets, strict=True):
+        fire = _truth_fire(tile)
+        if fire is None:
+            return None
+        code, year = tile_fire(st, bands, lab, ons, rule)
+        cls, _, _, event_year = _truth(tile)
+        for k, v in (("label", lab), ("code", code), ("year", year), ("true_label", cls), ("true_fire", fire), ("true_year", event_year)):
+            parts[k].append(np.asarray(v).ravel())
+    a = {k: np.concatenate(v) for k, v in parts.items()}
+    return fire_scores(a["label"], a["code"], a["year"], a["true_label"], a["true_fire"], a["true_year"])
 
 
 def conversion_observability(land: Landscape, date_years: np.ndarray, stack: TileStack, tile: TileConfig) -> tuple[np.ndarray, np.ndarray]:
@@ -469,6 +518,7 @@ def evaluate_seed(cfg: ComparisonConfig, held: HeldOut, seed: int) -> tuple[dict
     n_conv = max(int((truth["label"] == 2).sum()), 1)
     seconds = {"model": model_seconds, "ensemble": model_seconds, "random_forest": forest_seconds, "trees": trees_seconds, "breakpoint": rule_seconds}
     results: dict[str, dict[str, Any]] = {}
+    finals: dict[str, Summary] = {}
     for name in methods:
         p = np.concatenate(probs[name])
         if name == "breakpoint":
@@ -481,6 +531,7 @@ def evaluate_seed(cfg: ComparisonConfig, held: HeldOut, seed: int) -> tuple[dict
             p_region = p if own else reweight(p, train_prior, priors[name])
             summ = summarise(p_region, outcomes.years, cutoff_year=cfg.calibration.cutoff_year, level=masses[name])
             final, fitted = recalibrated(summ, truth, cfg, seed)
+            finals[name] = final
             sc = _scores(final, truth, outcomes, cfg, has_probability=True)
             sc["before_recalibration"] = _headline(_scores(summ, truth, outcomes, cfg, has_probability=True))
             as_sample = summarise(p_sample, outcomes.years, cutoff_year=cfg.calibration.cutoff_year, level=masses[name])
@@ -496,6 +547,15 @@ def evaluate_seed(cfg: ComparisonConfig, held: HeldOut, seed: int) -> tuple[dict
         ens = results.pop("ensemble")
         results["model"]["ensemble"] = {k: ens[k] for k in (*ENSEMBLE_KEYS, "map_seconds")}
         results["model"]["distillation"] = trained.metrics["distillation"]["validation"]
+    # Fire in the clearing, attributed from the network's map (its class and onset year) as `plantation map` does.
+    shapes = [(st.grid.height, st.grid.width) for st in stacks]
+    cuts = np.cumsum([h * w for h, w in shapes])[:-1]
+    per_tile = [[part.reshape(shape) for part, shape in zip(np.split(np.asarray(a).ravel(), cuts), shapes, strict=True)] for a in (finals["model"].label, finals["model"].year)]
+    fire = region_fire_scores(stacks, region.tiles, list(region.bands), per_tile[0], per_tile[1], cfg.fire)
+    if fire is not None:
+        results["model"]["fire_balanced_accuracy"] = fire["fire_balanced_accuracy"]
+        results["model"]["escaped_fire_area_ratio"] = fire["escaped_fire_area_ratio"]
+        results["model"]["fire"] = fire
     results["model"]["networks"] = "distilled" if artefact.distilled is not None else "ensemble"
     results["model"]["members"] = len(artefact.members)
     results["model"]["temperature"] = round(artefact.card.calibration.temperature, 4)
@@ -515,10 +575,57 @@ def evaluate_seed(cfg: ComparisonConfig, held: HeldOut, seed: int) -> tuple[dict
         "observable_ceiling": round(float(truth["seen"].sum() / n_conv), 4),
         "conversions_first_seen_in_onset_year": round(float(truth["in_year"].sum() / n_conv), 4),
         "forest_plot_pixels": int(truth["forest_plots"].sum()),
+        # The fire attribution with the truth's own class and onset: its errors without the map's.
+        "fire_with_true_onsets": true_onset_fire(stacks, region, cfg.fire),
         "train_region": held.train.region.name,
         "labels_fingerprint": labels.fingerprint,
     }
     return results, facts
+
+
+def true_onset_fire(stacks: list[TileStack], region: RegionConfig, rule: FireRule) -> dict[str, Any] | None:
+    """Fire scores of the held-out region attributed from the truth's class and onset year (None without a fire truth band)."""
+    truths = [_truth(t) for t in region.tiles]
+    return region_fire_scores(stacks, region.tiles, list(region.bands), [t[0] for t in truths], [t[1] for t in truths], rule)
+
+
+def fire_only(cfg: ComparisonConfig) -> dict[str, Any]:
+    """Score fire in the clearing on the simulated held-out region without training; merge the figures into ``cfg.out`` under ``regions.simulated.fire``.
+
+    From the truth's class and onset always; from a map of the region
+    (``cfg.fire_map``, made by ``plantation map``) when given: the fire
+    layers it holds, or, for a map made before them, the attribution of its
+    class and onset bands.
+    """
+    held = simulated_held_out(cfg)
+    region = held.region
+    stacks = open_region(region)
+    out: dict[str, Any] = {"rule": asdict(cfg.fire), "fire_with_true_onsets": true_onset_fire(stacks, region, cfg.fire)}
+    if out["fire_with_true_onsets"] is None:
+        raise ConfigError(f"{cfg.eval_dir}: the held-out region's truth rasters have no fire band; delete the folder so that it is simulated again")
+    if cfg.fire_map:
+        made = open_map(cfg.fire_map)
+        mapped = {t.name: t for t in made.tiles}
+        missing = [t.name for t in region.tiles if t.name not in mapped]
+        if missing:
+            raise ConfigError(f"fire_map: {cfg.fire_map} has no tile(s) {missing} of the held-out region {region.name}; map that region (eval_dir {cfg.eval_dir}) with `plantation map`")
+        parts: dict[str, list[np.ndarray]] = {k: [] for k in ("label", "code", "year", "true_label", "true_fire", "true_year")}
+        for st, tile in zip(stacks, region.tiles, strict=True):
+            mt = mapped[tile.name]
+            with rasterio.open(mt.path) as src:
+                lab, onset = src.read(BAND["class"]), src.read(BAND["onset_year"])
+                code, year = (src.read(BAND["fire"]), src.read(BAND["fire_year"])) if mt.has_fire else tile_fire(st, list(region.bands), lab, onset, cfg.fire)
+            cls, _, _, event_year = _truth(tile)
+            for k, v in (("label", lab), ("code", code), ("year", year), ("true_label", cls), ("true_fire", _truth_fire(tile)), ("true_year", event_year)):
+                parts[k].append(np.asarray(v).ravel())
+        a = {k: np.concatenate(v) for k, v in parts.items()}
+        scores = fire_scores(a["label"], a["code"], a["year"], a["true_label"], a["true_fire"], a["true_year"])
+        origin = {"folder": Path(cfg.fire_map).name, "model_sha256": made.model_sha256, "fire_layers": all(t.has_fire for t in made.tiles)}
+        out.update({"fire_balanced_accuracy": scores["fire_balanced_accuracy"], "escaped_fire_area_ratio": scores["escaped_fire_area_ratio"], "map": origin, "from_map": scores})
+    report: dict[str, Any] = load_object(Path(cfg.out), what="an accuracy benchmark result", again="run `plantation benchmark-accuracy` again") if Path(cfg.out).is_file() else {}
+    report.setdefault("regions", {}).setdefault("simulated", {})["fire"] = out
+    write_object(report, cfg.out, indent=2)
+    return report
 
 
 #: Figures kept of the full ensemble beside the distilled network's.
@@ -537,6 +644,8 @@ def run(cfg: ComparisonConfig) -> dict[str, Any]:
     if not cfg.seeds:
         raise ConfigError("seeds: give at least one training seed, e.g. seeds=[0,1,2]")
     torch.set_num_threads(cfg.training.threads or (os.cpu_count() or 1))
+    if cfg.fire_only:
+        return fire_only(cfg)
     builders = {"simulated": simulated_held_out, "semi_real": semi_real_held_out}
     unknown = [r for r in cfg.regions if r not in builders]
     if unknown or not cfg.regions:

@@ -13,9 +13,11 @@ from typing import Any
 import numpy as np
 from sklearn.metrics import f1_score
 
+from plantation.mapping.fire import FIRE_CODES
 from plantation.model.calibration import expected_calibration_error
 from plantation.model.outcomes import Summary
 from plantation.reference.labels import LABEL_CODES, LABEL_NAMES
+from plantation.simulation.scenario import FIRE_TRUTH
 
 CONVERSION = LABEL_CODES["conversion"]
 
@@ -161,3 +163,58 @@ def false_conversion_rate(
                 res["n_by_years_since"][name] = int(mb.sum())
         out[kind] = res
     return out
+
+
+def fire_scores(mapped_label: np.ndarray, fire_code: np.ndarray, fire_year: np.ndarray, true_label: np.ndarray, true_fire: np.ndarray, true_event_year: np.ndarray) -> dict[str, Any]:
+    """Fire in the clearing against the simulator's truth, over all pixels.
+
+    Burnt vs not burnt is scored on the observed clearings: pixels converted
+    in the truth and mapped as converted with a known fire code (burnt or
+    not burnt); ``unknown`` is counted apart (its share of the mapped true
+    clearings), never as "no fire". Escaped fire is scored by area: mapped
+    escaped-fire pixels over true ones, with the share of mapped pixels that
+    are truly escaped fire and, of those, the share with the true year.
+
+    Args:
+        mapped_label: the map's class codes; fire_code, fire_year: its fire
+            layers (codes of :data:`plantation.mapping.fire.FIRE_CODES`).
+        true_label: truth class codes; true_fire: the truth's ``fire`` band
+            (:data:`plantation.simulation.scenario.FIRE_TRUTH`); true_event_year: its ``event_year`` band.
+
+    Returns:
+        ``fire_balanced_accuracy`` (mean of the recalls of burnt and not
+        burnt; None without both), ``burnt_recall``, ``not_burnt_recall``,
+        ``known_share``, ``observed_clearings``, ``escaped_fire_area_ratio``
+        (None without true escaped fire), ``escaped_fire_precision``,
+        ``escaped_fire_year_exact``, and the pixel counts.
+    """
+    lab, code, year = (np.asarray(a).ravel() for a in (mapped_label, fire_code, fire_year))
+    tl, tf, ty = (np.asarray(a).ravel() for a in (true_label, true_fire, true_event_year))
+    clearings = (tl == CONVERSION) & (lab == CONVERSION)
+    burnt_map = code == FIRE_CODES["converted_burnt"]
+    known = clearings & (burnt_map | (code == FIRE_CODES["converted_not_burnt"]))
+    burnt_true = tf == FIRE_TRUTH["clearing_burnt"]
+    pos, neg = int((known & burnt_true).sum()), int((known & ~burnt_true).sum())
+    tpr = float((known & burnt_true & burnt_map).sum() / pos) if pos else None
+    tnr = float((known & ~burnt_true & ~burnt_map).sum() / neg) if neg else None
+    esc_map = code == FIRE_CODES["escaped_fire"]
+    esc_true = tf == FIRE_TRUTH["escaped_fire"]
+    hit = esc_map & esc_true
+    n_map, n_true = int(esc_map.sum()), int(esc_true.sum())
+
+    def r(x: float | None) -> float | None:
+        return None if x is None else round(float(x), 4)
+
+    return {
+        "fire_balanced_accuracy": r((tpr + tnr) / 2) if tpr is not None and tnr is not None else None,
+        "burnt_recall": r(tpr),
+        "not_burnt_recall": r(tnr),
+        "observed_clearings": int(known.sum()),
+        "observed_burnt": pos,
+        "observed_not_burnt": neg,
+        "known_share": r(known.sum() / clearings.sum()) if clearings.any() else None,
+        "escaped_fire_area_ratio": r(n_map / n_true) if n_true else None,
+        "escaped_fire_precision": r(hit.sum() / n_map) if n_map else None,
+        "escaped_fire_year_exact": r((hit & (year == ty)).sum() / hit.sum()) if hit.any() else None,
+        "escaped_fire_pixels": {"mapped": n_map, "true": n_true},
+    }

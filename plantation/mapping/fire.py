@@ -67,7 +67,7 @@ FIRE_MEANING = (
 FIRE_BANDS: tuple[str, ...] = ("red", "nir", "swir1", "swir2")
 
 
-@dataclass(frozen=True)
+@dataclass
 class FireRule:
     """Thresholds of the attribution (unitless indices; years).
 
@@ -130,7 +130,7 @@ def attribute(
     bands: Sequence[str],
     converted: np.ndarray,
     onset_year: np.ndarray,
-    rule: FireRule = FireRule(),
+    rule: FireRule | None = None,
     forest: np.ndarray | None = None,
 ) -> FireWindow:
     """Fire attribution of a window's pixels from their reflectance series.
@@ -142,13 +142,14 @@ def attribute(
         bands: band roles of ``reflectance``'s band axis; needs :data:`FIRE_BANDS`.
         converted: bool (h, w), pixels mapped as converted.
         onset_year: (h, w) their mapped onset year.
-        rule: thresholds.
+        rule: thresholds (None: the defaults).
         forest: bool (h, w), pixels mapped as stable forest, where escaped fire is looked for (None: every pixel not converted).
 
     Returns:
         The window's :class:`FireWindow`; without the bands it needs, every
         converted pixel is ``converted_unknown`` and no fire is seen elsewhere.
     """
+    rule = rule or FireRule()
     t = np.asarray(date_years, dtype=np.float64)
     valid = np.asarray(valid, dtype=bool)
     converted = np.asarray(converted, dtype=bool)
@@ -201,7 +202,7 @@ def attribute(
     return FireWindow(code, year, dn, cand)
 
 
-def resolve_escaped(code: np.ndarray, year: np.ndarray, candidate_year: np.ndarray, onset_year: np.ndarray, rule: FireRule = FireRule()) -> tuple[np.ndarray, np.ndarray]:
+def resolve_escaped(code: np.ndarray, year: np.ndarray, candidate_year: np.ndarray, onset_year: np.ndarray, rule: FireRule | None = None) -> tuple[np.ndarray, np.ndarray]:
     """A tile's fire and fire-year bands with escaped fire marked: canopy lost beside a clearing mapped as burnt or unknown, in its season.
 
     Args:
@@ -212,6 +213,7 @@ def resolve_escaped(code: np.ndarray, year: np.ndarray, candidate_year: np.ndarr
     Returns:
         (code, year) copies with :data:`FIRE_CODES` ``escaped_fire`` and its year set.
     """
+    rule = rule or FireRule()
     code, year = code.copy(), year.copy()
     cand = np.asarray(candidate_year)
     eligible = (code == FIRE_CODES["none"]) & (cand > 0)

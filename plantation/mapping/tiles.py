@@ -18,7 +18,7 @@ import time
 from collections import deque
 from collections.abc import Callable, Sequence
 from concurrent.futures import Future, ThreadPoolExecutor
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -61,7 +61,7 @@ class Settings:
     #: Map with the model's distilled network when it has one (False: every ensemble member).
     distilled: bool = True
     #: Thresholds of the fire layers (:class:`plantation.mapping.fire.FireRule`).
-    fire: FireRule = FireRule()
+    fire: FireRule = field(default_factory=FireRule)
 
     def content_key(self) -> dict[str, Any]:
         # Window, batch and threads change float rounding at most, not what the map says.
