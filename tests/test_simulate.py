@@ -21,7 +21,7 @@ from plantation.imagery.region import open_region
 from plantation.reference.labels import LABEL_CODES, read_labels
 from plantation.simulation import spectra
 from plantation.simulation.landscape import Simulator
-from plantation.simulation.scenario import EVENTS, QA_CLOUD, SimulationConfig
+from plantation.simulation.scenario import EVENTS, FIRE_TRUTH, QA_CLOUD, SimulationConfig
 from plantation.simulation.writer import tile_names, write_region
 
 
@@ -139,7 +139,7 @@ def test_conversions_per_area_and_years(small_region):
     parcels, onsets = {}, []
     for name, _, _ in tile_names(SMALL):
         with rasterio.open(small_region / name / "truth.tif") as src:
-            cls, onset, event, _, pid = src.read()
+            cls, onset, event, _, pid = src.read([1, 2, 3, 4, 5])
         conv = cls == LABEL_CODES["conversion"]
         assert np.isin(event[conv], [EVENTS["estate_conversion"], EVENTS["holding_conversion"]]).all()
         assert (onset[conv] >= SMALL.first_year).all() and (onset[conv] <= SMALL.last_year).all()
@@ -205,3 +205,51 @@ def test_committed_toy_region_regenerates_exactly(tmp_path, table):
     sim_cfg = to_object(cfg.sim, SimulationConfig)
     out = write_region(sim_cfg, tmp_path / "toy", progress=False, table=table)
     assert json.loads((out / "MANIFEST.json").read_text()) == json.loads((root / "toy_tiles" / "MANIFEST.json").read_text())
+
+
+# --------------------------------------------------------------------------- escaped fire
+
+
+def test_escaped_fire_off_leaves_the_region_as_it_was(table):
+    """Escaped fire draws from its own stream: off (the default), every parcel, draw and reflectance is what it was; on, the other parcels keep theirs."""
+    cfg = SimulationConfig(tiles_x=1, tiles_y=1, tile_size=96, block=96, seed=11, estates_per_100km2=30.0)
+    assert cfg.escaped_fire_share == 0.0
+    off, on = Simulator(cfg, table), Simulator(replace(cfg, escaped_fire_share=1.0), table)
+    n = off.landscape.n_main
+    assert len(off.landscape.geoms) == n and on.landscape.n_main == n and len(on.landscape.geoms) > n
+    np.testing.assert_array_equal(on.landscape.params[: n + 1], off.landscape.params)
+    np.testing.assert_array_equal(on.landscape.t_event[: n + 1], off.landscape.t_event)
+    # Only forest background burns, and the rest of the truth is unchanged.
+    t_off, t_on = off.truth(0, 0, 96, 96), on.truth(0, 0, 96, 96)
+    burnt = t_on[2] == EVENTS["escaped_fire"]
+    assert burnt.sum() > 20
+    assert (t_off[2][burnt] == EVENTS["none"]).all() and (t_on[0][burnt] == LABEL_CODES["stable_forest"]).all()
+    np.testing.assert_array_equal(t_on[:, ~burnt], t_off[:, ~burnt])
+    surf_off, surf_on = off.surface(off.static(0, 0, 96, 96), 20), on.surface(on.static(0, 0, 96, 96), 20)
+    np.testing.assert_array_equal(surf_on[:, ~burnt], surf_off[:, ~burnt])
+
+
+def test_escaped_fire_sits_beside_a_burnt_clearing_in_its_season(table):
+    from scipy.ndimage import binary_dilation
+
+    cfg = SimulationConfig(tiles_x=1, tiles_y=1, tile_size=96, block=96, seed=11, estates_per_100km2=30.0, escaped_fire_share=1.0, escaped_fire_ha=[2.0, 4.0])
+    sim = Simulator(cfg, table)
+    fire = sim.fire_truth(0, 0, 96, 96)
+    truth = sim.truth(0, 0, 96, 96)
+    escaped = fire == FIRE_TRUTH["escaped_fire"]
+    clearing = fire == FIRE_TRUTH["clearing_burnt"]
+    assert escaped.any() and clearing.any()
+    # Within the fire's reach (at most about 8 pixels at 30 m for 6 ha) of a burnt clearing, and never of one cleared by machines only.
+    assert (escaped & ~binary_dilation(clearing, iterations=10)).sum() == 0
+    # Every converted pixel is a clearing, burnt or not; no other pixel is.
+    conv = truth[0] == LABEL_CODES["conversion"]
+    assert set(np.unique(fire[conv])) <= {FIRE_TRUTH["clearing_burnt"], FIRE_TRUTH["clearing_not_burnt"]}
+    L = sim.landscape
+    pid = truth[4]
+    for p in np.unique(pid[escaped]):
+        t_fire = L.t_event[p]
+        # The clearing it escaped from burnt in the same season (within 0.1 year before it).
+        near = binary_dilation(pid == p, iterations=10) & clearing
+        assert near.any()
+        assert np.any((t_fire - L.t_event[np.unique(pid[near])] >= 0) & (t_fire - L.t_event[np.unique(pid[near])] <= 0.1 + 1e-9))
+        assert truth[3][pid == p].max() == int(np.floor(t_fire))
