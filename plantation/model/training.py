@@ -47,7 +47,7 @@ import lightning as L
 import numpy as np
 import pandas as pd
 import torch
-from torch.utils.data import DataLoader, TensorDataset
+from torch.utils.data import ConcatDataset, DataLoader, TensorDataset
 
 from plantation import __version__
 from plantation.errors import ConfigError, FileFormatError
@@ -238,15 +238,15 @@ class ConversionTask(SeriesTask):
 
 
 class SampleDataModule(L.LightningDataModule):
-    """Pre-built tensors of the train and validation splits.
+    """Pre-built tensors of the train and validation splits (the parts themselves, not copies: the samples are the largest arrays a training holds).
 
     ``num_workers`` is 0 on purpose: the samples are already in memory and a
     worker process per loader costs more than it saves for a model this small.
     """
 
-    def __init__(self, samples: PatchSet, batch_size: int) -> None:
+    def __init__(self, train: PatchSet, val: PatchSet, batch_size: int) -> None:
         super().__init__()
-        self.samples = samples
+        self.train, self.val = train, val
         self.batch_size = batch_size
 
     @staticmethod
@@ -254,10 +254,10 @@ class SampleDataModule(L.LightningDataModule):
         return TensorDataset(torch.from_numpy(s.x), torch.from_numpy(s.valid), torch.from_numpy(s.target), torch.from_numpy(s.weight_or_ones()))
 
     def train_dataloader(self) -> DataLoader:
-        return DataLoader(self.tensors(self.samples.part("train")), batch_size=self.batch_size, shuffle=True, drop_last=True)
+        return DataLoader(self.tensors(self.train), batch_size=self.batch_size, shuffle=True, drop_last=True)
 
     def val_dataloader(self) -> DataLoader:
-        return DataLoader(self.tensors(self.samples.part("val")), batch_size=256)
+        return DataLoader(self.tensors(self.val), batch_size=256)
 
 
 def network_spec(samples: PatchSet, cfg: TrainConfig) -> dict[str, Any]:
@@ -620,7 +620,7 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
             warnings.filterwarnings("ignore", message=".*treespec, LeafSpec.*")
             # Members share one checkpoint folder, each with its own file name.
             warnings.filterwarnings("ignore", message=".*exists and is not empty.*")
-            trainer.fit(task, SampleDataModule(samples, cfg.training.batch_size), ckpt_path=last[0] if last else None, weights_only=True)
+            trainer.fit(task, SampleDataModule(train, val, cfg.training.batch_size), ckpt_path=last[0] if last else None, weights_only=True)
         is_zero = trainer.is_global_zero
         best = trainer.checkpoint_callback.best_model_path if trainer.checkpoint_callback else ""
         if best and Path(best).is_file():
@@ -792,12 +792,12 @@ def distil(
     """
     dc = cfg.distillation
     train, val = samples.part("train"), samples.part("val")
-    xs, vs = [train.x], [train.valid]
+    # The parts side by side rather than concatenated: the same items in the same order, without a copy of them all.
+    parts = [TensorDataset(torch.from_numpy(train.x), torch.from_numpy(train.valid))]
     if stacks and dc.pixels > 0:
         for x, v in unlabelled_patches(stacks, cfg, n=dc.pixels, seed=cfg.training.seed + 7919):
-            xs.append(x)
-            vs.append(v)
-    data = TensorDataset(torch.from_numpy(np.concatenate(xs)), torch.from_numpy(np.concatenate(vs)))
+            parts.append(TensorDataset(torch.from_numpy(x), torch.from_numpy(v)))
+    data = ConcatDataset(parts)
     held = TensorDataset(torch.from_numpy(val.x), torch.from_numpy(val.valid))
     L.seed_everything(cfg.training.seed * 1000 + 999, workers=True, verbose=False)
     began = time.perf_counter()

