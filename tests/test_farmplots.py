@@ -22,6 +22,7 @@ import numpy as np
 import pandas as pd
 import pyogrio
 import pytest
+import rasterio
 import shapely
 from affine import Affine
 from pyproj import CRS as ProjCRS
@@ -44,7 +45,7 @@ from plantation.farmplots.cutoff import (
     write_outputs,
 )
 from plantation.farmplots.evidence import EvidenceConfig, read_evidence
-from plantation.mapping.folder import FORMAT, NODATA
+from plantation.mapping.folder import FIRE, FORMAT, MAP_LAYERS, NODATA
 from tests.conftest import write_map_tile
 
 ROOT = Path(__file__).resolve().parents[1]
@@ -66,12 +67,16 @@ def pixel_box(r0: float, c0: float, r1: float, c1: float) -> shapely.Polygon:
     return shapely.box(min(xa, xb), min(ya, yb), max(xa, xb), max(ya, yb))
 
 
-def write_tile(folder: Path, name: str = "t01", *, cls=None, onset=None, p_after=None, clear=None, transform: Affine = TRANSFORM, shape=(10, 10), cutoff_year: int = 2020, years=None) -> Path:
+def write_tile(
+    folder: Path, name: str = "t01", *, cls=None, onset=None, p_after=None, clear=None, transform: Affine = TRANSFORM, shape=(10, 10), cutoff_year: int = 2020, years=None, fire=None, fire_year=None
+) -> Path:
     """A map tile like scripts/map.py writes (8 int16 bands, p_* stored × 10000 with scale 1e-4), added to ``folder/manifest.json``.
 
     ``p_after`` is given as stored integers; ``cls`` may hold NODATA;
     ``years``: the onset years the map can hold, recorded as the manifest's
     ``converted_ha`` keys as the mapper does (None: none recorded).
+    ``fire``, ``fire_year``: the fire layers, written after the eight as the
+    mapper writes them (None: a tile of a map made before them, 8 bands).
     """
     folder.mkdir(parents=True, exist_ok=True)
     h, w = shape
@@ -83,7 +88,21 @@ def write_tile(folder: Path, name: str = "t01", *, cls=None, onset=None, p_after
     bands[0], bands[1], bands[5], bands[7] = cls, onset, p_after, clear
     bands[:7, cls == NODATA] = NODATA
     path = folder / f"{name}.tif"
-    write_map_tile(path, bands, crs=CRS, transform=transform, tags={"cutoff_year": str(cutoff_year), "interval_level": "0.8"})
+    tags = {"cutoff_year": str(cutoff_year), "interval_level": "0.8"}
+    if fire is None:
+        write_map_tile(path, bands, crs=CRS, transform=transform, tags=tags)
+    else:
+        extra = np.stack([np.asarray(fire, np.int16), np.zeros(shape, np.int16) if fire_year is None else np.asarray(fire_year, np.int16), np.full(shape, NODATA, np.int16)])
+        extra[:, cls == NODATA] = NODATA
+        prof = {"driver": "GTiff", "width": w, "height": h, "count": len(MAP_LAYERS), "dtype": "int16", "crs": CRS, "transform": transform, "nodata": NODATA}
+        with rasterio.open(path, "w", **prof) as dst:
+            dst.write(np.concatenate([bands, extra]))
+            for i, (desc, _, units) in enumerate(MAP_LAYERS, start=1):
+                dst.set_band_description(i, desc)
+                dst.update_tags(i, units=units)
+            dst.scales = [sc for _, sc, _ in MAP_LAYERS]
+            dst.offsets = [0.0] * len(MAP_LAYERS)
+            dst.update_tags(**tags)
     man = folder / "manifest.json"
     doc = json.loads(man.read_text()) if man.exists() else {"format": FORMAT, "producer": "test", "tiles": {}}
     doc["tiles"][name] = {"file": path.name, "sha256": hashlib.sha256(path.read_bytes()).hexdigest(), "tile": name}
@@ -215,6 +234,38 @@ def test_partial_pixels_exact_area_by_hand(tmp_path):
     assert row.mapped_share == pytest.approx(areal_scale(*plot.centroid.coords[0]), abs=1e-5)
     assert row.share_after == pytest.approx(row.expected_after_ha / row.mapped_ha)
     assert row.verdict == "review" and row.straddle_ha == 0.0
+
+
+def test_fire_columns_by_hand(tmp_path):
+    """Share of the converted area cleared with fire, fire after the cutoff, unknown and escaped fire: whole 900 m² pixels counted by hand."""
+    cls = np.ones((10, 10), np.int16)
+    onset = np.zeros((10, 10), np.int16)
+    fire = np.zeros((10, 10), np.int16)
+    year = np.zeros((10, 10), np.int16)
+    cls[0:4, 0:5], onset[0:4, 0:5] = 2, 2019  # 20 converted pixels
+    fire[0:4, 0:5] = FIRE["converted_not_burnt"]
+    fire[0:2, 0:5], year[0:2, 0:5] = FIRE["converted_burnt"], 2019  # 10 burnt ...
+    year[0, 0:4] = 2021  # ... 4 of them after the 2020 cutoff
+    fire[2, 0:5] = FIRE["converted_unknown"]  # 5 unknown
+    fire[4, 0:3], year[4, 0:3] = FIRE["escaped_fire"], 2019  # 3 forest pixels burnt by an escaped fire
+    fire[6, 6], cls[6, 6], onset[6, 6] = FIRE["converted_burnt"], 2, 2019  # outside the plot
+    maps = write_tile(tmp_path / "map", cls=cls, onset=onset, fire=fire, fire_year=year)
+    plots = write_plots(tmp_path / "plots.gpkg", [pixel_box(0, 0, 5, 5)], ["A"])
+    (row,) = run(cfg_for(tmp_path, plots, maps)).rows
+    assert row.converted_ha == pytest.approx(20 * 0.09)
+    assert row.fire_ha == pytest.approx(10 * 0.09) and row.fire_share == pytest.approx(0.5)
+    assert row.fire_after_ha == pytest.approx(4 * 0.09)
+    assert row.fire_unknown_ha == pytest.approx(5 * 0.09)
+    assert row.escaped_fire_ha == pytest.approx(3 * 0.09)
+    doc = json.loads((tmp_path / "out" / "plots.json").read_text())
+    assert doc["plots"][0]["fire_share"] == pytest.approx(0.5)
+    table = pd.read_csv(tmp_path / "out" / "plots.csv")
+    assert table.loc[0, "fire_after_ha"] == pytest.approx(0.36)
+    # A map made before the fire layers says nothing of fire: blank, never 0.
+    old = write_tile(tmp_path / "old", cls=cls, onset=onset)
+    (row,) = run(cfg_for(tmp_path, plots, old)).rows
+    assert row.converted_ha == pytest.approx(20 * 0.09)
+    assert row.fire_ha is None and row.fire_share is None and row.fire_after_ha is None and row.escaped_fire_ha is None
 
 
 def test_plot_half_outside_the_map(tmp_path):
@@ -398,6 +449,11 @@ def test_outputs_schema_and_geojson_in_wgs84(tmp_path):
         "years",
         "straddle_ha",
         "mean_clear",
+        "fire_ha",
+        "fire_share",
+        "fire_unknown_ha",
+        "fire_after_ha",
+        "escaped_fire_ha",
         "verdict",
         "reasons",
     ]

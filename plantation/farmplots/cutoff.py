@@ -36,6 +36,13 @@ hectares):
   year when the cutoff falls inside a year (the map resolves years only, so
   those conversions may lie either side of the date); ``mean_clear``: mean
   clear dates under the plot, weighted by covered area.
+* fire in the clearing (the map's fire layers, :mod:`plantation.mapping.fire`;
+  None for a map made before them): ``fire_ha``, the converted area cleared
+  with fire; ``fire_share`` = fire_ha / converted_ha; ``fire_unknown_ha``,
+  converted area whose clearing had no clear view close enough to tell (not
+  "no fire"); ``fire_after_ha``, converted area cleared with fire in a year
+  after the cutoff year; ``escaped_fire_ha``, forest burnt by fire escaped
+  from a clearing (not converted).
 * ``verdict``: ``low_evidence``, ``review`` or ``strong_evidence`` by the
   rules of :class:`VerdictConfig`, and ``reasons`` in words.
 
@@ -72,11 +79,13 @@ from pyproj import CRS, Geod, Transformer
 from plantation.errors import ConfigError, FileFormatError, InputNotFoundError, PlantationError
 from plantation.farmplots.evidence import VERDICT_NAMES, EvidenceConfig, EvidenceResult, PagePlot, check_evidence_config, open_imagery, select, write_pages
 from plantation.imagery.config import RegionConfig
-from plantation.mapping.folder import BAND, NO_CORRECTION, NODATA, NOTICE, MapTile, file_digest, open_map
+from plantation.mapping.folder import BAND, FIRE, NO_CORRECTION, NODATA, NOTICE, MapTile, file_digest, open_map
 from plantation.records import check_shapes, load_object, locate
 from plantation.reference.labels import LABEL_CODES
 
 KIND = "plantation-plots/1"
+#: Fire code of a pixel whose map tile has no fire layers (a map made before them).
+NO_FIRE_LAYERS = -1
 #: The plot check's record, written by :func:`run` and read by :func:`read_plots_json` (this module is its one reader and writer).
 PLOTS_JSON = "plots.json"
 VERDICTS: tuple[str, ...] = VERDICT_NAMES
@@ -104,7 +113,7 @@ LEAD_COLUMNS: tuple[str, ...] = (
     "converted_ha",
 )
 #: The tables' columns after the per-year ones.
-TAIL_COLUMNS: tuple[str, ...] = ("straddle_ha", "mean_clear", "verdict", "reasons")
+TAIL_COLUMNS: tuple[str, ...] = ("straddle_ha", "mean_clear", "fire_ha", "fire_share", "fire_unknown_ha", "fire_after_ha", "escaped_fire_ha", "verdict", "reasons")
 #: Layer name in plots.gpkg.
 GPKG_LAYER = "plots"
 _GEOD = Geod(ellps="WGS84")
@@ -389,6 +398,7 @@ class Pixels:
         onset: onset year (0 where no conversion is mapped).
         p_after: p_after_cutoff (scaled to a probability); NaN where no data.
         clear: clear dates.
+        fire, fire_year: the fire layers (codes of :data:`plantation.mapping.folder.FIRE`); :data:`NO_FIRE_LAYERS` where the tile has none.
     """
 
     covered_m2: np.ndarray
@@ -396,6 +406,14 @@ class Pixels:
     onset: np.ndarray
     p_after: np.ndarray
     clear: np.ndarray
+    fire: np.ndarray | None = None
+    fire_year: np.ndarray | None = None
+
+    def __post_init__(self) -> None:
+        if self.fire is None:
+            self.fire = np.full(self.cls.shape, NO_FIRE_LAYERS, np.int32)
+        if self.fire_year is None:
+            self.fire_year = np.zeros(self.cls.shape, np.int32)
 
     @staticmethod
     def empty() -> Pixels:
@@ -406,7 +424,7 @@ class Pixels:
     def concat(parts: Sequence[Pixels]) -> Pixels:
         if not parts:
             return Pixels.empty()
-        return Pixels(*(np.concatenate([getattr(p, k) for p in parts]) for k in ("covered_m2", "cls", "onset", "p_after", "clear")))
+        return Pixels(*(np.concatenate([getattr(p, k) for p in parts]) for k in ("covered_m2", "cls", "onset", "p_after", "clear", "fire", "fire_year")))
 
 
 class TileReader:
@@ -424,7 +442,7 @@ class TileReader:
         grid_only = np.broadcast_to(np.zeros((1, 1), np.uint8), (g.height, g.width))
         self._source = NumPyRasterSource(grid_only, west, south, east, north)
         self._areas = g.row_areas_m2()
-        self._bands = [BAND["class"], BAND["onset_year"], BAND["p_after_cutoff"], BAND["clear_dates"]]
+        self._bands = [BAND["class"], BAND["onset_year"], BAND["p_after_cutoff"], BAND["clear_dates"]] + ([BAND["fire"], BAND["fire_year"]] if tile.has_fire else [])
         self.footprint = shapely.box(west, south, east, north)
         self._ds = rasterio.open(tile.path)
 
@@ -455,7 +473,8 @@ class TileReader:
         cls = vals[0].astype(np.int32)
         data = cls != NODATA
         p = np.where(data, vals[2].astype(np.float64) * self.tile.scale + self.tile.offset, np.nan)
-        return Pixels(frac * self._areas[rows], cls, vals[1].astype(np.int32), p, vals[3].astype(np.float64))
+        fire = (vals[4].astype(np.int32), vals[5].astype(np.int32)) if self.tile.has_fire else (None, None)
+        return Pixels(frac * self._areas[rows], cls, vals[1].astype(np.int32), p, vals[3].astype(np.float64), *fire)
 
 
 # --------------------------------------------------------------------------- per-plot numbers
@@ -484,6 +503,11 @@ class PlotRow:
     years: dict[int, float] = field(default_factory=dict)
     straddle_ha: float | None = None
     mean_clear: float | None = None
+    fire_ha: float | None = None
+    fire_share: float | None = None
+    fire_unknown_ha: float | None = None
+    fire_after_ha: float | None = None
+    escaped_fire_ha: float | None = None
     verdict: str | None = None
     reasons: list[str] = field(default_factory=list)
     geometry: Any = None
@@ -517,6 +541,14 @@ def measure(px: Pixels, area_ha: float, cutoff: Cutoff, level: float) -> dict[st
         years[int(y)] = float(cov[conv & (px.onset == y)].sum()) / 1e4
     straddle = years.get(cutoff.straddle_year, 0.0) if cutoff.straddle_year is not None else 0.0
     total = float(cov.sum())
+    converted_ha = float(cov[conv].sum()) / 1e4
+    # Fire layers count only where the plot's pixels all have them (a tile of an older map has none).
+    has_fire = bool(cov.size) and not (px.fire == NO_FIRE_LAYERS).any()
+
+    def fire_area(m: np.ndarray) -> float | None:
+        return float(cov[data & m].sum()) / 1e4 if has_fire else None
+
+    fire_ha = fire_area(px.fire == FIRE["converted_burnt"])
     return {
         "area_ha": area_ha,
         "mapped_ha": mapped_ha,
@@ -525,10 +557,15 @@ def measure(px: Pixels, area_ha: float, cutoff: Cutoff, level: float) -> dict[st
         "after_lo_ha": lo,
         "after_hi_ha": hi,
         "share_after": expected / mapped_ha if mapped_ha > 0 else None,
-        "converted_ha": float(cov[conv].sum()) / 1e4,
+        "converted_ha": converted_ha,
         "years": years,
         "straddle_ha": straddle,
         "mean_clear": float((px.clear * cov).sum()) / total if total > 0 else None,
+        "fire_ha": fire_ha,
+        "fire_share": fire_ha / converted_ha if fire_ha is not None and converted_ha > 0 else None,
+        "fire_unknown_ha": fire_area(px.fire == FIRE["converted_unknown"]),
+        "fire_after_ha": fire_area((px.fire == FIRE["converted_burnt"]) & (px.fire_year > cutoff.year)),
+        "escaped_fire_ha": fire_area(px.fire == FIRE["escaped_fire"]),
     }
 
 
@@ -609,6 +646,11 @@ def _record(r: PlotRow) -> dict[str, Any]:
         "years": {str(y): _round(a) for y, a in sorted(r.years.items())},
         "straddle_ha": _round(r.straddle_ha),
         "mean_clear": _round(r.mean_clear, 2),
+        "fire_ha": _round(r.fire_ha),
+        "fire_share": _round(r.fire_share),
+        "fire_unknown_ha": _round(r.fire_unknown_ha),
+        "fire_after_ha": _round(r.fire_after_ha),
+        "escaped_fire_ha": _round(r.escaped_fire_ha),
         "verdict": r.verdict,
         "reasons": list(r.reasons),
     }
