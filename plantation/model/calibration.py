@@ -196,8 +196,11 @@ def _positive_weights(weight: np.ndarray, n: int, name: str, func: str, *, upper
 
 
 def _normalised(prior: np.ndarray, floor: float) -> np.ndarray:
-    """A prior floored at ``floor`` and summing to one (a zero share could never be recovered by :func:`reweight`)."""
-    p = np.maximum(np.asarray(prior, dtype=np.float64), floor)
+    """A prior (shares, or weights proportional to them) floored at the share ``floor`` and summing to one (a zero share could never be recovered by :func:`reweight`)."""
+    p = np.asarray(prior, dtype=np.float64)
+    total = p.sum()
+    # Shares first: the floor is a share, not a count of weighted points.
+    p = np.maximum(p / total if total > 0 else p, floor)
     return p / p.sum()
 
 

@@ -63,13 +63,17 @@ class Wilson:
 
 def wilson_bounds(p: float, n: float, z: float) -> tuple[float, float]:
     """Wilson's (1927) score interval of a proportion ``p`` from ``n`` trials at normal quantile ``z``."""
-    if n <= 0:
+    if not n > 1e-12:  # no evidence (or so little that n² underflows): the interval tends to 0–1
         return 0.0, 1.0
+    if not math.isfinite(n):
+        return p, p
     z2 = z * z
     den = 1.0 + z2 / n
     centre = (p + z2 / (2.0 * n)) / den
     half = z / den * math.sqrt(max(p * (1.0 - p) / n + z2 / (4.0 * n * n), 0.0))
-    return max(0.0, centre - half), min(1.0, centre + half)
+    # The bounds hold p exactly (lo = 0 at p = 0, hi = 1 at p = 1); rounding
+    # alone would leave them a few ulps off, outside the estimate.
+    return min(max(0.0, centre - half), p), max(min(1.0, centre + half), p)
 
 
 def wilson(p: float, se: float | None, z: float, points: int | None) -> Wilson | None:
@@ -82,8 +86,10 @@ def wilson(p: float, se: float | None, z: float, points: int | None) -> Wilson |
     if not math.isfinite(p):
         return None
     p = min(max(p, 0.0), 1.0)
-    if se is not None and math.isfinite(se) and se > 0 and 0.0 < p < 1.0:
-        n, basis = p * (1.0 - p) / (se * se), "effective"
+    # se² can underflow to 0 and p(1 − p)/se² overflow: such an n says nothing, and the points stand in.
+    n_eff = p * (1.0 - p) / (se * se) if se is not None and math.isfinite(se) and se * se > 0 and 0.0 < p < 1.0 else math.nan
+    if math.isfinite(n_eff) and n_eff > 0:
+        n, basis = n_eff, "effective"
     elif points:
         n, basis = float(points), "points"
     else:
