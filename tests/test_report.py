@@ -721,3 +721,21 @@ def test_imagery_section_and_stale_evidence(run_dir: Path) -> None:
     page = build_report(run_dir).read_text()
     assert '<details class="evidence"' not in page and 'href="#ev-' not in page
     assert "drawn for an earlier plot check" in _text(page)
+
+
+def test_map_section_states_fire_areas_from_the_manifest(tmp_path):
+    """The fire areas the mapping job records per tile, summed over tiles; unknown is said to be no evidence of no fire; a map made before the fire layers gets no line."""
+    from plantation.mapping.folder import FORMAT
+    from plantation.report.page import _fire_note
+
+    tiles = {
+        "t01": {"file": "t01.tif", "fire_ha": {"converted_burnt": 10.0, "converted_not_burnt": 2.5, "converted_unknown": 4.0, "escaped_fire": 1.25}, "fire_after_cutoff_ha": 3.0},
+        "t02": {"file": "t02.tif", "fire_ha": {"converted_burnt": 5.0, "converted_not_burnt": 0.5, "converted_unknown": 1.0, "escaped_fire": 0.0}, "fire_after_cutoff_ha": 1.5},
+    }
+    (tmp_path / "manifest.json").write_text(json.dumps({"format": FORMAT, "producer": "test", "tiles": tiles}))
+    text = _fire_note(tmp_path)
+    assert "15.0 ha mapped as converted were cleared with fire (4.5 ha of it after the cutoff year)" in text
+    assert "3.0 ha without fire" in text and "5.0 ha it is unknown" in text and "not evidence of no fire" in text and "1.2 ha of forest" in text
+    del tiles["t02"]["fire_ha"]
+    (tmp_path / "manifest.json").write_text(json.dumps({"format": FORMAT, "producer": "test", "tiles": tiles}))
+    assert _fire_note(tmp_path) == ""

@@ -414,7 +414,32 @@ def _map_section(map_dir: Path | None, years_hint: Sequence[int], cutoff_hint: i
         "unless the map was made with every member; the scale stops at the 99th percentile); "
         "where it is high the model has seen little like the pixel in training, and its probabilities deserve less trust.</figcaption></figure>"
     )
-    return head + body + "</section>", region
+    return head + body + _fire_note(map_dir) + "</section>", region
+
+
+def _fire_note(map_dir: Path) -> str:
+    """Fire in the clearing, from the manifest's per-tile fire areas (map pixel counts); empty for a map made before the fire layers."""
+    try:
+        manifest = read_manifest(map_dir)
+    except PlantationError:
+        return ""
+    tiles = list((manifest or {}).get("tiles", {}).values())
+    if not tiles or not all(isinstance(t.get("fire_ha"), dict) and t["fire_ha"] for t in tiles):
+        return ""
+
+    def ha(key: str) -> float:
+        return sum(float(t["fire_ha"].get(key, 0.0)) for t in tiles)
+
+    burnt, bare, unknown, escaped = ha("converted_burnt"), ha("converted_not_burnt"), ha("converted_unknown"), ha("escaped_fire")
+    after = sum(float(t.get("fire_after_cutoff_ha", 0.0)) for t in tiles)
+    return (
+        '<p id="fire-areas">Fire in the clearing (map pixel counts, not area estimates): '
+        f"{num(burnt, 1)} ha mapped as converted were cleared with fire ({num(after, 1)} ha of it after the cutoff year), "
+        f"{num(bare, 1)} ha without fire, and for {num(unknown, 1)} ha it is unknown: no clear view followed the clearing closely enough to tell, which is not evidence of no fire. "
+        f"{num(escaped, 1)} ha of forest beside clearings burnt in their season and grew back (fire escaped from the clearing; not converted). "
+        "Fire is read from the drop in NBR (dNBR, Key &amp; Benson 2006) and from char at the first clear view after the clearing (BAI, Chuvieco et al. 2002, and the change in SWIR1); "
+        "the map's fire, fire_year and dnbr layers hold it pixel by pixel.</p>"
+    )
 
 
 class Flags:
