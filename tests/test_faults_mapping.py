@@ -352,3 +352,27 @@ def test_cases_are_named_once_with_known_kinds():
     assert {c.kind for c in cases.CASES} <= {"kill", "bad_input", "model_file", "resource"}
     assert np.all([n.startswith("map_") for n in names])
     assert issubclass(OutputSpaceError, PlantationError) and issubclass(FolderBusyError, OSError)
+
+
+def test_threads_by_host_divide_each_machines_cores_among_its_dask_threads():
+    from plantation.mapping.workers import threads_by_host
+
+    workers = {
+        "tcp://a:1": {"host": "a", "nthreads": 1},
+        "tcp://a:2": {"host": "a", "nthreads": 2},
+        "tcp://b:1": {"host": "b", "nthreads": 1},
+        "tcp://c:1": {"host": "c", "nthreads": 8},
+    }
+    cores = {"tcp://a:1": 12, "tcp://a:2": 12, "tcp://b:1": 16, "tcp://c:1": 4}
+    assert threads_by_host(workers, cores) == {"a": 4, "b": 16, "c": 1}
+
+
+@pytest.mark.slow
+def test_a_running_schedulers_workers_get_their_machines_cores_divided(region, model_dir, tmp_path, monkeypatch):  # noqa: F811
+    from distributed import LocalCluster
+
+    monkeypatch.delenv("OMP_NUM_THREADS", raising=False)  # torch's own default would then be every core in every worker
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as cluster:
+        s = run(_cfg(region, model_dir, tmp_path / "out", engine=EngineConfig(scheduler=cluster.scheduler_address)))
+    assert sorted(s.torch_threads.values()) == [max(1, CORES // 2)] * 2
+    assert s.tiles_mapped == ["t0", "t1"]

@@ -24,6 +24,7 @@ from plantation.mapping.catalog import Catalogue
 from plantation.mapping.folder import NOTICE, RECALIBRATION, Manifest, TileResult, file_digest, open_map
 from plantation.mapping.guard import FolderLock, OutputSpaceError, check_room, ensure_writable, is_disk_full, output_bytes, remove_partials
 from plantation.mapping.tiles import Settings, TileJob, input_signature, map_tile_task, tile_key
+from plantation.mapping.workers import TorchThreads, limit_torch_threads
 from plantation.model.artefact import Artefact, load
 from plantation.model.card import resolve_model
 from plantation.model.inference import check_compatible
@@ -347,6 +348,9 @@ def _run_dask(jobs: list[TileJob], manifest: Manifest, catalogue: Catalogue, cfg
     nanny and the scheduler gives its tile to a worker again (up to
     ``distributed.scheduler.allowed-failures`` times, 3 by default); the
     tile's temporary files are rewritten from the start by the new attempt.
+    On a running scheduler each worker's torch threads are set by a worker
+    plugin (:mod:`plantation.mapping.workers`) unless ``engine.threads`` is
+    given.
     """
     from distributed import Client, LocalCluster, as_completed
     from distributed.scheduler import KilledWorker
@@ -358,7 +362,12 @@ def _run_dask(jobs: list[TileJob], manifest: Manifest, catalogue: Catalogue, cfg
         cluster = LocalCluster(n_workers=cfg.engine.workers, threads_per_worker=1, processes=True, dashboard_address=None, silence_logs=logging.ERROR)
         client = Client(cluster)
     results = []
+    limited = False
     try:
+        if cfg.engine.scheduler and not cfg.engine.threads:
+            # Its workers' machines are not this one: each worker takes its machine's cores ÷ the dask threads there.
+            log.info("torch threads per task by host: %s", limit_torch_threads(client))
+            limited = True
         futures = [client.submit(map_tile_task, job, pure=False, key=f"map-{job.tile.name}-{job.key[:12]}") for job in jobs]
         tile_of = {f.key: j.tile.name for f, j in zip(futures, jobs, strict=True)}
         total_px = sum(pixels_of[j.tile.name] for j in jobs)
@@ -378,6 +387,11 @@ def _run_dask(jobs: list[TileJob], manifest: Manifest, catalogue: Catalogue, cfg
                 bar.update(1)
         threads = {str(k): int(v) for k, v in client.run(_torch_threads).items()}
     finally:
+        if limited:
+            try:
+                client.unregister_worker_plugin(TorchThreads.name)
+            except Exception:  # a scheduler gone already: nothing left to tidy
+                log.debug("could not unregister %s", TorchThreads.name)
         client.close()
         if cluster is not None:
             cluster.close()

@@ -29,6 +29,7 @@ import numpy as np
 from plantation.benchmarks.faults import Case, Outcome, Ran, Workspace
 from plantation.mapping.folder import file_digest, read_manifest
 from plantation.mapping.guard import LOCK_NAME, partial_files
+from plantation.model.card import resolve_model
 
 #: Peak-memory budget the resource cases give ``memory_budget_mb`` and check the process tree against, MB (the benchmark's ``memory_budget_mb``).
 BUDGET_MB = 2048
@@ -50,8 +51,6 @@ def _keys_but_out(ws: Workspace) -> list[str]:
 
 
 def _model_digest(ws: Workspace) -> str:
-    from plantation.model.card import resolve_model
-
     folder = resolve_model(str(ws.model))
     return file_digest([folder / "model.json", folder / "model.safetensors"])
 
