@@ -34,6 +34,7 @@ import numpy as np
 import rasterio
 
 from plantation.benchmarks.faults import Case, Outcome, Ran, Workspace
+from plantation.mapping.folder import BAND, NODATA
 
 #: The demo region's QA rule (configs/region/toy.yaml): bits 0 cloud, 1 shadow, 2 fill; nodata −9999.
 TOY_QA_BITS = 0b111
@@ -218,8 +219,6 @@ def _cloud(ws: Workspace, scratch: Path) -> Outcome:
 
 def _map_nodata(ws: Workspace, scratch: Path) -> Outcome:
     """Tile t02 without one valid pixel and a year (2016) without a clear view anywhere: the map finishes, t02 all nodata with clear_dates 0."""
-    from plantation.mapping.folder import BAND, NODATA
-
     region = ws.copy_tiles(scratch)
     for tile in ("t01", "t02"):
         for f in _dates(scratch / "tiles", tile):
