@@ -15,6 +15,19 @@ must lie inside the imagery's years, and is ignored for the other labels.
 Where the region config names an ``inclusion_column``, that column (or
 attribute) holds each point's inclusion probability π in (0, 1] under the
 sampling design; it is kept as the points' ``inclusion`` column.
+
+Broken files are refused in one line naming the file and, where there is
+one, the line or feature: a CSV must be UTF-8 (a byte-order mark, as
+spreadsheet programs write "CSV UTF-8", is read and dropped; another
+encoding is refused at the line of its first undecodable byte); a
+GeoPackage must hold a layer, and that layer points (a GeoPackage whose
+layer was dropped, a table without geometry, or polygons are refused).
+
+A point may fall on a pixel the imagery never sees clear (cloud on every
+date, nodata, masked values): it is placed and kept here, since the reader
+does not look at pixel values. Such a pixel has an all-masked input; the
+map marks it nodata (fewer than ``min_clear`` clear dates), so the point
+tells nothing about the map there.
 """
 
 from __future__ import annotations
