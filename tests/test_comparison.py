@@ -8,7 +8,7 @@ import pytest
 
 from plantation.benchmarks.accuracy import ComparisonConfig, train_config
 from plantation.benchmarks.accuracy import run as run_comparison
-from plantation.errors import ConfigError
+from plantation.errors import ConfigError, InputNotFoundError
 from plantation.model.config import NetworkConfig, TrainerConfig
 from plantation.model.training import TrainConfig
 
@@ -105,6 +105,31 @@ def test_benchmark_end_to_end_writes_every_method_and_figure(tmp_path):
             assert m["prior"]["source"] == "bbse" and 0 < m["prior"]["conversion_share"] < 1
             assert {"ece", "ece_after_cutoff", "mean_p_conversion", "forest_plot_after_share"} <= set(m["before_recalibration"]) & set(m["sample_prior"])
             assert m["recalibration"]["n"] > 0 and 0.3 <= m["interval_mass"] <= 0.99
+    # Fire in the clearing is scored from the model's map and from the truth's onsets.
+    assert {"fire_balanced_accuracy", "escaped_fire_area_ratio", "fire"} <= set(region["methods"]["model"])
+    assert region["eval_region"]["fire_with_true_onsets"]["observed_clearings"] > 0
     # The model is trained afresh and still beats a coin: a wrong scorer or a shuffled map would not.
     assert region["methods"]["model"]["conversion_f1"] > 0.5
     assert json.loads((tmp_path / "acc.json").read_text()) == json.loads(json.dumps(report))
+
+
+def test_fire_only_scores_the_held_out_region_and_keeps_the_rest_of_the_result(tmp_path):
+    """fire_only: no training; the truth's onsets are attributed and scored against the simulator's fire band, merged into an existing result."""
+    from plantation.cli.compose import compose_job
+    from plantation.config import to_object
+
+    out = tmp_path / "acc.json"
+    out.write_text(json.dumps({"regions": {"simulated": {"methods": {"model": {"year_exact": 0.5}}}}, "seeds": [0]}))
+    overrides = ["fire_only=true", "eval_sim.tile_size=96", "eval_sim.tiles_x=1", "eval_sim.estates_per_100km2=30.0", "eval_sim.escaped_fire_share=1.0"]
+    overrides += [f"eval_dir={tmp_path / 'eval'}", f"out={out}", "progress=false"]
+    report = run_comparison(to_object(compose_job("benchmark_accuracy", overrides, verb="benchmark-accuracy"), ComparisonConfig))
+    written = json.loads(out.read_text())
+    assert written == json.loads(json.dumps(report))
+    assert written["regions"]["simulated"]["methods"] == {"model": {"year_exact": 0.5}} and written["seeds"] == [0]
+    fire = written["regions"]["simulated"]["fire"]["fire_with_true_onsets"]
+    assert fire["observed_clearings"] == fire["observed_burnt"] + fire["observed_not_burnt"] > 0
+    assert fire["escaped_fire_pixels"]["true"] > 0
+    # From the truth's own onsets, burnt and not burnt are told apart far better than a coin.
+    assert fire["fire_balanced_accuracy"] is None or fire["fire_balanced_accuracy"] > 0.75
+    with pytest.raises(InputNotFoundError, match="no mapped region here"):
+        run_comparison(to_object(compose_job("benchmark_accuracy", [*overrides, f"fire_map={tmp_path / 'nomap'}"], verb="benchmark-accuracy"), ComparisonConfig))
