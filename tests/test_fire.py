@@ -234,3 +234,28 @@ def test_escaped_fire_against_a_simulated_regions_truth(tmp_path):
     assert c["escaped_true"] > 100, c
     assert 0.6 <= c["escaped_mapped"] / c["escaped_true"] <= 1.4, c
     assert c["escaped_hit_year"] >= 0.5 * c["escaped_mapped"], c
+
+
+def test_fire_scores_by_hand():
+    """Balanced accuracy over observed clearings only (unknown apart, mapped-not-converted apart); escaped area ratio, precision and year."""
+    from plantation.benchmarks.scores import fire_scores
+
+    F, T = FIRE_CODES, FIRE_TRUTH
+    #        burnt TP, burnt FN, not-burnt TN, not-burnt FP, unknown, truly not converted, escaped hit (right year), escaped hit (wrong year), escaped false, escaped missed
+    label = np.array([2, 2, 2, 2, 2, 2, 1, 1, 1, 1])
+    code = np.array(
+        [F["converted_burnt"], F["converted_not_burnt"], F["converted_not_burnt"], F["converted_burnt"], F["converted_unknown"], F["converted_burnt"]] + [F["escaped_fire"]] * 3 + [F["none"]]
+    )
+    year = np.array([2019, 0, 0, 2019, 0, 2019, 2019, 2020, 2019, 0])
+    true_label = np.array([2, 2, 2, 2, 2, 4, 1, 1, 1, 1])
+    true_fire = np.array(
+        [T["clearing_burnt"], T["clearing_burnt"], T["clearing_not_burnt"], T["clearing_not_burnt"], T["clearing_burnt"], T["other_clearing_burnt"]]
+        + [T["escaped_fire"], T["escaped_fire"], T["none"], T["escaped_fire"]]
+    )
+    true_year = np.array([2019, 2019, 2019, 2019, 2019, 2019, 2019, 2019, 0, 2019])
+    s = fire_scores(label, code, year, true_label, true_fire, true_year)
+    assert s["observed_clearings"] == 4 and s["observed_burnt"] == 2 and s["observed_not_burnt"] == 2
+    assert s["burnt_recall"] == 0.5 and s["not_burnt_recall"] == 0.5 and s["fire_balanced_accuracy"] == 0.5
+    assert s["known_share"] == 0.8  # 4 of the 5 true clearings mapped as converted
+    assert s["escaped_fire_pixels"] == {"mapped": 3, "true": 3} and s["escaped_fire_area_ratio"] == 1.0
+    assert s["escaped_fire_precision"] == round(2 / 3, 4) and s["escaped_fire_year_exact"] == 0.5
