@@ -395,7 +395,10 @@ def _lazy_geotiff(path: Path, when: date, count: int, grid: Grid, dtype: str, ch
     """A dated GeoTIFF as a lazy (band, y, x) DataArray chunked ``chunk`` pixels in space, all bands in one chunk; pixel-centre x/y coordinates."""
     import dask.array
 
-    arr = dask.array.from_array(LazyRaster(path, when, count, grid.height, grid.width, dtype), chunks=(-1, chunk, chunk), lock=False, asarray=False, name=f"raster-{path}-{when}")
+    stat = Path(path).stat()
+    # The key names the file's state: two opens of a file rewritten in between are two arrays.
+    name = "raster-" + dask.base.tokenize(str(path), str(when), stat.st_size, stat.st_mtime_ns, count, dtype, chunk)
+    arr = dask.array.from_array(LazyRaster(path, when, count, grid.height, grid.width, dtype), chunks=(-1, chunk, chunk), lock=False, asarray=False, name=name)
     t = grid.transform
     ys = t.f + t.e * (np.arange(grid.height) + 0.5)
     xs = t.c + t.a * (np.arange(grid.width) + 0.5)
