@@ -100,3 +100,27 @@ def test_the_command_draws_pages_over_the_truth_and_writes_the_result(tmp_path: 
             assert onset[int(round(r0)) + side_r // 2, int(round(c0)) + side_c // 2] > 2020
             hits += 1
     assert hits >= 3
+
+
+@pytest.mark.slow
+def test_two_workers_draw_the_same_pages_as_one_process(tmp_path: Path) -> None:
+    from datetime import date
+
+    from plantation.benchmarks.evidence import prepare
+    from plantation.cli.compose import compose_job
+    from plantation.config import to_object
+    from plantation.farmplots.evidence import EvidenceConfig, write_pages
+    from plantation.mapping.folder import open_map
+
+    cfg = to_object(compose_job("benchmark_evidence", [f"work_dir={tmp_path / 'work'}", "pages=40", "plots=44"], verb="benchmark-evidence"), EvidenceBenchConfig)
+    pages, crs, plots_json, built = prepare(cfg)
+    mapped = open_map(built["map"], verify=False)
+    drawn = {}
+    for workers in (1, 2):
+        out = tmp_path / f"w{workers}"
+        res = write_pages(pages, crs, mapped, cfg.region, date(2020, 12, 31), out, EvidenceConfig(enabled=True, survey=None, workers=workers), plot_level=0.9, plots_json=plots_json)
+        assert len(res.pages) == 40
+        drawn[workers] = {p["file"]: (out / "evidence" / p["file"]).read_bytes() for p in res.pages}
+    # Pages drawn by spawned workers, each on its own reused canvas, are byte for byte the pages of one process.
+    assert drawn[1] == drawn[2]
+    assert len(set(drawn[1].values())) == 40

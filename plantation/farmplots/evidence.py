@@ -849,9 +849,18 @@ _STATE: dict[str, Any] = {}
 
 
 def _init(ctx: _Context) -> None:
-    """Open the region's tiles once per process (lazily: only headers are read)."""
+    """Get a process ready to draw: each tile is opened (headers only) when its first plot comes, then kept."""
     _STATE["ctx"] = ctx
-    _STATE["stacks"] = {t.name: open_tile(t, ctx.region) for t in ctx.region.tiles if t.name in ctx.map_paths}
+    _STATE["stacks"] = {}
+
+
+def _stack(tile: str) -> Any:
+    """This process's reader of a tile of the region, opened on first use: a worker opens only the tiles its plots lie in."""
+    stacks = _STATE["stacks"]
+    if tile not in stacks:
+        ctx: _Context = _STATE["ctx"]
+        stacks[tile] = open_tile(next(t for t in ctx.region.tiles if t.name == tile), ctx.region)
+    return stacks[tile]
 
 
 def _init_worker(ctx: _Context) -> None:
@@ -866,7 +875,7 @@ _WORKER_GDAL_CACHE_MB = 64
 
 def _draw(job: _Job) -> dict[str, Any]:
     ctx: _Context = _STATE["ctx"]
-    stack = _STATE["stacks"][job.tile]
+    stack = _stack(job.tile)
     scale, offset = ctx.map_scale[job.tile]
     ev = gather(shapely.from_wkb(job.geom_wkb), Path(ctx.map_paths[job.tile]), stack, ctx.region.bands, ctx.cutoff_date, ctx.cfg, scale=scale, offset=offset)
     png = draw_page(ev, job.row, ctx.cutoff_date, plot_level=ctx.plot_level, map_level=ctx.map_levels.get(job.tile), years=ctx.years)
