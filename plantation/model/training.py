@@ -35,6 +35,7 @@ import hashlib
 import json
 import logging
 import os
+import random
 import shutil
 import time
 import warnings
@@ -309,8 +310,6 @@ class RandomState(L.Callback):
     """
 
     def state_dict(self) -> dict[str, Any]:
-        import random
-
         kind, keys, pos, has_gauss, gauss = np.random.get_state()
         return {
             "torch": torch.get_rng_state(),
@@ -319,8 +318,6 @@ class RandomState(L.Callback):
         }
 
     def load_state_dict(self, state_dict: dict[str, Any]) -> None:
-        import random
-
         torch.set_rng_state(state_dict["torch"])
         n = state_dict["numpy"]
         np.random.set_state((n["kind"], n["keys"].numpy().astype(np.uint32), n["pos"], n["has_gauss"], n["gauss"]))
@@ -368,7 +365,8 @@ def make_trainer(cfg: TrainerConfig, max_epochs: int, patience: int, folder: Pat
 #: The record of a run folder's resumable state: the inputs' key and the fits already finished (``checkpoints/resume.json``).
 RESUME = "resume.json"
 RESUME_FORMAT = "plantation-resume/1"
-#: Keys that do not change what a training computes: a rerun that changes only these may resume.
+#: Keys that do not change what a training computes: a rerun that changes only these may resume (other
+#: threads may change the last bits of some float sums, so such a resume is not promised bit-identical).
 NOT_CONTENT: tuple[str, ...] = ("out_dir", "run_name", "resume", "trainer.enable_progress_bar", "trainer.log_every_n_steps", "training.threads")
 
 
