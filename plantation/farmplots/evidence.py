@@ -473,8 +473,10 @@ class PageCanvas:
         # The plot's median indices through time: the axis is the region's dates and the map's years, the same on every page.
         self.ts = ts = fig.add_subplot(gs[3, :])
         d = np.asarray(dates, dtype="datetime64[D]")
-        lo = min(date2num(d.min()), date2num(date(self.years[0], 1, 1))) if len(d) else date2num(date(self.years[0], 1, 1))
-        hi = max(date2num(d.max()), date2num(date(self.years[-1] + 1, 1, 1))) if len(d) else date2num(date(self.years[-1] + 1, 1, 1))
+        span_years = sorted(set(self.years) | {int(y) for y in d.astype("datetime64[Y]").astype(int) + 1970}) or [cutoff_date.year]
+        lo, hi = date2num(date(span_years[0], 1, 1)), date2num(date(span_years[-1] + 1, 1, 1))
+        if len(d):
+            lo, hi = min(lo, date2num(d.min())), max(hi, date2num(d.max()))
         pad = 0.05 * (hi - lo)  # matplotlib's default margin
         ts.set_xlim(lo - pad, hi + pad)
         ts.set_ylim(-1.0, 1.0)
