@@ -261,3 +261,21 @@ def test_a_product_band_file_corrupt_after_opening_names_the_file_and_date(tmp_p
     red.write_bytes(data[: len(data) // 2] + rng.bytes(len(data) - len(data) // 2))
     with pytest.raises(RegionError, match=r"SR_B4\.TIF: date 2019-01-05: cannot read rows 56–63"):
         st.read(56, 0, 8, 8)
+
+
+def test_saturated_and_zero_filled_product_values_are_masked_in_both_read_paths(tmp_path):
+    dn = np.full((6, 6), 12000, np.uint16)
+    dn[1, 1] = 65535  # the blue band saturated (uint16's largest value; the fixture adds 100 a band, which wraps the others)
+    folder = landsat_scene(tmp_path / "scenes", "20190105", dn, np.full((6, 6), QA_CLEAR))
+    swir = next(folder.glob("*_SR_B7.TIF"))
+    with rasterio.open(swir, "r+") as ds:
+        arr = ds.read(1)
+        arr[4, 2] = 65535  # one band saturated: the pixel goes
+        ds.write(arr, 1)
+    region = _region(tmp_path / "scenes")
+    st = open_tile(region.tiles[0], region)
+    refl, valid = st.read(0, 0, 6, 6)
+    np.testing.assert_array_equal(valid, st.valid.values)
+    np.testing.assert_array_equal(refl, st.reflectance.values)
+    assert not valid[0, 1, 1] and not valid[0, 4, 2] and valid.sum() == 34
+    assert np.nanmax(refl) <= 1.6

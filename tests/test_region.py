@@ -409,3 +409,19 @@ def test_a_truncated_file_at_open_is_refused_naming_it(make_region, tmp_path):
     f.write_bytes(f.read_bytes()[:200])
     with pytest.raises(RegionError, match=r"scene_2016-08-15\.tif: cannot read as a raster"):
         open_tile(region.tiles[0], region)
+
+
+def test_a_float_cube_with_inf_and_implausible_values_is_masked(tmp_path, tiny_values):
+    vals = tiny_values.astype(np.float32) * 1e-4
+    vals[0, 2, 1, 1] = np.inf
+    vals[3, 4, 6, 2] = 7.5
+    ys = TRANSFORM.f + TRANSFORM.e * (np.arange(8) + 0.5)
+    xs = TRANSFORM.c + TRANSFORM.a * (np.arange(8) + 0.5)
+    da = xr.DataArray(vals, dims=("time", "band", "y", "x"), coords={"time": np.array(DATES, dtype="datetime64[ns]"), "band": BANDS, "y": ys, "x": xs}, name="reflectance")
+    path = tmp_path / "f.nc"
+    da.rio.write_crs(CRS).to_dataset().to_netcdf(path)
+    cube = RegionConfig(name="c", format="cube", tiles=[TileConfig(name="t1", path=str(path))], bands=BANDS, nodata=None, mask=MaskConfig(band=None), scaling=[ScalingRule(None, 1.0, 0.0)])
+    st = open_tile(cube.tiles[0], cube)
+    refl, valid = st.read(0, 0, 8, 8)
+    assert not valid[0, 1, 1] and not valid[3, 6, 2] and valid.sum() == 5 * 64 - 2
+    assert np.isnan(refl[0, :, 1, 1]).all() and np.nanmax(refl) < 1.0
