@@ -129,6 +129,8 @@ def test_fire_only_scores_the_held_out_region_and_keeps_the_rest_of_the_result(t
     fire = written["regions"]["simulated"]["fire"]["fire_with_true_onsets"]
     assert fire["observed_clearings"] == fire["observed_burnt"] + fire["observed_not_burnt"] > 0
     assert fire["escaped_fire_pixels"]["true"] > 0
+    observable = written["regions"]["simulated"]["fire"]["escaped_fire_observable"]
+    assert 0 < observable <= 1
     # From the truth's own onsets, burnt and not burnt are told apart far better than a coin.
     assert fire["fire_balanced_accuracy"] is None or fire["fire_balanced_accuracy"] > 0.75
     with pytest.raises(InputNotFoundError, match="no mapped region here"):

@@ -74,7 +74,7 @@ from plantation.model.patches import PatchSet, features, year_of
 from plantation.model.training import TrainConfig, fit, interval_curve, load_region_samples, model_card, resolve_prior
 from plantation.records import load_object, write_object
 from plantation.simulation.landscape import Landscape, build_landscape
-from plantation.simulation.scenario import EVENTS, SimulationConfig, dates_of, decimal_year
+from plantation.simulation.scenario import EVENTS, FIRE_TRUTH, SimulationConfig, dates_of, decimal_year
 from plantation.simulation.writer import tile_names, write_region
 
 
@@ -219,6 +219,41 @@ def region_fire_scores(stacks: list[TileStack], tiles: list[TileConfig], bands: 
             parts[k].append(np.asarray(v).ravel())
     a = {k: np.concatenate(v) for k, v in parts.items()}
     return fire_scores(a["label"], a["code"], a["year"], a["true_label"], a["true_fire"], a["true_year"])
+
+
+def escaped_fire_observability(stacks: list[TileStack], tiles: list[TileConfig], bands: list[str], rule: FireRule) -> float | None:
+    """Share of the truly escaped-fire pixels whose series shows the fire at all: a ceiling for ``escaped_fire_area_ratio`` at full precision.
+
+    A pixel shows it when NBR drops by at least ``rule.min_dnbr_escape``
+    between two consecutive clear views, the later one in the fire's year or
+    the next (the window the attribution looks in). None without true
+    escaped fire or without the bands.
+    """
+    if any(b not in bands for b in ("nir", "swir2")):
+        return None
+    shown = total = 0
+    for st, tile in zip(stacks, tiles, strict=True):
+        fire = _truth_fire(tile)
+        if fire is None:
+            return None
+        esc = fire == FIRE_TRUTH["escaped_fire"]
+        if not esc.any():
+            continue
+        _, _, _, event_year = _truth(tile)
+        refl, valid = read_window(st, 0, 0, st.grid.height, st.grid.width, 0)
+        t = decimal_years(st.dates)[:, None]
+        nir, swir2 = refl[:, bands.index("nir")][:, esc], refl[:, bands.index("swir2")][:, esc]
+        ok = valid[:, esc]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            n = np.where(ok, (nir - swir2) / (nir + swir2), np.nan)
+        idx = np.where(ok, np.arange(len(t))[:, None], -1)
+        prev = np.concatenate([np.full((1, idx.shape[1]), -1), np.maximum.accumulate(idx, axis=0)[:-1]])
+        drop = np.where(ok & (prev >= 0), np.take_along_axis(n, np.clip(prev, 0, None), axis=0) - n, np.nan)
+        y = event_year[esc][None, :]
+        inside = (t >= y) & (t < y + 2)
+        shown += int((np.where(inside & np.isfinite(drop), drop, -np.inf).max(axis=0) >= rule.min_dnbr_escape).sum())
+        total += int(esc.sum())
+    return round(shown / total, 4) if total else None
 
 
 def conversion_observability(land: Landscape, date_years: np.ndarray, stack: TileStack, tile: TileConfig) -> tuple[np.ndarray, np.ndarray]:
@@ -577,6 +612,8 @@ def evaluate_seed(cfg: ComparisonConfig, held: HeldOut, seed: int) -> tuple[dict
         "forest_plot_pixels": int(truth["forest_plots"].sum()),
         # The fire attribution with the truth's own class and onset: its errors without the map's.
         "fire_with_true_onsets": true_onset_fire(stacks, region, cfg.fire),
+        # Share of the truly escaped-fire pixels the imagery shows burning at all: a ceiling for the escaped-fire area at full precision.
+        "escaped_fire_observable": escaped_fire_observability(stacks, region.tiles, list(region.bands), cfg.fire),
         "train_region": held.train.region.name,
         "labels_fingerprint": labels.fingerprint,
     }
@@ -600,7 +637,11 @@ def fire_only(cfg: ComparisonConfig) -> dict[str, Any]:
     held = simulated_held_out(cfg)
     region = held.region
     stacks = open_region(region)
-    out: dict[str, Any] = {"rule": asdict(cfg.fire), "fire_with_true_onsets": true_onset_fire(stacks, region, cfg.fire)}
+    out: dict[str, Any] = {
+        "rule": asdict(cfg.fire),
+        "fire_with_true_onsets": true_onset_fire(stacks, region, cfg.fire),
+        "escaped_fire_observable": escaped_fire_observability(stacks, region.tiles, list(region.bands), cfg.fire),
+    }
     if out["fire_with_true_onsets"] is None:
         raise ConfigError(f"{cfg.eval_dir}: the held-out region's truth rasters have no fire band; delete the folder so that it is simulated again")
     if cfg.fire_map:
