@@ -199,3 +199,24 @@ def test_debug_prints_the_traceback_of_a_refused_input_above_its_one_line(tmp_pa
 def test_debug_off_values_of_the_environment_keep_one_line(tmp_path):
     for value in ("0", "false", "no"):
         one_error_line(plantation("survey", f"region={tmp_path / 'nowhere.yaml'}", env={"PLANTATION_DEBUG": value}))
+
+
+def test_a_raster_found_unreadable_inside_a_librarys_lazy_read_is_one_line(capsys):
+    """Product folders, STAC files and cubes are read lazily by odc-stac or xarray: rasterio's error, raised from GDAL's, becomes one line naming the file."""
+    import rasterio.errors
+
+    from plantation.cli.errors import user_errors
+
+    def read():
+        try:
+            raise rasterio.errors.CPLE_AppDefinedError("scene_SR_B4.TIF, band 1: IReadBlock failed at X offset 0, Y offset 4: TIFFReadEncodedStrip() failed.")
+        except rasterio.errors.CPLE_AppDefinedError as gdal:
+            raise rasterio.errors.RasterioIOError("Read failed. See previous exception for details.") from gdal
+
+    with pytest.raises(SystemExit) as stop, user_errors(False):
+        read()
+    assert stop.value.code == 1
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and err[0].startswith("error: scene_SR_B4.TIF, band 1: IReadBlock failed") and "truncated or corrupt" in err[0]
+    with pytest.raises(OSError), user_errors(False):  # any other OSError is not a refused input: it keeps its traceback
+        raise PermissionError("not ours")

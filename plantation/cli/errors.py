@@ -40,3 +40,35 @@ def user_errors(debug: bool | None = None) -> Iterator[None]:
             traceback.print_exc(file=sys.stderr)
         print(f"error: {exc}", file=sys.stderr)
         sys.exit(1)
+    except OSError as exc:
+        line = unreadable_raster(exc)
+        if line is None:
+            raise
+        if debug:
+            traceback.print_exc(file=sys.stderr)
+        print(f"error: {line}", file=sys.stderr)
+        sys.exit(1)
+
+
+def unreadable_raster(exc: BaseException) -> str | None:
+    """One line for a raster file found unreadable inside a library's lazy read (odc-stac's, xarray's), or None when ``exc`` is not that.
+
+    The windowed readers and the GeoTIFF folders' lazy arrays name the file
+    themselves (a :class:`PlantationError`); a product folder's, STAC file's
+    or cube's lazy arrays are read by those libraries, whose error reaches
+    here as rasterio's ``RasterioIOError``. GDAL's message, in the error it
+    was raised from, names the file.
+    """
+    if not type(exc).__module__.startswith("rasterio"):
+        return None
+    reason = type(exc).__name__
+    seen: BaseException | None = exc
+    for _ in range(5):  # the first message that says something: GDAL's, with the file's name
+        if seen is None:
+            break
+        text = str(seen).splitlines()[0] if str(seen) else ""
+        if text and "See previous exception" not in text:
+            reason = text.rstrip(".")
+            break
+        seen = seen.__cause__ or seen.__context__
+    return f"{reason}: a raster file could not be read (truncated or corrupt); replace it, or run with --debug for where it was read"
