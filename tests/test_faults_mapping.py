@@ -22,6 +22,7 @@ from plantation.benchmarks.faults import Workspace
 from plantation.benchmarks.faults import mapping as cases
 from plantation.errors import ConfigError, PlantationError
 from plantation.mapping import guard
+from plantation.mapping.folder import LAYERS
 from plantation.mapping.guard import LOCK_NAME, FolderBusyError, FolderLock, OutputFolderError, OutputSpaceError
 from plantation.mapping.job import EngineConfig, MapConfig, check_config, fit_budget, run, window_bytes
 from plantation.model import artefact
@@ -98,10 +99,11 @@ def test_partials_are_the_jobs_temporary_files_only(tmp_path):
 
 
 def test_output_estimate_bounds_the_tiles_files():
-    # Two 100 x 100 tiles and one of 50 x 50, two mapped at once, no quicklook: COGs uncompressed with a third more for
+    # Two 100 x 100 tiles and one of 50 x 50, two mapped at once, no quicklook: COGs uncompressed (2 B per layer) with a third more for
     # overviews, the two largest tiles' raw GeoTIFFs at once, 64 kB per tile and for the folder.
     px = [10_000, 2_500, 10_000]
-    want = 22_500 * 16 * 4 / 3 + 20_000 * 16 + 64 * 1024 * 4
+    per_px = 2 * len(LAYERS)  # int16 layers
+    want = 22_500 * per_px * 4 / 3 + 20_000 * per_px + 64 * 1024 * 4
     assert guard.output_bytes(px, 2, quicklook=False) == int(want)
     assert guard.output_bytes(px, 2, quicklook=True) == int(want + 22_500 * 4)
     assert guard.output_bytes([], 2, quicklook=True) == 0

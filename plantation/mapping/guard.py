@@ -25,6 +25,7 @@ from collections.abc import Iterable
 from pathlib import Path
 
 from plantation.errors import PlantationError
+from plantation.mapping.folder import LAYERS
 
 try:  # POSIX; elsewhere runs are not locked (see FolderLock)
     import fcntl
@@ -35,8 +36,8 @@ log = logging.getLogger(__name__)
 
 #: The lock file's name inside the output folder (hidden; removed when the run ends).
 LOCK_NAME = ".plantation-map.lock"
-#: Bytes per output pixel of a tile's GeoTIFF: 8 int16 layers (see :data:`plantation.mapping.folder.LAYERS`).
-BYTES_PER_PIXEL = 8 * 2
+#: Bytes per output pixel of a tile's GeoTIFF: its int16 layers (:data:`plantation.mapping.folder.LAYERS`).
+BYTES_PER_PIXEL = len(LAYERS) * 2
 #: Extra bytes per finished tile for its overviews (a quarter, a sixteenth, ... of the pixels: under a third more).
 OVERVIEW_SHARE = 1 / 3
 #: Bytes per pixel of the PNG quicklook, a bound (RGBA at most).
@@ -197,9 +198,9 @@ def remove_partials(folder: Path) -> list[Path]:
 def output_bytes(tile_pixels: Iterable[int], concurrent: int, quicklook: bool) -> int:
     """An upper bound of the disk a run's outputs need, bytes.
 
-    Each tile's COG at most its uncompressed size (16 B/px) plus overviews
-    (a third more); while a tile is converted its uncompressed tiled GeoTIFF
-    (16 B/px) exists beside the COG being written, so the largest
+    Each tile's COG at most its uncompressed size (:data:`BYTES_PER_PIXEL`)
+    plus overviews (a third more); while a tile is converted its
+    uncompressed tiled GeoTIFF exists beside the COG being written, so the largest
     ``concurrent`` tiles count that once more; quicklooks 4 B/px; 64 kB per
     tile and for the folder's records. DEFLATE makes real COGs smaller: the
     bound errs on the side of refusing too early rather than failing late.

@@ -396,8 +396,8 @@ def disk_fills_while_writing(ws: Workspace, scratch: Path) -> Outcome:
     """The disk fills after the first tile: one line, the finished tile kept and intact, no temporary file left."""
     keys = _keys_but_out(ws)
     if namespaces_work():
-        ran, files = on_small_disk(ws, scratch, size_kb=4096, keys=keys, fill_after_first_tile=True)
-        how = "4 MB tmpfs filled once the first tile was finished"
+        ran, files = on_small_disk(ws, scratch, size_kb=6144, keys=keys, fill_after_first_tile=True)
+        how = "6 MB tmpfs filled once the first tile was finished"
         finished = []  # the disk is gone with its namespace: what it held is in ``files``
     else:
         patch = (
