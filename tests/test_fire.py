@@ -259,3 +259,14 @@ def test_fire_scores_by_hand():
     assert s["known_share"] == 0.8  # 4 of the 5 true clearings mapped as converted
     assert s["escaped_fire_pixels"] == {"mapped": 3, "true": 3} and s["escaped_fire_area_ratio"] == 1.0
     assert s["escaped_fire_precision"] == round(2 / 3, 4) and s["escaped_fire_year_exact"] == 0.5
+
+
+def test_decimal_years_agree_with_the_simulators_dates():
+    """The attribution's date clock is the simulator's (noon of the day, leap years counted)."""
+    from datetime import date
+
+    from plantation.mapping.fire import decimal_years
+    from plantation.simulation.scenario import decimal_year
+
+    days = [date(2019, 2, 14), date(2020, 12, 31), date(2020, 2, 29), date(2013, 1, 1)]
+    np.testing.assert_allclose(decimal_years(np.array(days, dtype="datetime64[ns]")), [decimal_year(d) for d in days], rtol=0, atol=1e-12)
