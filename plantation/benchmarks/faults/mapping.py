@@ -440,9 +440,14 @@ def peak_tree_rss(proc: subprocess.Popen, every: float = 0.05) -> float:
     return peak / 2**20
 
 
-def _budget_case(ws: Workspace, scratch: Path, *, budget: int, engine: tuple[str, ...]) -> Outcome:
+def _budget_case(ws: Workspace, scratch: Path, *, budget: int, engine: tuple[str, ...], compare_unbounded: bool = False) -> Outcome:
     clean = clean_map(ws, scratch)
     out = scratch / "map"
+    unbounded = None
+    if compare_unbounded:
+        # The same run without a budget, so the result shows whether the budget had to bind.
+        free = ws.start("map", *_keys(ws, scratch / "unbounded", *engine), log=scratch / "unbounded.log")
+        unbounded = round(peak_tree_rss(free), 1)
     proc = ws.start("map", *_keys(ws, out, f"memory_budget_mb={budget}", *engine), log=scratch / "run.log")
     peak = peak_tree_rss(proc)
     if proc.returncode:
@@ -453,6 +458,9 @@ def _budget_case(ws: Workspace, scratch: Path, *, budget: int, engine: tuple[str
     detail = {"peak_rss_mb": round(peak, 1), "budget_mb": budget, "window": s["window"], "pixel_batch": s["pixel_batch"], "engine": list(engine) or ["in-process"], "equal_to_clean": not corrupt}
     held = peak <= budget
     msg = f"peak RSS {peak:,.0f} MB over the process tree, budget {budget} MB; window {s['window']}, pixel_batch {s['pixel_batch']}"
+    if unbounded is not None:
+        detail["peak_rss_without_budget_mb"] = unbounded
+        msg += f" (without the budget: {unbounded:,.0f} MB)"
     if corrupt:
         # A smaller window may change float rounding only; the map is recorded as such, not as a failure of the budget.
         msg += f"; {'; '.join(notes)}"
@@ -460,7 +468,7 @@ def _budget_case(ws: Workspace, scratch: Path, *, budget: int, engine: tuple[str
 
 
 def memory_budget(ws: Workspace, scratch: Path) -> Outcome:
-    return _budget_case(ws, scratch, budget=TIGHT_BUDGET_MB, engine=())
+    return _budget_case(ws, scratch, budget=TIGHT_BUDGET_MB, engine=(), compare_unbounded=True)
 
 
 def memory_budget_dask(ws: Workspace, scratch: Path) -> Outcome:
