@@ -98,7 +98,7 @@ class Workspace:
     """The shared starting point of every case (read it, copy what you change; never write into it).
 
     ``region`` is a region file over ``tiles`` (a copy of the demo region),
-    ``model`` a quickly trained artefact folder, ``clean_map`` the map of the
+    ``model`` a quickly trained run folder (its artefact in ``model/``), ``clean_map`` the map of the
     region with that model, made without any fault.
     """
 
@@ -201,7 +201,7 @@ def build_workspace(cfg: FaultsConfig, project: Path) -> Workspace:
     src = (project / "configs" / "region" / "toy.yaml").read_text()
     region.write_text(src.replace("../../toy_tiles", str(tiles)))
     ws = Workspace(root=root, region=region, tiles=tiles, model=root / "runs" / "quick", clean_map=root / "clean_map", map_keys=tuple(cfg.map_keys))
-    if not (ws.model / "model.json").is_file():
+    if not (ws.model / "model" / "model.json").is_file():
         r = ws.cli("train", f"region={region}", f"out_dir={root / 'runs'}", "run_name=quick", *cfg.train_keys, timeout=3600)
         if r.returncode:
             raise RuntimeError(f"the workspace's model did not train: {r.last_line}")
