@@ -22,11 +22,20 @@ points, so a retrain on a grown label file passes the parent's split of each
 point (``inherit``): those points keep it exactly, a new point takes its
 block's split and is dropped if its neighbourhood touches a point of another
 split. A point's split then never changes between label versions.
+
+A labelled point whose own pixel is never seen clear (invalid on every date:
+cloud, nodata or masked values throughout) is dropped before the split, with
+one warning naming how many and the first few label lines (or features):
+its sample would be an all-masked input, so the network would learn, and the
+held-out metrics would score, a label the imagery cannot show. The count is
+:attr:`PatchSet.dropped_unseen`; such a point is not in the samples, so a
+run's ``points.csv`` lists it as dropped.
 """
 
 from __future__ import annotations
 
 import hashlib
+import logging
 import struct
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
@@ -40,6 +49,8 @@ from plantation.imagery import indices as idx
 from plantation.imagery.region import TileStack
 from plantation.model.outcomes import Outcomes
 from plantation.reference.labels import LabelSet
+
+log = logging.getLogger(__name__)
 
 SPLITS: tuple[str, ...] = ("train", "val", "test")
 #: Split code of a point left out by the buffer.
@@ -68,6 +79,9 @@ class PatchSet:
             :meth:`subset` and :meth:`concat` carry it.
         sensors: the sensor of each date (``""``: unnamed), or empty where
             unknown.
+        dropped_unseen: how many labelled points were left out because their
+            pixel is never seen clear (see the module docstring); carried by
+            :meth:`subset`, added up by :meth:`concat`.
     """
 
     x: np.ndarray
@@ -82,6 +96,7 @@ class PatchSet:
     outcomes: Outcomes
     weight: np.ndarray | None = None
     sensors: tuple[str, ...] = ()
+    dropped_unseen: int = 0
 
     def __post_init__(self) -> None:
         if self.weight is not None:
@@ -103,7 +118,7 @@ class PatchSet:
         """The samples where ``mask`` (bool (n,) or indices) selects (arrays are views or copies; metadata shared)."""
         m = np.asarray(mask)
         w = None if self.weight is None else self.weight[m]
-        return PatchSet(self.x[m], self.valid[m], self.target[m], self.tile[m], self.row[m], self.col[m], self.split[m], self.channels, self.dates, self.outcomes, w, self.sensors)
+        return PatchSet(self.x[m], self.valid[m], self.target[m], self.tile[m], self.row[m], self.col[m], self.split[m], self.channels, self.dates, self.outcomes, w, self.sensors, self.dropped_unseen)
 
     def concat(self, other: PatchSet) -> PatchSet:
         """These samples followed by ``other``'s (e.g. automatically labelled pixels added to the training split).
@@ -140,6 +155,7 @@ class PatchSet:
             outcomes=self.outcomes,
             weight=w,
             sensors=self.sensors or other.sensors,
+            dropped_unseen=self.dropped_unseen + other.dropped_unseen,
         )
 
     def part(self, name: str) -> PatchSet:
@@ -392,17 +408,19 @@ def build_patches(
             by (tile, row, col); those points keep it, points not in it are
             new (see :func:`spatial_split`). None = every point is new.
 
-    The samples' ``weight`` is None (every sample weighs 1).
+    The samples' ``weight`` is None (every sample weighs 1). A point whose
+    pixel is invalid on every date is left out before the split, with a
+    warning (see the module docstring).
 
     Raises:
-        LabelError: no label falls on any tile, or an onset year is outside
-            the imagery's years.
+        LabelError: no label falls on any tile, an onset year is outside
+            the imagery's years, or no labelled pixel is ever seen clear.
     """
     pts = labels.points
     by_name = {s.name: s for s in stacks}
     dates = stacks[0].dates
     outcomes = Outcomes(check_years(dates))
-    xs, vs, tiles, rows, cols, targets, gxs, gys = [], [], [], [], [], [], [], []
+    xs, vs, tiles, rows, cols, targets, gxs, gys, sources = [], [], [], [], [], [], [], [], []
     res = abs(stacks[0].grid.transform.a)
     for name, grp in pts.groupby("tile", sort=True):
         if name not in by_name:
@@ -415,23 +433,38 @@ def build_patches(
         cols.append(grp["col"].to_numpy())
         gxs.append(grp["x"].to_numpy() / res)
         gys.append(grp["y"].to_numpy() / res)
+        sources.append(grp["source"].to_numpy() if "source" in grp else np.full(len(grp), -1))
         try:
             targets.append(outcomes.encode(grp["label"].tolist(), grp["onset_year"].tolist()))
         except LabelError as exc:
             raise LabelError(f"{labels.path}: {exc}") from None
     if not xs:
         raise LabelError(f"{labels.path}: no labelled point falls on the region's tiles")
+    x, valid, target = np.concatenate(xs), np.concatenate(vs), np.concatenate(targets)
     tile = np.concatenate(tiles)
     row = np.concatenate(rows).astype(np.int64)
     col = np.concatenate(cols).astype(np.int64)
+    gx, gy = np.concatenate(gxs), np.concatenate(gys)
+    # The centre pixel is the labelled one; a clear neighbour does not show it.
+    seen = valid[:, :, k // 2, k // 2].any(axis=1)
+    unseen = int((~seen).sum())
+    if unseen:
+        src = np.concatenate(sources)[~seen]
+        unit = "line" if labels.path.suffix.lower() == ".csv" else "feature"
+        first = ", ".join(str(int(v)) for v in np.sort(src)[:5]) + (", ..." if unseen > 5 else "")
+        if seen.any():
+            log.warning("%s: %d labelled point(s) dropped, their pixel is never seen clear on any date (%s %s); add clear imagery there or move the points", labels.path, unseen, unit, first)
+        else:
+            raise LabelError(f"{labels.path}: none of the {unseen} labelled points' pixels is seen clear on any date ({unit} {first}); check the imagery's mask and nodata settings")
+        x, valid, target, tile, row, col, gx, gy = (a[seen] for a in (x, valid, target, tile, row, col, gx, gy))
     codes = None
     if inherit is not None:
         codes = np.array([inherit.get((str(t), int(r), int(c)), NEW) for t, r, c in zip(tile, row, col, strict=True)], dtype=np.int8)
-    split = spatial_split(np.concatenate(gxs), np.concatenate(gys), block=block, shares=shares, k=k, seed=seed, inherit=codes)
+    split = spatial_split(gx, gy, block=block, shares=shares, k=k, seed=seed, inherit=codes)
     return PatchSet(
-        x=np.concatenate(xs),
-        valid=np.concatenate(vs),
-        target=np.concatenate(targets),
+        x=x,
+        valid=valid,
+        target=target,
         tile=tile,
         row=row,
         col=col,
@@ -440,4 +473,5 @@ def build_patches(
         dates=dates,
         outcomes=outcomes,
         sensors=tuple(stacks[0].date_sensors()),
+        dropped_unseen=unseen,
     )

@@ -5,7 +5,12 @@ into one output folder (atomically: built under a temporary name, then
 renamed):
 
 * ``survey.json`` — tiles (grid, CRS, dates), clear-view share by date and by
-  calendar month, label counts and fingerprint, median index series per label;
+  calendar month, label counts and fingerprint, median index series per label,
+  and ``coverage``: per tile the years without one clear pixel on any date and
+  the pixels never seen clear, region-wide the years with no clear view on
+  any tile, and the tiles without one valid pixel (a year without a clear
+  view cannot show a conversion: the map's year there is a guess, and the
+  survey warns in one line naming those years);
 * ``clear_count_<tile>.tif`` — number of valid observations per pixel
   (int16 GeoTIFF on the tile's grid, opens in QGIS in the tile's CRS);
 * ``labels.gpkg`` — the checked reference points in the imagery CRS, with
@@ -33,6 +38,8 @@ from plantation.imagery import indices
 from plantation.imagery.config import RegionConfig
 from plantation.imagery.region import TileStack, open_region
 from plantation.reference.labels import LABEL_NAMES, LabelSet, read_labels
+
+log = logging.getLogger(__name__)
 
 
 @dataclass
@@ -100,6 +107,36 @@ def _write_count(stack: TileStack, path: Path) -> np.ndarray:
         dst.write(count, 1)
         dst.set_band_description(1, "valid_observations")
     return count
+
+
+def coverage(stacks: list[TileStack], clear_share: dict[str, np.ndarray], counts: dict[str, np.ndarray]) -> dict:
+    """Where and when the imagery never sees the ground.
+
+    Args:
+        stacks: the region's tiles (same dates on each).
+        clear_share: tile name → float (time,) share of the tile's pixels
+            valid on each date, unrounded (one clear pixel of millions counts).
+        counts: tile name → int (y, x) valid dates per pixel.
+
+    Returns:
+        ``years_without_clear_view``: tile → calendar years whose dates have
+        no valid pixel at all; ``years_without_clear_view_anywhere``: years
+        with no valid pixel on any tile; ``tiles_without_valid_pixel``: tiles
+        with no valid pixel on any date; ``pixels_never_clear``: tile →
+        number of pixels invalid on every date.
+    """
+    per_tile: dict[str, list[int]] = {}
+    for st in stacks:
+        years = st.dates.astype("datetime64[Y]").astype(int) + 1970
+        seen = np.asarray(clear_share[st.name]) > 0
+        per_tile[st.name] = [int(y) for y in np.unique(years) if not seen[years == y].any()]
+    anywhere = sorted(set.intersection(*(set(v) for v in per_tile.values()))) if per_tile else []
+    return {
+        "years_without_clear_view": per_tile,
+        "years_without_clear_view_anywhere": anywhere,
+        "tiles_without_valid_pixel": [st.name for st in stacks if int(counts[st.name].max(initial=0)) == 0],
+        "pixels_never_clear": {st.name: int((counts[st.name] == 0).sum()) for st in stacks},
+    }
 
 
 def _write_points(labels: LabelSet, crs_wkt: str, path: Path) -> None:
@@ -183,9 +220,17 @@ def run(cfg: SurveyConfig) -> Path:
     tmp.mkdir(parents=True)
     counts: dict[str, np.ndarray] = {}
     clear_by_date: dict[str, list[float]] = {}
+    clear_share: dict[str, np.ndarray] = {}
     for st in stacks:
         counts[st.name] = _write_count(st, tmp / f"clear_count_{st.name}.tif")
-        clear_by_date[st.name] = st.valid.mean(("y", "x")).compute().values.round(4).tolist()
+        clear_share[st.name] = st.valid.mean(("y", "x")).compute().values
+        clear_by_date[st.name] = clear_share[st.name].round(4).tolist()
+    cover = coverage(stacks, clear_share, counts)
+    if cover["years_without_clear_view_anywhere"]:
+        years = ", ".join(map(str, cover["years_without_clear_view_anywhere"]))
+        log.warning("region %s: no clear view anywhere in %s (every date cloudy or masked on every tile); conversions in those years cannot be seen, a map's year there is a guess", region.name, years)
+    if cover["tiles_without_valid_pixel"]:
+        log.warning("region %s: tile(s) %s have no valid pixel on any date; check their nodata, mask and scaling settings", region.name, ", ".join(cover["tiles_without_valid_pixel"]))
     dates = stacks[0].dates
     months = dates.astype("datetime64[M]").astype(int) % 12 + 1
     share = np.mean([clear_by_date[s.name] for s in stacks], axis=0)
@@ -210,6 +255,7 @@ def run(cfg: SurveyConfig) -> Path:
         "years": [int(stacks[0].years[0]), int(stacks[0].years[-1])],
         "clear_share_by_date": {name: dict(zip(map(str, dates), v, strict=True)) for name, v in clear_by_date.items()},
         "clear_share_by_month": clear_by_month,
+        "coverage": cover,
         "labels": {"file": str(labels.path), "fingerprint": labels.fingerprint, "counts": labels.counts()},
         "label_index_series": series.to_dict(orient="records"),
     }
