@@ -103,3 +103,61 @@ def test_labels_all_unseen_are_refused(make_region, tmp_path):
     region = make_region(qa=qa, labels=labels)
     with pytest.raises(LabelError, match=r"labels\.csv: none of the 1 labelled points' pixels is seen clear on any date \(line 2\)"):
         _patches(region, labels)
+
+
+def _cube(tmp_path, tiny_values, suffix):
+    import rioxarray  # noqa: F401  (adds .rio)
+    import xarray as xr
+
+    from tests.conftest import CRS
+
+    ys = TRANSFORM.f + TRANSFORM.e * (np.arange(8) + 0.5)
+    xs = TRANSFORM.c + TRANSFORM.a * (np.arange(8) + 0.5)
+    da = xr.DataArray(tiny_values, dims=("time", "band", "y", "x"), coords={"time": np.array(DATES, dtype="datetime64[ns]"), "band": BANDS, "y": ys, "x": xs}, name="reflectance").rio.write_crs(CRS)
+    path = tmp_path / f"cube{suffix}"
+    # On the variable's own encoding: an encoding= argument would drop the CF grid mapping (the CRS).
+    if suffix == ".nc":
+        # Compressed chunks: damaged bytes fail to decompress instead of reading as numbers.
+        da.encoding.update(zlib=True, chunksizes=(1, 6, 4, 4))
+        da.to_dataset().to_netcdf(path)
+    else:
+        da.encoding["chunks"] = (1, 6, 4, 4)
+        da.to_dataset().to_zarr(path)
+    return path
+
+
+def _cube_region(path):
+    from plantation.imagery.config import MaskConfig, RegionConfig, ScalingRule
+
+    return RegionConfig(name="c", format="cube", tiles=[TileConfig(name="t1", path=str(path))], bands=BANDS, nodata=-9999, mask=MaskConfig(band=None), scaling=[ScalingRule(None, 1e-4, 0.0)], chunk=4)
+
+
+@pytest.mark.filterwarnings("ignore::UserWarning")
+def test_zarr_chunk_corrupt_mid_run_is_a_region_error_naming_file_date_and_window(tiny_values, tmp_path):
+    from plantation.errors import RegionError
+
+    path = _cube(tmp_path, tiny_values, ".zarr")
+    (st,) = open_region(_cube_region(path))
+    np.testing.assert_allclose(st.reflectance.values, tiny_values * 1e-4, rtol=1e-6)  # intact: read as before
+    # The chunk of the third date (2016-02-14), rows 4-7 and cols 0-3, overwritten after opening.
+    chunk = path / "reflectance" / "c" / "2" / "0" / "1" / "0"
+    assert chunk.is_file()
+    chunk.write_bytes(b"\x00garbage" * 8)
+    with pytest.raises(RegionError, match=r"cube\.zarr: date 2016-02-14: cannot read rows 4–7, cols 0–3 \(.+\); the file is truncated or corrupt"):
+        st.reflectance.compute()
+    with pytest.raises(RegionError, match="date 2016-02-14"):
+        st.read(2, 0, 4, 4)  # the windowed read mapping uses goes through the same arrays for a cube
+    st.read(0, 0, 4, 4)  # chunks left intact still read
+
+
+def test_netcdf_corrupt_mid_run_is_a_region_error_naming_the_file(tiny_values, tmp_path):
+    from plantation.errors import RegionError
+
+    path = _cube(tmp_path, tiny_values, ".nc")
+    (st,) = open_region(_cube_region(path))
+    size = path.stat().st_size
+    with open(path, "r+b") as f:  # the second half of the file (the data chunks) overwritten after opening
+        f.seek(size // 2)
+        f.write(np.random.default_rng(0).integers(0, 256, size - size // 2, dtype=np.uint8).tobytes())
+    with pytest.raises(RegionError, match=r"cube\.nc: date 20\d\d-\d\d-\d\d: cannot read rows \d–\d, cols \d–\d \(NetCDF: HDF error\); the file is truncated or corrupt"):
+        st.valid.compute()

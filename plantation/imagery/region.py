@@ -52,7 +52,10 @@ everywhere, or a whole tile without one valid pixel are read without error
 (``plantation survey`` counts them; a mapped pixel with fewer than
 ``min_clear`` clear dates is nodata in the map). A file found unreadable
 while reading (truncated, garbage blocks) raises :class:`RegionError` naming
-the file and its date, from the windowed reads and the lazy arrays alike.
+the file and its date, from the windowed reads and the lazy arrays alike; a
+NetCDF or Zarr cube found damaged (an HDF error, a Zarr chunk that does not
+decompress) names the cube, the dates of the chunk and its window
+(:class:`LazyCubeVariable`).
 """
 
 from __future__ import annotations
@@ -403,6 +406,59 @@ def _lazy_geotiff(path: Path, when: date, count: int, grid: Grid, dtype: str, ch
     ys = t.f + t.e * (np.arange(grid.height) + 0.5)
     xs = t.c + t.a * (np.arange(grid.width) + 0.5)
     return xr.DataArray(arr, dims=("band", "y", "x"), coords={"band": np.arange(1, count + 1), "y": ys, "x": xs})
+
+
+class LazyCubeVariable:
+    """One variable of a NetCDF or Zarr cube as an array-like that dask slices chunk by chunk.
+
+    The variable is xarray's lazy (not dask) view of the file, decoded as
+    xarray decodes it; each chunk is read through :meth:`__getitem__`, so a
+    cube found truncated or corrupt while a job runs (an HDF error, a Zarr
+    chunk that does not decompress) raises a :class:`RegionError` naming the
+    file, the dates and the window, not the library's error from inside a
+    dask task. File handles stay with xarray's backend (locked and cached per
+    file, picklable for distributed workers).
+    """
+
+    def __init__(self, path: Path, variable: xr.Variable, times: np.ndarray) -> None:
+        self.path = str(path)
+        self.variable = variable
+        self.shape = tuple(variable.shape)
+        self.dtype = np.dtype(variable.dtype)
+        self.ndim = variable.ndim
+        #: datetime64[D] of the file's time axis, in the file's order (the chunks' own indexing).
+        self.times = np.asarray(times, dtype="datetime64[D]")
+
+    def _where(self, key: tuple[slice, ...]) -> tuple[str, str]:
+        """(dates, window) a chunk key covers, for the error message."""
+        by_dim = {d: k.indices(n) for d, k, n in zip(self.variable.dims, key, self.shape, strict=True)}
+        when = "?"
+        if "time" in by_dim:
+            t = self.times[slice(*by_dim["time"])]
+            when = "?" if len(t) == 0 else str(t[0]) if len(t) == 1 else f"{t[0]}–{t[-1]}"
+        ys, xs = by_dim.get("y"), by_dim.get("x")
+        window = f"rows {ys[0]}–{ys[1] - 1}, cols {xs[0]}–{xs[1] - 1}" if ys and xs else "a chunk"
+        return when, window
+
+    def __getitem__(self, key: tuple[slice, ...]) -> np.ndarray:
+        try:
+            return np.asarray(self.variable[key].values)
+        # netCDF4 reports a damaged HDF5 block as RuntimeError ("NetCDF: HDF error"), a truncated file as OSError;
+        # Zarr codecs raise RuntimeError or ValueError on a chunk that does not decompress or has the wrong size.
+        except (OSError, RuntimeError, ValueError, EOFError) as exc:
+            when, window = self._where(key)
+            raise read_failed(self.path, when, exc, window) from None
+
+
+def _guarded_cube(path: Path, lazy: xr.Variable, times: np.ndarray, chunks: tuple[tuple[int, ...], ...], variable: str) -> dask.array.Array:
+    """``lazy`` (a cube variable opened without dask) as a dask array of the given ``chunks`` whose reads raise :class:`RegionError` (see :class:`LazyCubeVariable`)."""
+    import dask.array
+
+    stat = Path(path).stat()
+    # The key names the file's state: two opens of a file rewritten in between are two arrays.
+    name = "cube-" + dask.base.tokenize(str(path), variable, stat.st_size, stat.st_mtime_ns, chunks)
+    arr = LazyCubeVariable(path, lazy, times)
+    return dask.array.from_array(arr, chunks=chunks, lock=False, asarray=False, name=name, meta=np.empty((0,) * arr.ndim, arr.dtype))
 
 
 class AssetWindowReader(_PerThreadFiles):
@@ -790,14 +846,24 @@ def _open_cube(tile: TileConfig, region: RegionConfig) -> TileStack:
     try:
         if path.suffix == ".zarr" or path.is_dir():
             ds = xr.open_zarr(path, chunks=chunks, decode_coords="all")
+            # The same store without dask, read chunk by chunk through LazyCubeVariable (cache=False: nothing kept in memory).
+            lazy = xr.open_dataset(path, engine="zarr", chunks=None, cache=False, decode_coords="all")
         else:
             ds = xr.open_dataset(path, chunks=chunks, decode_coords="all")
+            lazy = xr.open_dataset(path, chunks=None, cache=False, decode_coords="all")
     except (OSError, ValueError) as exc:
         raise RegionError(f"{path}: cannot open as NetCDF or Zarr ({exc})") from None
     var = region.cube_variable
     if var not in ds:
         raise RegionError(f"{path}: no variable {var!r}; it has {sorted(map(str, ds.data_vars))} (set region.cube_variable)")
-    da = ds[var]
+    file_times = ds["time"].values if "time" in ds.coords else np.array([], "datetime64[D]")
+
+    def guarded(name: str) -> xr.DataArray:
+        # xarray's chunk layout (the requested y/x chunks, the file's own along the other dims), read through LazyCubeVariable.
+        v = ds[name]
+        return v.copy(data=_guarded_cube(path, lazy[name].variable, file_times, v.chunks, name))
+
+    da = guarded(var)
     if tuple(da.dims) != ("time", "band", "y", "x"):
         raise RegionError(f"{path}: variable {var!r} has dims {tuple(da.dims)}; expected ('time', 'band', 'y', 'x'), use transpose")
     if da.sizes["band"] != len(region.bands):
@@ -833,7 +899,7 @@ def _open_cube(tile: TileConfig, region: RegionConfig) -> TileStack:
     if region.mask.variable:
         if region.mask.variable not in ds:
             raise RegionError(f"{path}: no QA variable {region.mask.variable!r}")
-        invalid = invalid | qa_invalid(ds[region.mask.variable].sortby("time").sel(time=da["time"]), region.mask.invalid_bits, region.mask.invalid_values)
+        invalid = invalid | qa_invalid(guarded(region.mask.variable).sortby("time").sel(time=da["time"]), region.mask.invalid_bits, region.mask.invalid_values)
     if "sensor" in da.coords and da["sensor"].dims == ("time",):
         sensors = [harmonise_io.canonical_sensor(str(v)) for v in da["sensor"].values]
     else:
