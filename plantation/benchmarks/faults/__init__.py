@@ -34,7 +34,7 @@ from plantation.records import write_object
 #: Kinds of case, as the result counts them.
 KINDS: tuple[str, ...] = ("kill", "bad_input", "model_file", "resource")
 #: Modules of this package holding cases, in the order they run.
-CASE_MODULES: tuple[str, ...] = ("mapping", "inputs", "models", "training")
+CASE_MODULES: tuple[str, ...] = ("mapping", "inputs", "coverage", "models", "training")
 #: Where the demo region lives, relative to the project root.
 TOY = "toy_tiles"
 
