@@ -218,7 +218,8 @@ def benchmark_faults(cfg: DictConfig) -> None:
 
     fc = to_object(cfg, FaultsConfig)
     res = run(fc)
-    print(f"{res['cases_held']} of {res['cases_tried']} cases held; {res['kills_survived']}/{res['kills_tried']} kills survived, {res['bad_inputs_refused']}/{res['bad_inputs_tried']} bad inputs refused, {res['outputs_corrupt']} corrupt outputs")
+    print(f"{res['cases_held']} of {res['cases_tried']} cases held; {res['kills_survived']}/{res['kills_tried']} kills survived,", end=" ")
+    print(f"{res['bad_inputs_refused']}/{res['bad_inputs_tried']} bad inputs refused, {res['outputs_corrupt']} corrupt outputs")
     print(f"written to {fc.result}")
 
 
