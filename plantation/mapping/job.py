@@ -21,6 +21,7 @@ from plantation.errors import ConfigError, PlantationError
 from plantation.imagery.config import RegionConfig
 from plantation.imagery.region import open_region, open_tile
 from plantation.mapping.catalog import Catalogue
+from plantation.mapping.fire import FIRE_CODES, FireRule
 from plantation.mapping.folder import NOTICE, RECALIBRATION, Manifest, TileResult, file_digest, open_map
 from plantation.mapping.guard import FolderLock, OutputSpaceError, check_room, ensure_writable, is_disk_full, output_bytes, remove_partials
 from plantation.mapping.tiles import Settings, TileJob, input_signature, map_tile_task, tile_key
@@ -63,6 +64,8 @@ class MapConfig:
     progress: bool = True
     #: Peak memory of the whole run (this process and its dask workers), MB; window and pixel_batch are lowered to fit it (None: no budget).
     memory_budget_mb: int | None = None
+    #: Thresholds of the fire layers (bands 9-11: fire, fire_year, dnbr), see :class:`plantation.mapping.fire.FireRule`.
+    fire: FireRule = field(default_factory=FireRule)
     engine: EngineConfig = field(default_factory=EngineConfig)
 
 
@@ -113,6 +116,10 @@ class MapSummary:
     pixel_batch: int = 0
     #: Torch threads of each process that mapped tiles now, as read inside it after its tiles ("here": this process).
     torch_threads: dict[str, int] = field(default_factory=dict)
+    #: Hectares of each fire code but ``none`` (converted_burnt, converted_not_burnt, converted_unknown, escaped_fire), pixel counts like converted_ha.
+    fire_ha: dict[str, float] = field(default_factory=dict)
+    #: Hectares mapped as converted with fire whose fire year is after the cutoff year.
+    fire_after_cutoff_ha: float = 0.0
 
     def lines(self) -> list[str]:
         out = [
@@ -125,8 +132,15 @@ class MapSummary:
             mark = "  after cutoff" if y > self.cutoff_year else ""
             out.append(f"  {y}  {a:12,.2f}{mark}")
         out.append(f"  total {sum(self.converted_ha.values()):12,.2f}; after {self.cutoff_year}: {self.after_cutoff_ha:,.2f}")
+        if self.fire_ha:
+            fire = ", ".join(f"{name} {self.fire_ha.get(name, 0.0):,.2f}" for name in FIRE_NAMES)
+            out.append(f"fire (ha): {fire}; cleared with fire after {self.cutoff_year}: {self.fire_after_cutoff_ha:,.2f}")
         out.append("These areas are pixel counts from the map; estimate areas with their confidence intervals from a reference sample.")
         return out
+
+
+#: The fire codes a summary counts (every code of :data:`plantation.mapping.fire.FIRE_CODES` but ``none``), in code order.
+FIRE_NAMES: tuple[str, ...] = tuple(name for name, code in sorted(FIRE_CODES.items(), key=lambda kv: kv[1]) if name != "none")
 
 
 def _threads_per_worker(cfg: MapConfig, workers: int) -> int:
@@ -277,6 +291,7 @@ def plan(cfg: MapConfig) -> tuple[list[TileJob], list[TileResult], Artefact, Set
         threads=_threads_per_worker(cfg, workers) if (workers or cfg.engine.threads) else 0,
         quicklook=cfg.quicklook,
         recalibration=recalibration_of(cfg.recalibration, digest, cfg.cutoff_year if cfg.cutoff_year is not None else art.card.cutoff_year) if cfg.recalibration else "",
+        fire=cfg.fire,
     )
     region = cfg.region
     tiles = region.tiles
@@ -470,6 +485,9 @@ def _run_locked(cfg: MapConfig, out: Path, t0: float) -> MapSummary:
         window=settings.window,
         pixel_batch=settings.pixel_batch,
         torch_threads=threads,
+        # Tiles mapped before the fire layers carry no fire areas: the totals cover those that do.
+        fire_ha={name: sum(r.fire_ha.get(name, 0.0) for r in every) for name in FIRE_NAMES} if any(r.fire_ha for r in every) else {},
+        fire_after_cutoff_ha=sum(r.fire_after_cutoff_ha for r in every),
     )
     tmp = out / "summary.json.partial"
     tmp.write_text(json.dumps(asdict(summary) | {"notice": NOTICE}, indent=1))
