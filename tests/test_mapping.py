@@ -268,6 +268,58 @@ def test_an_interrupted_tile_leaves_nothing_that_looks_finished(region, model_di
     assert sorted(p.name for p in out.iterdir()) == []  # no tile, no temporary file, no manifest entry
 
 
+def test_a_tile_is_written_under_a_raw_name_holding_its_process_id(region, model_dir, tmp_path, monkeypatch):
+    # A dask worker given up on by its scheduler may still be writing when its tile runs again elsewhere: the two must not share a file.
+    import os
+
+    import plantation.mapping.tiles as mapping
+    from plantation.mapping.guard import partial_files
+
+    seen: list[list[str]] = []
+    real = mapping.window_probabilities
+    out = tmp_path / "out"
+
+    def watch(*a, **k):
+        seen.append(sorted(p.name for p in partial_files(out)))
+        return real(*a, **k)
+
+    monkeypatch.setattr(mapping, "window_probabilities", watch)
+    run(_cfg(region, model_dir, out, tiles=["t0"]))
+    assert seen and all(names == [f".t0.{os.getpid()}.raw.tif"] for names in seen), seen
+    assert partial_files(out) == []
+
+
+def test_the_fire_thresholds_reach_the_tiles_and_the_summary_counts_their_areas(region, model_dir, tmp_path):
+    from dataclasses import asdict
+
+    from plantation.mapping.fire import FireRule
+
+    out = tmp_path / "out"
+    rule = FireRule(min_bai=30.0, escape_px=2, max_gap_years=0.75)
+    summary = run(_cfg(region, model_dir, out, fire=rule))
+    # Every pixel of these UTM tiles is 30 m x 30 m = 0.09 ha; areas counted here from the written bands.
+    want = dict.fromkeys([n for n in FIRE_CODES if n != "none"], 0.0)
+    burnt_after = 0.0
+    for t in ("t0", "t1"):
+        with rasterio.open(out / f"{t}.tif") as src:
+            assert json.loads(src.tags()["fire_rule"]) == asdict(rule)
+            fire, year = src.read(BAND["fire"]), src.read(BAND["fire_year"])
+        for name in want:
+            want[name] += float((fire == FIRE_CODES[name]).sum()) * 0.09
+        burnt_after += float(((fire == FIRE_CODES["converted_burnt"]) & (year > 2015)).sum()) * 0.09
+    assert set(summary.fire_ha) == set(want)
+    for name in want:
+        assert summary.fire_ha[name] == pytest.approx(want[name], abs=1e-6)
+    assert summary.fire_after_cutoff_ha == pytest.approx(burnt_after, abs=1e-6)
+    assert sum(want.values()) > 0  # the tiles map as converted (model_dir): the count is not empty
+    line = next(x for x in summary.lines() if x.startswith("fire (ha):"))
+    assert f"converted_burnt {want['converted_burnt']:,.2f}" in line and f"after 2015: {burnt_after:,.2f}" in line
+    assert json.loads((out / "summary.json").read_text())["fire_ha"] == summary.fire_ha
+    # The thresholds decide the content: other ones map the tiles again, the same ones skip them.
+    assert run(_cfg(region, model_dir, out, fire=rule)).tiles_skipped == ["t0", "t1"]
+    assert run(_cfg(region, model_dir, out, fire=FireRule(min_bai=60.0))).tiles_mapped == ["t0", "t1"]
+
+
 @pytest.mark.slow
 def test_two_dask_workers_give_the_single_process_files(region, model_dir, tmp_path):
     run(_cfg(region, model_dir, tmp_path / "one"))

@@ -25,7 +25,7 @@ from collections.abc import Iterable
 from pathlib import Path
 
 from plantation.errors import PlantationError
-from plantation.mapping.folder import LAYERS
+from plantation.mapping.folder import MAP_LAYERS
 
 try:  # POSIX; elsewhere runs are not locked (see FolderLock)
     import fcntl
@@ -36,8 +36,8 @@ log = logging.getLogger(__name__)
 
 #: The lock file's name inside the output folder (hidden; removed when the run ends).
 LOCK_NAME = ".plantation-map.lock"
-#: Bytes per output pixel of a tile's GeoTIFF: its int16 layers (:data:`plantation.mapping.folder.LAYERS`).
-BYTES_PER_PIXEL = len(LAYERS) * 2
+#: Bytes per output pixel of a tile's GeoTIFF: its int16 layers, the eight of the map and the three of fire (:data:`plantation.mapping.folder.MAP_LAYERS`).
+BYTES_PER_PIXEL = len(MAP_LAYERS) * 2
 #: Extra bytes per finished tile for its overviews (a quarter, a sixteenth, ... of the pixels: under a third more).
 OVERVIEW_SHARE = 1 / 3
 #: Bytes per pixel of the PNG quicklook, a bound (RGBA at most).
@@ -166,7 +166,7 @@ def partial_files(folder: Path) -> list[Path]:
     """Temporary files of the mapping job in a map folder (and its ``stac/``).
 
     The job's writers all write under a temporary name and rename when done:
-    ``.<tile>.raw.tif`` (the tiled GeoTIFF before its COG), ``.<name>.partial``
+    ``.<tile>.<pid>.raw.tif`` (the tiled GeoTIFF before its COG, named by the writing process), ``.<name>.partial``
     (COG, STAC files) and ``<name>.partial`` (manifest, summary, styles,
     quicklook). Nothing else in the folder matches.
     """

@@ -14,6 +14,7 @@ from __future__ import annotations
 import hashlib
 import json
 import logging
+import os
 import time
 from collections import deque
 from collections.abc import Callable, Sequence
@@ -226,7 +227,9 @@ def map_tile(
     areas = g.row_areas_m2() / 1e4
     conv = LABEL_CODES["conversion"]
     wins = list(windows(g.height, g.width, settings.window))
-    raw = dest.with_name(f".{dest.stem}.raw.tif")
+    # The process id in the name: a worker the scheduler gave up on but still running must not write into the file of its tile's rerun
+    # (guard.partial_files matches any ".<...>.raw.tif").
+    raw = dest.with_name(f".{dest.stem}.{os.getpid()}.raw.tif")
     mapped = 0
     by_year = np.zeros(len(years))
     after = 0.0
