@@ -30,9 +30,10 @@ from rasterio.warp import transform_bounds
 
 from plantation.errors import FileFormatError
 from plantation.mapping.catalog import COLLECTION, DENSIFY, ITEMS, layer_notes, write_collection
-from plantation.mapping.folder import BAND, LAYERS, MANIFEST
+from plantation.mapping.fire import FIRE_CODES
+from plantation.mapping.folder import BAND, MANIFEST, MAP_LAYERS
 from plantation.mapping.job import run
-from plantation.mapping.styles import CLASS_STYLE
+from plantation.mapping.styles import CLASS_STYLE, FIRE_STYLE
 from plantation.reference.labels import LABEL_CODES
 from tests.test_mapping import YEARS, _cfg, model_dir, region  # noqa: F401 (fixtures)
 
@@ -95,8 +96,9 @@ def test_item_projection_bbox_and_assets_are_the_files_own(mapped):
         assert data.extra_fields["file:checksum"] == "1220" + digest and data.extra_fields["file:size"] == Path(data.get_absolute_href()).stat().st_size
         # Every asset opens: the styles are QGIS documents, the quicklook a PNG.
         roles = {key: a.roles for key, a in it.assets.items()}
-        assert roles == {"data": ["data"], "style": ["metadata"], "style_onset_year": ["metadata"], "style_p_after_cutoff": ["metadata"], "quicklook": ["overview"]}
-        for key in ("style", "style_onset_year", "style_p_after_cutoff"):
+        styles = ("style", "style_onset_year", "style_p_after_cutoff", "style_fire", "style_dnbr")
+        assert roles == {"data": ["data"], **dict.fromkeys(styles, ["metadata"]), "quicklook": ["overview"]}
+        for key in styles:
             assert ET.parse(it.assets[key].get_absolute_href()).getroot().tag == "qgis"
         assert Path(it.assets["quicklook"].get_absolute_href()).read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
         assert ET.parse(it.assets["style"].get_absolute_href()).find(".//rasterrenderer").get("band") == str(BAND["class"])
@@ -105,7 +107,7 @@ def test_item_projection_bbox_and_assets_are_the_files_own(mapped):
 def test_bands_describe_the_layers_and_the_class_band_carries_the_map_codes(mapped):
     col = pystac.Collection.from_file(str(mapped / COLLECTION))
     notes = layer_notes()
-    assert set(notes) == {name for name, _, _ in LAYERS}  # the layer table describes every band
+    assert set(notes) == {name for name, _, _ in MAP_LAYERS}  # the layer table describes every band
     for it in col.get_items():
         data = it.assets["data"]
         bands = RasterExtension.ext(data).bands
@@ -121,15 +123,21 @@ def test_bands_describe_the_layers_and_the_class_band_carries_the_map_codes(mapp
                     assert (b.scale, b.offset) == (src.scales[i], src.offsets[i])
                 else:
                     assert b.scale is None and b.offset is None
-            assert [b.unit for b in bands] == [u for _, _, u in LAYERS]
+            assert [b.unit for b in bands] == [u for _, _, u in MAP_LAYERS]
             classes = src.read(BAND["class"], masked=True)
+            fire = src.read(BAND["fire"], masked=True)
         # Classification extension: the class band's values are the codes the map writes, named and coloured as its QGIS style.
         cls = ClassificationExtension.ext(bands[BAND["class"] - 1]).classes
         assert [c.value for c in cls] == sorted(LABEL_CODES.values()) == sorted(CLASS_STYLE)
         assert {c.name: c.value for c in cls} == LABEL_CODES
         assert [f"#{c.color_hint}".lower() for c in cls] == [CLASS_STYLE[c.value][1] for c in cls]
         assert set(np.unique(classes.compressed())) <= {c.value for c in cls} and classes.count() > 0
-        assert all(ClassificationExtension.ext(b).classes is None for i, b in enumerate(bands) if i != BAND["class"] - 1)
+        # The fire band's classes: the fire codes the map writes, coloured as its QGIS style (code 0 is not drawn, so has no colour).
+        fcls = ClassificationExtension.ext(bands[BAND["fire"] - 1]).classes
+        assert {c.name: c.value for c in fcls} == FIRE_CODES
+        assert all((f"#{c.color_hint}".lower() if c.color_hint else None) == (FIRE_STYLE[c.value][1].lower() if c.value in FIRE_STYLE else None) for c in fcls)
+        assert set(np.unique(fire.compressed())) <= set(FIRE_CODES.values()) and fire.count() > 0
+        assert all(ClassificationExtension.ext(b).classes is None for i, b in enumerate(bands) if i not in (BAND["class"] - 1, BAND["fire"] - 1))
         assert "conversion year" in notes["onset_year"]
 
 
@@ -169,7 +177,7 @@ def test_a_resumed_run_ends_with_the_clean_runs_collection_and_the_folder_moves(
     shutil.rmtree(out)
     for it in pystac.Collection.from_file(str(moved / COLLECTION)).get_items():
         with rasterio.open(it.assets["data"].get_absolute_href()) as src:
-            assert src.count == len(LAYERS)
+            assert src.count == len(MAP_LAYERS)
 
 
 def test_items_follow_the_tiles_bytes(region, model_dir, tmp_path, mapped):  # noqa: F811
