@@ -289,6 +289,46 @@ def test_refuses_an_already_recalibrated_map_and_an_occupied_out_dir(labelled, t
     _refused(map_dir, RecalibrateConfig(map=str(map_dir), samples=str(sheet), out_dir=str(out)), "out_dir already holds a map")
 
 
+def test_a_folder_another_run_holds_is_refused_in_one_line_and_left_as_it_was(labelled, tmp_path: Path) -> None:
+    from plantation.mapping.guard import LOCK_NAME, FolderBusyError, FolderLock
+
+    map_dir, sheet, _ = labelled
+    before = snapshot(map_dir)
+    # Held as a mapping run holds its out_dir: correcting that map in place is refused, nothing of it changes.
+    with FolderLock(map_dir):
+        with pytest.raises(FolderBusyError, match=rf"^out_dir: {map_dir} is in use: another run \(pid \d+ on .*\) holds it; wait for that run to end, then recalibrate$") as info:
+            run(RecalibrateConfig(map=str(map_dir), samples=str(sheet)), echo=lambda *_: None)
+        assert "\n" not in str(info.value)
+        assert {k: v for k, v in snapshot(map_dir).items() if k != LOCK_NAME} == before
+        assert sorted(p.name for p in map_dir.iterdir() if p.name.startswith(".")) == [LOCK_NAME]
+        # A held out_dir elsewhere too: nothing is written into it.
+        out = tmp_path / "fixed"
+        out.mkdir()
+        with FolderLock(out), pytest.raises(FolderBusyError, match=str(out)):
+            run(RecalibrateConfig(map=str(map_dir), samples=str(sheet), out_dir=str(out)), echo=lambda *_: None)
+        assert [p.name for p in out.iterdir()] == []
+    # Released, the same correction goes through and leaves no lock behind.
+    res = run(RecalibrateConfig(map=str(map_dir), samples=str(sheet)), echo=lambda *_: None)
+    assert res.in_place and not (map_dir / LOCK_NAME).exists()
+    assert open_map(map_dir).correction[RECALIBRATION] == res.correction
+
+
+def test_a_map_whose_manifest_changed_after_it_was_read_is_not_written(labelled) -> None:
+    # A mapping run that finished between the fit's read and the lock: the fit's tiles are no longer the map's.
+    from plantation.assessment.recalibrate import write_corrected
+    from plantation.mapping.guard import LOCK_NAME
+
+    map_dir, _, _ = labelled
+    mapped = open_map(map_dir)
+    man = json.loads((map_dir / "manifest.json").read_text())
+    man["tiles"]["t01"]["sha256"] = "0" * 64
+    (map_dir / "manifest.json").write_text(json.dumps(man))
+    before = snapshot(map_dir)
+    with pytest.raises(PlantationError, match=r"manifest.json: the map changed while recalibrating"):
+        write_corrected(mapped, map_dir, {"method": METHOD, "coef_conversion": [0.0, 1.0], "coef_after_cutoff": [0.0, 1.0], "n": 2})
+    assert snapshot(map_dir) == before and not (map_dir / LOCK_NAME).exists()
+
+
 def test_a_failure_midway_leaves_the_map_as_it_was(labelled, tmp_path: Path, monkeypatch) -> None:
     import plantation.assessment.recalibrate as job
 

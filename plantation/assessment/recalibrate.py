@@ -26,6 +26,9 @@ the manifest are written under temporary names and then put in place (in
 place, the originals are kept aside until the manifest is replaced and put
 back on any failure). The manifest entry and a GeoTIFF tag of each tile
 (:data:`plantation.mapping.folder.CORRECTION_TAG`) record the correction.
+The folder written is locked meanwhile with the lock of `plantation map`
+(:class:`plantation.mapping.guard.FolderLock`): a mapping run or a second
+recalibration on it is refused in one line, and it refuses them.
 """
 
 from __future__ import annotations
@@ -48,6 +51,7 @@ from plantation.errors import ConfigError, PlantationError
 from plantation.imagery.config import RegionConfig
 from plantation.mapping.catalog import COLLECTION, write_collection
 from plantation.mapping.folder import BAND, CORRECTION_TAG, MANIFEST, NODATA, RECALIBRATION, MappedRegion, describe_correction, open_map, read_manifest, recalibrate_stored, sha256_of, write_cog
+from plantation.mapping.guard import FolderBusyError, FolderLock
 from plantation.model.calibration import apply_recalibration, expected_calibration_error, fit_recalibration
 
 METHOD = "design-weighted logistic recalibration"
@@ -272,15 +276,39 @@ def run(cfg: RecalibrateConfig, echo: Any = print) -> RecalibrationResult:
 def write_corrected(mapped: MappedRegion, out: Path, correction: dict[str, Any], *, window: int = 1024) -> int:
     """Write every tile of ``mapped`` recalibrated into ``out`` (its own folder: in place), then the manifest; all or nothing.
 
+    ``out`` is locked for the whole write (:class:`plantation.mapping.guard.FolderLock`, the
+    lock of `plantation map`): a mapping run or another recalibration on it is refused.
+
     Returns the pixels where p_after_cutoff was capped at p_conversion.
+
+    Raises:
+        FolderBusyError: another run holds ``out``.
+        PlantationError: the map's manifest changed since ``mapped`` was read.
     """
-    src_dir = mapped.folder
-    in_place = out.resolve() == src_dir.resolve()
     created = not out.exists()
     out.mkdir(parents=True, exist_ok=True)
+    lock = FolderLock(out)
+    try:
+        lock.acquire()
+    except FolderBusyError:
+        if created:
+            shutil.rmtree(out, ignore_errors=True)
+        raise FolderBusyError(f"out_dir: {out} is in use: another run ({lock.holder()}) holds it; wait for that run to end, then recalibrate") from None
+    try:
+        return _write_locked(mapped, out, correction, window=window, created=created)
+    finally:
+        lock.release()
+
+
+def _write_locked(mapped: MappedRegion, out: Path, correction: dict[str, Any], *, window: int, created: bool) -> int:
+    src_dir = mapped.folder
+    in_place = out.resolve() == src_dir.resolve()
     raw = read_manifest(src_dir)
     if raw is None:  # open_map read it a moment ago
         raise PlantationError(f"{src_dir / MANIFEST}: disappeared while recalibrating")
+    # The fit read the tiles open_map verified; a mapping run that finished before the lock was taken may have replaced some since.
+    if {n: e.get("sha256") for n, e in raw["tiles"].items()} != {t.name: t.sha256 for t in mapped.tiles}:
+        raise PlantationError(f"{src_dir / MANIFEST}: the map changed while recalibrating (a mapping run?); run the recalibration again")
     staged: dict[Path, Path] = {}
     extras: list[Path] = []
     kept: dict[Path, Path] = {}
