@@ -288,6 +288,15 @@ def test_a_tile_is_written_under_a_raw_name_holding_its_process_id(region, model
     assert seen and all(names == [f".t0.{os.getpid()}.raw.tif"] for names in seen), seen
     assert partial_files(out) == []
 
+    # The raw file of a worker that died mid-tile (another process id), left while the run goes on, is gone when the run ends.
+    def dying_worker(*a, **k):
+        (out / ".t1.999999.raw.tif").write_bytes(b"a worker killed mid-tile")
+        return real(*a, **k)
+
+    monkeypatch.setattr(mapping, "window_probabilities", dying_worker)
+    run(_cfg(region, model_dir, out))
+    assert partial_files(out) == [] and (out / "t1.tif").exists()
+
 
 def test_the_fire_thresholds_reach_the_tiles_and_the_summary_counts_their_areas(region, model_dir, tmp_path):
     from dataclasses import asdict

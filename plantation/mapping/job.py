@@ -439,7 +439,12 @@ def run(cfg: MapConfig) -> MapSummary:
         if stale:
             log.info("%s: removed %d temporary files of an earlier run that did not finish", out, len(stale))
         try:
-            return _run_locked(cfg, out, t0)
+            summary = _run_locked(cfg, out, t0)
+            # A dask worker killed mid-tile left its raw file under its own process id; its tile was done again by another.
+            left = remove_partials(out)
+            if left:
+                log.info("%s: removed %d temporary files of workers that died mid-tile: %s", out, len(left), ", ".join(p.name for p in left))
+            return summary
         except BaseException as exc:
             remove_partials(out)
             if isinstance(exc, Exception) and not isinstance(exc, PlantationError) and is_disk_full(exc, out):
