@@ -1060,6 +1060,7 @@ def run(
     trained.metrics["threads"] = {"torch_per_process": threads or torch.get_num_threads(), "processes_per_machine": cfg.trainer.devices, "usable_cores": usable_cores()}
     split_counts = {name: int((samples.split == i).sum()) for i, name in enumerate(SPLITS)}
     split_counts["dropped_buffer"] = int((samples.split == -1).sum())
+    split_counts["dropped_never_clear"] = int(samples.dropped_unseen)
     (work / runs.LABELS).write_text(json.dumps({"path": str(labels.path), "fingerprint": labels.fingerprint, "counts": labels.counts(), "split": split_counts}, indent=2))
     (work / runs.METRICS).write_text(json.dumps(trained.metrics, indent=2))
     runs.write_points(work, labels.points, sample_splits(samples))

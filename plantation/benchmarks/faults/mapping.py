@@ -117,7 +117,7 @@ def _finished(out: Path) -> dict[str, dict[str, Any]]:
 
 
 def _raw(out: Path) -> list[str]:
-    return sorted(p.name[1 : -len(".raw.tif")] for p in out.glob(".*.raw.tif")) if out.is_dir() else []
+    return sorted(p.name[1 : -len(".raw.tif")].rsplit(".", 1)[0] for p in out.glob(".*.raw.tif")) if out.is_dir() else []
 
 
 def _descendants(pid: int) -> list[Any]:
@@ -248,7 +248,7 @@ def worker_killed(ws: Workspace, scratch: Path) -> Outcome:
             except Exception:  # a process that ended meanwhile
                 continue
             if raw:
-                victim.update(pid=p.pid, tile=Path(raw[0]).name[1 : -len(".raw.tif")])
+                victim.update(pid=p.pid, tile=Path(raw[0]).name[1 : -len(".raw.tif")].rsplit(".", 1)[0])
                 return True
         return False
 
