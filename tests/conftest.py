@@ -78,16 +78,12 @@ def pixel_centre(row: int, col: int, transform: Affine = TRANSFORM) -> tuple[flo
 
 def write_map_tile(path: Path, bands: np.ndarray, *, crs: str, transform: Affine, tags: dict[str, str], **profile: object) -> Path:
     """A map tile as the mapping job writes it: int16 bands of ``LAYERS`` with their names, units, scales, nodata and dataset ``tags``."""
-    from plantation.mapping.folder import LAYERS, NODATA
+    from plantation.mapping.folder import LAYERS, NODATA, describe_layers
 
     h, w = bands.shape[1:]
     prof = {"driver": "GTiff", "width": w, "height": h, "count": len(LAYERS), "dtype": "int16", "crs": crs, "transform": transform, "nodata": NODATA, **profile}
     with rasterio.open(path, "w", **prof) as dst:
         dst.write(bands)
-        for i, (desc, _, units) in enumerate(LAYERS, start=1):
-            dst.set_band_description(i, desc)
-            dst.update_tags(i, units=units)
-        dst.scales = [s for _, s, _ in LAYERS]
-        dst.offsets = [0.0] * len(LAYERS)
+        describe_layers(dst, LAYERS)
         dst.update_tags(**tags)
     return path

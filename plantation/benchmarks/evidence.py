@@ -56,7 +56,7 @@ from plantation.farmplots import cutoff as plot_check
 from plantation.farmplots.evidence import VERDICT_NAMES, EvidenceConfig, PagePlot, write_pages
 from plantation.imagery.config import RegionConfig
 from plantation.imagery.region import open_tile
-from plantation.mapping.folder import FORMAT, LAYERS, MANIFEST, NODATA, SCALE, open_map
+from plantation.mapping.folder import FORMAT, LAYERS, MANIFEST, NODATA, SCALE, describe_layers, open_map
 from plantation.records import write_object
 from plantation.reference.labels import LABEL_CODES
 
@@ -159,11 +159,7 @@ def build_truth_map(region: RegionConfig, folder: Path, cutoff_year: int) -> Pat
         prof = {"driver": "GTiff", "width": cls.shape[1], "height": cls.shape[0], "count": len(LAYERS), "dtype": "int16", "nodata": NODATA, "tiled": True, "compress": "deflate", **profile}
         with rasterio.open(tmp, "w", **prof) as dst:
             dst.write(bands)
-            for i, (desc, _, units) in enumerate(LAYERS, start=1):
-                dst.set_band_description(i, desc)
-                dst.update_tags(i, units=units)
-            dst.scales = [s for _, s, _ in LAYERS]
-            dst.offsets = [0.0] * len(LAYERS)
+            describe_layers(dst, LAYERS)
             dst.update_tags(cutoff_year=str(cutoff_year), interval_level="0.8", producer="benchmark-evidence: from the truth raster")
         os.replace(tmp, path)
         px_ha = abs(profile["transform"].a * profile["transform"].e) / 1e4

@@ -99,6 +99,17 @@ FIRE_LAYERS: tuple[tuple[str, float, str], ...] = (
 )
 #: Every layer the mapping job writes, in band order.
 MAP_LAYERS: tuple[tuple[str, float, str], ...] = LAYERS + FIRE_LAYERS
+
+
+def describe_layers(dst: Any, layers: tuple[tuple[str, float, str], ...] = MAP_LAYERS) -> None:
+    """Name, unit, scale and offset of each band of a map tile open for writing (``layers`` in band order)."""
+    for i, (name, _, units) in enumerate(layers, start=1):
+        dst.set_band_description(i, name)
+        dst.update_tags(i, units=units)
+    dst.scales = [s for _, s, _ in layers]
+    dst.offsets = [0.0] * len(layers)
+
+
 BAND = {name: i + 1 for i, (name, _, _) in enumerate(MAP_LAYERS)}
 #: What each layer holds, in words (the layer table above, for catalogues and band descriptions).
 LAYER_MEANING: dict[str, str] = {

@@ -32,7 +32,7 @@ from plantation import __version__
 from plantation.imagery.config import RegionConfig, TileConfig
 from plantation.imagery.region import TileStack, open_tile
 from plantation.mapping.fire import FIRE_CODES, FireRule, FireWindow, attribute, decimal_years, resolve_escaped
-from plantation.mapping.folder import BAND, FORMAT, LAYERS, MAP_LAYERS, NODATA, NOTICE, RECALIBRATION, SCALE, TileResult, file_digest, recalibrate_stored, write_cog
+from plantation.mapping.folder import BAND, FORMAT, LAYERS, MAP_LAYERS, NODATA, NOTICE, RECALIBRATION, SCALE, TileResult, describe_layers, file_digest, recalibrate_stored, write_cog
 from plantation.mapping.quicklook import quicklook
 from plantation.mapping.styles import class_style, dnbr_style, fire_style, onset_style, p_after_cutoff_style, write_style
 from plantation.model.artefact import Artefact, load
@@ -270,11 +270,7 @@ def map_tile(
 
     try:
         with rasterio.open(raw, "w", **_profile(stack, settings.window)) as dst, ThreadPoolExecutor(1, "read") as reader, ThreadPoolExecutor(1, "write") as writer:
-            for i, (name, _, units) in enumerate(MAP_LAYERS, start=1):
-                dst.set_band_description(i, name)
-                dst.update_tags(i, units=units)
-            dst.scales = [s for _, s, _ in MAP_LAYERS]
-            dst.offsets = [0.0] * len(MAP_LAYERS)
+            describe_layers(dst, MAP_LAYERS)
             dst.update_tags(
                 notice=NOTICE,
                 class_codes="1 stable natural forest; 2 converted to tree-crop plantation; 3 plantation before the series; 4 other land or disturbance",
