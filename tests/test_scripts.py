@@ -67,7 +67,8 @@ def test_map_script_on_the_toy_region(tmp_path):
     res = run("map", f"model={tmp_path / 'train' / 'quick'}", f"out_dir={maps}", "progress=false", "tiles=[t01]")
     assert res.returncode == 0, res.stderr
     assert "tiles: 1 mapped" in res.stdout and "converted area by onset year (ha)" in res.stdout
-    assert {p.name for p in maps.iterdir()} == {"t01.tif", "t01.qml", "t01.onset_year.qml", "t01.p_after_cutoff.qml", "t01.png", "manifest.json", "summary.json", "collection.json", "stac"}
+    styles = {f"t01.{s}.qml" for s in ("onset_year", "p_after_cutoff", "fire", "dnbr")}
+    assert {p.name for p in maps.iterdir()} == {"t01.tif", "t01.qml", *styles, "t01.png", "manifest.json", "summary.json", "collection.json", "stac"}
     with rasterio.open(maps / "t01.tif") as src, rasterio.open(ROOT / "toy_tiles" / "t01" / "truth.tif") as truth:
         assert src.crs == truth.crs and src.transform == truth.transform and src.shape == truth.shape
     res = run("map", f"model={tmp_path / 'train' / 'quick'}", f"out_dir={maps}", "progress=false", "tiles=[t01]")

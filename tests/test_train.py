@@ -67,7 +67,15 @@ def test_train_script_writes_a_complete_run(tmp_path):
     run = tmp_path / "run"
     assert str(run) in res.stdout
     assert {p.name for p in run.iterdir()} >= {"config.yaml", "labels.json", "metrics.json", "checkpoints", "logs", "model"}
-    assert sorted(p.name for p in (run / "checkpoints").iterdir()) == ["distilled.ckpt", "member0.ckpt", "member1.ckpt"]
+    assert sorted(p.name for p in (run / "checkpoints").iterdir()) == [
+        "distilled.ckpt",
+        "distilled.safetensors",
+        "member0.ckpt",
+        "member0.safetensors",
+        "member1.ckpt",
+        "member1.safetensors",
+        "resume.json",
+    ]
     labels = json.loads((run / "labels.json").read_text())
     assert len(labels["fingerprint"]) == 64 and labels["counts"]["conversion"] > 500
     assert labels["split"]["train"] > 1500 and labels["split"]["val"] > 150 and labels["split"]["test"] > 150

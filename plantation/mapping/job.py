@@ -154,6 +154,9 @@ def _threads_per_worker(cfg: MapConfig, workers: int) -> int:
 F32 = 4
 #: Resident memory of a dask nanny process (it watches and restarts its worker), MB; measured, counted per worker in a budget.
 NANNY_MB = 100
+#: What a mapping process takes on after planning besides its windows (GDAL's drivers and the COG writer loaded, a tile's outputs,
+#: the allocator's slack), MB; counted per mapping process. Measured on the demo region at 57-123 MB over windows of 16-128 px.
+RUN_OVERHEAD_MB = 128
 
 
 def window_bytes(window: int, pixel_batch: int, *, halo: int, dates: int, channels: int, years: int, network: dict[str, Any], networks: int = 1) -> int:
@@ -204,9 +207,10 @@ def fit_budget(cfg: MapConfig, *, process_mb: float, halo: int, dates: int, chan
 
     The rule: with ``w`` worker processes the budget covers this process
     (``process_mb``) and ``w`` workers, each as large as this process plus
-    its nanny (:data:`NANNY_MB`) plus GDAL's cache plus :func:`window_bytes`;
-    without workers this process maps and the budget covers it plus GDAL's
-    cache plus the windows. The pixel batch shrinks first (down to 256),
+    its nanny (:data:`NANNY_MB`) plus GDAL's cache plus what mapping adds
+    (:data:`RUN_OVERHEAD_MB`) plus :func:`window_bytes`; without workers this
+    process maps and the budget covers it plus GDAL's cache, the overhead and
+    the windows. The pixel batch shrinks first (down to 256),
     then the window.
 
     Raises:
@@ -216,7 +220,7 @@ def fit_budget(cfg: MapConfig, *, process_mb: float, halo: int, dates: int, chan
     workers = cfg.engine.workers if not cfg.engine.scheduler else 0
     gdal = float(cfg.engine.gdal_cache_mb or 0)
     share = (budget - process_mb) / workers if workers else budget
-    room = share - process_mb - gdal - (NANNY_MB if workers else 0)
+    room = share - process_mb - gdal - RUN_OVERHEAD_MB - (NANNY_MB if workers else 0)
 
     def mb(win: int, batch: int) -> float:
         return window_bytes(win, batch, halo=halo, dates=dates, channels=channels, years=years, network=network, networks=networks) / 2**20
@@ -226,11 +230,12 @@ def fit_budget(cfg: MapConfig, *, process_mb: float, halo: int, dates: int, chan
         for batch in batches:
             if mb(win, batch) <= room:
                 return Budget(share, process_mb, gdal, win, batch, mb(win, batch))
-    need = process_mb + gdal + (NANNY_MB if workers else 0) + mb(16, batches[-1])
+    need = process_mb + gdal + RUN_OVERHEAD_MB + (NANNY_MB if workers else 0) + mb(16, batches[-1])
     per = f"{share:,.0f} MB per worker" if workers else f"{share:,.0f} MB"
     raise ConfigError(
         f"memory_budget_mb: {cfg.memory_budget_mb} MB leaves {per}, less than a mapping process needs with a 16-px window "
-        f"({need:,.0f} MB: {process_mb:,.0f} MB the process itself, {gdal:,.0f} MB GDAL's cache); raise the budget, use fewer engine.workers or a smaller engine.gdal_cache_mb"
+        f"({need:,.0f} MB: {process_mb:,.0f} MB the process itself, {gdal:,.0f} MB GDAL's cache, {RUN_OVERHEAD_MB} MB mapping's own); "
+        "raise the budget, use fewer engine.workers or a smaller engine.gdal_cache_mb"
     )
 
 
@@ -433,7 +438,19 @@ def run(cfg: MapConfig) -> MapSummary:
         # Before GDAL's first read in this process; LocalCluster workers inherit it.
         os.environ.setdefault("GDAL_CACHEMAX", str(int(cfg.engine.gdal_cache_mb)))
     out = Path(cfg.out_dir)
+    created = not out.exists()
     ensure_writable(out)
+    try:
+        return _run_in(cfg, out, t0)
+    except BaseException:
+        # A run refused before writing anything (a bad model, region or tile) leaves no empty folder of its own behind.
+        if created and out.is_dir() and not any(out.iterdir()):
+            out.rmdir()
+        raise
+
+
+def _run_in(cfg: MapConfig, out: Path, t0: float) -> MapSummary:
+    """:func:`run` in a writable ``out``: lock it, clear an earlier run's temporary files, map."""
     with FolderLock(out):
         stale = remove_partials(out)
         if stale:

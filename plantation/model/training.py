@@ -465,7 +465,7 @@ def prepare_resume(folder: Path, key: str, *, resume: bool) -> dict[str, Any]:
 
 
 def finish(folder: Path, doc: dict[str, Any], name: str, net: torch.nn.Module, epochs: int) -> None:
-    """Record a finished fit: its weights as ``checkpoints/<name>.safetensors`` (no pickle) with their sha256, and its epochs (first process only)."""
+    """Record a finished fit: its weights as ``checkpoints/<name>.safetensors`` (no pickle) with their sha256, and its epochs; remove its last-epoch checkpoint (first process only)."""
     from safetensors.torch import save_file
 
     if rank() != 0:
@@ -476,6 +476,8 @@ def finish(folder: Path, doc: dict[str, Any], name: str, net: torch.nn.Module, e
     os.replace(tmp, path)
     doc["finished"][name] = {"epochs": int(epochs), "sha256": hashlib.sha256(path.read_bytes()).hexdigest()}
     _write_resume(folder, doc)
+    # Recorded finished, the fit resumes from its safetensors; the last-epoch checkpoint served resuming only.
+    last_checkpoint(folder, name).unlink(missing_ok=True)
 
 
 def load_finished(folder: Path, doc: dict[str, Any], name: str, net: torch.nn.Module) -> int:

@@ -110,6 +110,8 @@ class Workspace:
     #: Keys every map command of the cases passes (window, engine), so runs compare with ``clean_map``.
     map_keys: tuple[str, ...] = ()
     threads: int = 1
+    #: Peak-memory budget the resource cases give and judge against, MB (the benchmark's ``memory_budget_mb``).
+    memory_budget_mb: int = 2048
 
     def env(self) -> dict[str, str]:
         env = dict(os.environ)
@@ -200,7 +202,7 @@ def build_workspace(cfg: FaultsConfig, project: Path) -> Workspace:
     region = root / "region.yaml"
     src = (project / "configs" / "region" / "toy.yaml").read_text()
     region.write_text(src.replace("../../toy_tiles", str(tiles)))
-    ws = Workspace(root=root, region=region, tiles=tiles, model=root / "runs" / "quick", clean_map=root / "clean_map", map_keys=tuple(cfg.map_keys))
+    ws = Workspace(root=root, region=region, tiles=tiles, model=root / "runs" / "quick", clean_map=root / "clean_map", map_keys=tuple(cfg.map_keys), memory_budget_mb=cfg.memory_budget_mb)
     if not (ws.model / "model" / "model.json").is_file():
         r = ws.cli("train", f"region={region}", f"out_dir={root / 'runs'}", "run_name=quick", *cfg.train_keys, timeout=3600)
         if r.returncode:

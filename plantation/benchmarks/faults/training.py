@@ -21,7 +21,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from plantation.benchmarks.faults import Case, FaultsConfig, Outcome, Ran, Workspace
+from plantation.benchmarks.faults import Case, Outcome, Ran, Workspace
 from plantation.benchmarks.faults.models import MARKER, pickle_payload, refusal
 from plantation.model import artefact
 
@@ -202,7 +202,7 @@ def ddp_threads_and_memory(ws: Workspace, scratch: Path) -> Outcome:
     summed, which one machine must hold when it runs them all) is reported
     beside it as ``tree_rss_mb``, not as ``peak_rss_mb``.
     """
-    budget = FaultsConfig().memory_budget_mb
+    budget = ws.memory_budget_mb
     runs = scratch / "runs"
     keys = [f"region={ws.region}", f"out_dir={runs}", "run_name=ddp", "trainer=ddp_cpu", "network.members=1", "training.max_epochs=1", *QUICK[2:]]
     m = run_measured(ws, "train", *keys, log=scratch / "ddp.log")
@@ -224,7 +224,7 @@ def ddp_threads_and_memory(ws: Workspace, scratch: Path) -> Outcome:
 
 def peak_rss(ws: Workspace, scratch: Path) -> Outcome:
     """A quick training with the full pipeline (distillation, the bbse prior from the region's pixels) within the memory budget."""
-    budget = FaultsConfig().memory_budget_mb
+    budget = ws.memory_budget_mb
     runs = scratch / "runs"
     keys = [f"region={ws.region}", f"out_dir={runs}", "run_name=mem", "network.members=2", "training.max_epochs=2", "distillation.max_epochs=2", "trainer.enable_progress_bar=false"]
     m = run_measured(ws, "train", *keys, log=scratch / "train.log")
