@@ -12,12 +12,14 @@ reached the user, whether a planted pickle ran.
 Cases live in the modules of this package by the part of the tool they try
 (:mod:`.mapping`, :mod:`.inputs`, :mod:`.models`, :mod:`.training`); each
 module exposes ``CASES``. :func:`run` builds the workspace once, runs every
-case (or those named) and writes ``bench/results/faults.json``.
+case (or those named, whose rows then replace theirs in the earlier result)
+and writes ``bench/results/faults.json``.
 """
 
 from __future__ import annotations
 
 import importlib
+import json
 import os
 import shutil
 import subprocess
@@ -232,9 +234,28 @@ def run(cfg: FaultsConfig, project: Path | None = None) -> dict[str, Any]:
             out = Outcome(held=False, message=f"the case itself failed: {type(exc).__name__}: {exc}")
         rows.append({"name": case.name, "kind": case.kind, "what": case.what, **asdict(out), "seconds": round(time.perf_counter() - began, 1)})
         print(f"{'held ' if out.held else 'FAILED'} {case.kind:<10} {case.name}: {out.message}", flush=True)
-    result = summarise(rows, cfg)
+    if cfg.cases:
+        rows = with_earlier_rows(rows, cfg.result, [c.name for c in all_cases()])
+    result = relative_paths(summarise(rows, cfg), project)
     write_object(result, cfg.result)
     return result
+
+
+def with_earlier_rows(rows: list[dict[str, Any]], result: str | Path, order: Sequence[str]) -> list[dict[str, Any]]:
+    """``rows`` of the cases just run together with the other cases' rows of an earlier ``result`` (when there is one), in ``order``.
+
+    So a case rerun after a fix updates its row and the counts, and the
+    result still covers every case; rows of cases no longer known are dropped.
+    """
+    path = Path(result)
+    earlier = json.loads(path.read_text())["cases"] if path.is_file() else []
+    by_name = {r["name"]: r for r in earlier} | {r["name"]: r for r in rows}
+    return [by_name[n] for n in order if n in by_name]
+
+
+def relative_paths(result: dict[str, Any], project: Path) -> dict[str, Any]:
+    """``result`` with the project's folder cut from every path in it, so messages name files as they stand in the project."""
+    return json.loads(json.dumps(result).replace(json.dumps(str(project) + os.sep)[1:-1], ""))
 
 
 def summarise(rows: list[dict[str, Any]], cfg: FaultsConfig) -> dict[str, Any]:

@@ -33,8 +33,9 @@ from plantation.model.card import resolve_model
 
 #: The tight case's budget as a share of the same run's peak without a budget: below what the run takes, so the budget must bind.
 TIGHT_SHARE = 0.85
-#: GDAL's block cache in the tight case, MB: counted in full by the budget, so a small one leaves the windows room on any machine.
-TIGHT_GDAL_CACHE_MB = 32
+#: GDAL's block cache in the budget cases, MB: counted in full by the budget in every process, so a small one leaves the windows room
+#: (the demo's tiles are small; a cache of 256 MB in each of three processes would be most of a 2 GB budget).
+SMALL_GDAL_CACHE_MB = 32
 #: Seconds a case waits for a run to reach the point where it is killed.
 REACH_TIMEOUT = 600
 
@@ -450,8 +451,8 @@ def _budget_case(ws: Workspace, scratch: Path, *, budget: int | None, engine: tu
     clean = clean_map(ws, scratch)
     out = scratch / "map"
     unbounded = None
+    engine = (*engine, f"engine.gdal_cache_mb={SMALL_GDAL_CACHE_MB}")
     if budget is None:
-        engine = (*engine, f"engine.gdal_cache_mb={TIGHT_GDAL_CACHE_MB}")
         free = ws.start("map", *_keys(ws, scratch / "unbounded", *engine), log=scratch / "unbounded.log")
         unbounded = round(peak_tree_rss(free), 1)
         if free.returncode:
