@@ -16,6 +16,7 @@ from plantation.benchmarks.readme import (
     demo_plots_block,
     demo_plots_truth_block,
     demo_timing_block,
+    faults_block,
     labels_block,
     mapping_speed_block,
     markdown_table,
@@ -27,7 +28,19 @@ from plantation.benchmarks.readme import (
 from plantation.errors import PlantationError
 from plantation.imagery.config import RegionConfig
 
-NAMES = ("demo-assessment", "demo-plots", "demo-plots-truth", "read-memory", "read-products", "mapping-speed", "demo-timing", "accuracy-benchmark", "network-ablation", "labels-benchmark")
+NAMES = (
+    "demo-assessment",
+    "demo-plots",
+    "demo-plots-truth",
+    "read-memory",
+    "read-products",
+    "mapping-speed",
+    "demo-timing",
+    "accuracy-benchmark",
+    "network-ablation",
+    "labels-benchmark",
+    "faults-benchmark",
+)
 
 
 def est(estimate: float, lo: float, hi: float, **extra: float) -> dict[str, float]:
@@ -416,3 +429,30 @@ def test_read_products_block_gives_both_readers_and_the_ratio_against_its_target
     assert line_of(body, "pre-stacked") == "| pre-stacked GeoTIFFs (one multi-band file per date) | 0.96 M | 513 MB |"
     assert row(body, "products ÷ stacked") == "| products ÷ stacked | 0.88 (repeats 0.80, 0.88, 0.85; target ≥ 0.8: met) | |"
     assert "| 512² px × 60 dates × 6 bands, 128² windows |" in body
+
+
+def test_faults_block_counts_against_the_targets_and_names_a_case_that_did_not_hold():
+    def case(name: str, kind: str, held: bool = True) -> dict:
+        return {"name": name, "kind": kind, "held": held}
+
+    doc = {
+        "cases_tried": 31,
+        "cases_held": 30,
+        "kills_survived": 1,
+        "kills_tried": 2,
+        "bad_inputs_refused": 28,
+        "bad_inputs_tried": 28,
+        "outputs_corrupt": 0,
+        "user_error_tracebacks": 0,
+        "pickles_executed": 0,
+        "resume_metric_delta": 0.0,
+        "peak_rss_mb": 1711.26,
+        "memory_budget_mb": 2048,
+        "cases": [case("k1", "kill"), case("k2", "kill", held=False), *(case(f"b{i}", "bad_input") for i in range(28)), case("r", "resource")],
+    }
+    body = faults_block(doc, source="f.json")
+    assert row(body, "named cases held") == "| named cases held | 30 of 31 (target: at least 30, all held: missed) |"
+    assert row(body, "outputs corrupt") == "| outputs corrupt | 0 (target 0: met) |"
+    assert row(body, "largest peak RSS of a case") == "| largest peak RSS of a case | 1,711 MB (budget 2,048 MB: met) |"
+    assert row(body, "killed and rerun") == "| killed and rerun | 2 | `k1`, `k2` (**did not hold**) |"
+    assert "untrusted model files" not in body  # a kind with no case is left out
