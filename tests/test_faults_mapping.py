@@ -40,7 +40,7 @@ CORES = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (o
 
 def test_a_second_lock_on_a_folder_is_refused_naming_it_and_released_with_the_file(tmp_path):
     first = FolderLock(tmp_path).acquire()
-    with pytest.raises(FolderBusyError, match=rf"^out_dir: {tmp_path} is in use: another mapping run \(pid {os.getpid()} on .*\) holds it; wait"):
+    with pytest.raises(FolderBusyError, match=rf"^out_dir: {tmp_path} is in use: another run \(plantation map, pid {os.getpid()} on .*\) holds it; wait"):
         FolderLock(tmp_path).acquire()
     first.release()
     assert not (tmp_path / LOCK_NAME).exists()

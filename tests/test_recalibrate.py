@@ -296,7 +296,7 @@ def test_a_folder_another_run_holds_is_refused_in_one_line_and_left_as_it_was(la
     before = snapshot(map_dir)
     # Held as a mapping run holds its out_dir: correcting that map in place is refused, nothing of it changes.
     with FolderLock(map_dir):
-        with pytest.raises(FolderBusyError, match=rf"^out_dir: {map_dir} is in use: another run \(pid \d+ on .*\) holds it; wait for that run to end, then recalibrate$") as info:
+        with pytest.raises(FolderBusyError, match=rf"^out_dir: {map_dir} is in use: another run \(plantation map, pid \d+ on .*\) holds it; wait for that run to end, then recalibrate$") as info:
             run(RecalibrateConfig(map=str(map_dir), samples=str(sheet)), echo=lambda *_: None)
         assert "\n" not in str(info.value)
         assert {k: v for k, v in snapshot(map_dir).items() if k != LOCK_NAME} == before

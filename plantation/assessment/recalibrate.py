@@ -287,7 +287,7 @@ def write_corrected(mapped: MappedRegion, out: Path, correction: dict[str, Any],
     """
     created = not out.exists()
     out.mkdir(parents=True, exist_ok=True)
-    lock = FolderLock(out)
+    lock = FolderLock(out, verb="recalibrate")
     try:
         lock.acquire()
     except FolderBusyError:

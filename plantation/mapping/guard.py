@@ -98,8 +98,10 @@ class FolderLock:
     (Python opens files non-inheritable).
     """
 
-    def __init__(self, folder: Path) -> None:
+    def __init__(self, folder: Path, verb: str = "map") -> None:
         self.folder = folder
+        #: The command holding the lock, as the holder line names it (a second run sees who holds the folder).
+        self.verb = verb
         self.path = folder / LOCK_NAME
         self._fd: int | None = None
 
@@ -131,7 +133,7 @@ class FolderLock:
             except OSError as exc:
                 os.close(fd)
                 if exc.errno in (errno.EWOULDBLOCK, errno.EAGAIN, errno.EACCES):
-                    raise FolderBusyError(f"out_dir: {self.folder} is in use: another mapping run ({self.holder()}) holds it; wait for that run to end, or map into another out_dir") from None
+                    raise FolderBusyError(f"out_dir: {self.folder} is in use: another run ({self.holder()}) holds it; wait for that run to end, or map into another out_dir") from None
                 raise OutputFolderError(f"out_dir: {self.folder}: cannot lock it ({exc.strerror or exc}); choose an out_dir on a file system with locks") from None
             try:
                 same = os.stat(self.path).st_ino == os.fstat(fd).st_ino
@@ -141,7 +143,7 @@ class FolderLock:
                 break
             os.close(fd)  # the holder removed the file between our open and our lock: try the new one
         os.ftruncate(fd, 0)
-        os.write(fd, f"pid {os.getpid()} on {socket.gethostname()}, since {time.strftime('%Y-%m-%dT%H:%M:%S%z')}\n".encode())
+        os.write(fd, f"plantation {self.verb}, pid {os.getpid()} on {socket.gethostname()}, since {time.strftime('%Y-%m-%dT%H:%M:%S%z')}\n".encode())
         self._fd = fd
         return self
 

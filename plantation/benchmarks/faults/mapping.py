@@ -289,7 +289,7 @@ def two_runs_one_folder(ws: Workspace, scratch: Path) -> Outcome:
     second = ws.cli("map", *keys)
     rc = first.wait(timeout=REACH_TIMEOUT)
     corrupt, notes = compare(out, clean) if rc == 0 else (0, [f"the first run failed (exit {rc})"])
-    names_folder = str(out) in second.last_line and "another mapping run" in second.last_line
+    names_folder = str(out) in second.last_line and "another run (plantation map, pid" in second.last_line
     held = second.refused_in_one_line() and names_folder and rc == 0 and not corrupt and not notes
     detail = {"second_exit": second.returncode, "second_seconds": round(second.seconds, 1), "first_exit": rc}
     msg = second.last_line if held else "; ".join([f"second run: exit {second.returncode}, {second.last_line!r}", *notes])
