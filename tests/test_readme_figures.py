@@ -456,3 +456,20 @@ def test_faults_block_counts_against_the_targets_and_names_a_case_that_did_not_h
     assert row(body, "largest peak RSS of a case") == "| largest peak RSS of a case | 1,711 MB (budget 2,048 MB: met) |"
     assert row(body, "killed and rerun") == "| killed and rerun | 2 | `k1`, `k2` (**did not hold**) |"
     assert "untrusted model files" not in body  # a kind with no case is left out
+
+
+def test_faults_block_shows_what_each_memory_budget_lowered_against_the_peak_without_it():
+    budget_case = {
+        "name": "train_memory_budget",
+        "kind": "resource",
+        "held": True,
+        "detail": {"peak_rss_mb": 1667.3, "budget_mb": 2048, "peak_rss_without_budget_mb": 3044.8, "asked_inference_batch": 4096, "plan": {"inference_batch": 512}},
+    }
+    counts = dict.fromkeys(("kills_survived", "kills_tried", "bad_inputs_refused", "bad_inputs_tried", "outputs_corrupt", "user_error_tracebacks", "pickles_executed"), 0)
+    doc = {"cases_tried": 1, "cases_held": 1, **counts, "resume_metric_delta": None, "peak_rss_mb": 1667.3, "memory_budget_mb": 2048, "cases": [budget_case]}
+    body = faults_block(doc, source="f.json")
+    assert (
+        row(body, "training asking for an inference batch of 4,096: peak RSS with the budget (without)")
+        == "| training asking for an inference batch of 4,096: peak RSS with the budget (without) | 1,667 MB against 2,048 MB (3,045 MB), inference batch 512: met |"
+    )
+    assert "mapping, a budget below" not in body  # a case not run is left out

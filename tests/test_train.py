@@ -53,11 +53,17 @@ def test_generalised_cross_entropy_value():
         ({"date_dropout": 1.0}, "training.date_dropout"),
         ({"max_epochs": 0}, "training.max_epochs: 0 must be at least 1"),
         ({"class_weighting": "balanced"}, "training.class_weighting"),
+        ({"inference_batch": 0}, "training.inference_batch: 0 must be at least 1"),
     ],
 )
 def test_bad_training_values_are_refused(change, message):
     with pytest.raises(ConfigError, match=message):
         check_config(TrainConfig(training=TrainingConfig(**change)))
+
+
+def test_a_memory_budget_below_one_mb_is_refused():
+    with pytest.raises(ConfigError, match=r"^memory_budget_mb: 0 must be at least 1, or null for no budget$"):
+        check_config(TrainConfig(memory_budget_mb=0))
 
 
 @pytest.mark.slow
@@ -152,6 +158,8 @@ def test_ddp_on_two_cpu_processes_trains_and_exports(tmp_path):
         (["region.tiles.1.path=no/such/folder"], "no/such/folder: tile 't02' folder does not exist"),
         (["training.loss=focal"], "training.loss: 'focal' is not one of"),
         (["+network.width=3"], "width"),
+        # The budget is checked once the samples are cut, before the run folder is made.
+        (["memory_budget_mb=600"], "memory_budget_mb: 600 MB is less than this training needs with an inference batch of 64"),
     ],
 )
 def test_train_bad_input_one_line_error_nothing_written(tmp_path, overrides, message):

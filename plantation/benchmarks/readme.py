@@ -650,6 +650,22 @@ def faults_block(doc: dict[str, Any], *, source: str) -> str:
         ["`resume_metric_delta` (resumed training against uninterrupted, same seed)", "not measured" if delta is None else f"{delta:g} (tolerance 0.0 on one process)"],
         ["largest peak RSS of a case", "not measured" if peak is None else f"{_fmt(peak, ',.0f')} MB (budget {budget:,} MB: {_met(peak <= budget)})"],
     ]
+    # How each budget was met: what it lowered, and the same run's peak without it.
+    for name, what, knob in (
+        ("map_memory_budget", "mapping, a budget below the unbounded peak", "window {window}, pixel_batch {pixel_batch}"),
+        ("train_memory_budget", "training asking for an inference batch of {asked_inference_batch:,}", "inference batch {inference_batch}"),
+    ):
+        case = next((c for c in doc["cases"] if c["name"] == name), None)
+        d = (case or {}).get("detail") or {}
+        if case is None or d.get("peak_rss_mb") is None or d.get("peak_rss_without_budget_mb") is None:
+            continue
+        fields = {**d, **(d.get("plan") or {})}
+        rows.append(
+            [
+                f"{what.format(**fields)}: peak RSS with the budget (without)",
+                f"{_fmt(d['peak_rss_mb'], ',.0f')} MB against {d['budget_mb']:,} MB ({_fmt(d['peak_rss_without_budget_mb'], ',.0f')} MB), {knob.format(**fields)}: {_met(case['held'])}",
+            ]
+        )
     cases_rows = []
     for kind, what in FAULT_KINDS.items():
         of = [c for c in doc["cases"] if c["kind"] == kind]

@@ -29,6 +29,7 @@ from plantation.mapping.workers import TorchThreads, limit_torch_threads
 from plantation.model.artefact import Artefact, load
 from plantation.model.card import resolve_model
 from plantation.model.inference import check_compatible
+from plantation.model.memory import F32, recurrent_bytes, sample_bytes, series_bytes
 
 log = logging.getLogger(__name__)
 
@@ -150,8 +151,6 @@ def _threads_per_worker(cfg: MapConfig, workers: int) -> int:
     return max(1, _cores() // max(workers, 1))
 
 
-#: Bytes of a float32.
-F32 = 4
 #: Resident memory of a dask nanny process (it watches and restarts its worker), MB; measured, counted per worker in a budget.
 NANNY_MB = 100
 #: What a mapping process takes on after planning besides its windows (GDAL's drivers and the COG writer loaded, a tile's outputs,
@@ -165,26 +164,19 @@ def window_bytes(window: int, pixel_batch: int, *, halo: int, dates: int, channe
     With ``side = window + 2·halo``: the reader keeps two windows ahead and
     the network holds one, each ``dates × side² × (4·channels + 1)`` bytes
     (float32 features, a validity byte), plus one read in progress (the
-    same again); the network's per-date work holds about three copies of
-    the normalised features and four of the date embeddings, ``dates ×
-    side² × (3·channels + 4·date_width) × 4`` bytes; the yearly summaries and
-    context features ``years × side² × 2·(2·date_width + 2·channels + 1 +
-    conv_width) × 4``; the recurrent part ``pixel_batch × years × 12·hidden
-    × 4`` (embedding, both GRU directions with their gates, the year head);
+    same again); the network's work over ``side²`` pixels
+    (:func:`plantation.model.memory.series_bytes`); the recurrent part over
+    ``pixel_batch`` pixels per network (:func:`plantation.model.memory.recurrent_bytes`);
     the outputs ``window² × (years + 3) × 4 × (networks + 2)``. A rule of
     thumb checked by the resource case of the faults benchmark, not a count
     of every allocation.
     """
     side2 = (window + 2 * halo) ** 2
-    d = int(network.get("date_width", 16))
-    conv = int(network.get("conv_width", 32))
-    hidden = int(network.get("hidden", 64))
-    inputs = 4 * dates * side2 * (F32 * channels + 1)
-    per_date = dates * side2 * (3 * channels + 4 * d) * F32
-    yearly = years * side2 * 2 * (2 * d + 2 * channels + 1 + conv) * F32
-    recurrent = pixel_batch * years * 12 * hidden * F32 * networks
+    inputs = 4 * sample_bytes(dates=dates, channels=channels, pixels=side2)
+    network_work = series_bytes(pixels=side2, dates=dates, channels=channels, years=years, network=network)
+    recurrent = recurrent_bytes(pixels=pixel_batch, years=years, network=network) * networks
     outputs = window**2 * (years + 3) * F32 * (networks + 2)
-    return int(inputs + per_date + yearly + recurrent + outputs)
+    return int(inputs + network_work + recurrent + outputs)
 
 
 @dataclass(frozen=True)

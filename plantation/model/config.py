@@ -56,6 +56,8 @@ class TrainingConfig:
     augment: bool = True
     date_dropout: float = 0.1
     threads: int = 0
+    #: Pixels through the networks at once outside optimiser steps (lowered to fit ``memory_budget_mb`` when set).
+    inference_batch: int = 512
 
 
 @dataclass

@@ -61,6 +61,7 @@ from plantation.model.card import Calibration, ModelCard, write_validation
 from plantation.model.config import CalibrationConfig, DistillationConfig, NetworkConfig, PatchConfig, SplitConfig, SurrogateConfig, TrainerConfig, TrainingConfig
 from plantation.model.distillation import DistillationTask, agreement
 from plantation.model.losses import per_sample_loss
+from plantation.model.memory import TrainingBudget, fit_training_budget
 from plantation.model.network import ConvRecurrentNet
 from plantation.model.outcomes import MASS_GRID, N_STATIC, Outcomes, group_probabilities, interval_coverage_curve, summarise
 from plantation.model.patches import SPLITS, PatchSet, build_patches, day_of_year_fraction, features, read_patches, windows_touch, year_of
@@ -95,6 +96,8 @@ class TrainConfig:
     run_name: str = "run"
     #: Continue an interrupted run of the same name and inputs (see :func:`prepare_resume`); false: start afresh.
     resume: bool = True
+    #: Peak resident memory of a training process, MB (None: no budget); see :func:`plantation.model.memory.fit_training_budget`.
+    memory_budget_mb: int | None = None
 
 
 def check_config(cfg: TrainConfig) -> None:
@@ -116,6 +119,7 @@ def check_config(cfg: TrainConfig) -> None:
     for key, val in (
         ("training.max_epochs", t.max_epochs),
         ("training.batch_size", t.batch_size),
+        ("training.inference_batch", t.inference_batch),
         ("network.members", cfg.network.members),
         ("network.hidden", cfg.network.hidden),
         ("network.date_width", cfg.network.date_width),
@@ -132,6 +136,8 @@ def check_config(cfg: TrainConfig) -> None:
         raise ConfigError(f"calibration.conformal_alpha: {a!r} must be in (0, 1) or null")
     check_labels_config(cfg.region.labels)
     resolve_prior(cfg.calibration, cfg.region.labels)
+    if cfg.memory_budget_mb is not None and cfg.memory_budget_mb < 1:
+        raise ConfigError(f"memory_budget_mb: {cfg.memory_budget_mb!r} must be at least 1, or null for no budget")
     if cfg.calibration.bbse_pixels < 1:
         raise ConfigError(f"calibration.bbse_pixels: {cfg.calibration.bbse_pixels!r} must be at least 1")
 
@@ -245,10 +251,10 @@ class SampleDataModule(L.LightningDataModule):
     worker process per loader costs more than it saves for a model this small.
     """
 
-    def __init__(self, train: PatchSet, val: PatchSet, batch_size: int) -> None:
+    def __init__(self, train: PatchSet, val: PatchSet, batch_size: int, val_batch: int = 256) -> None:
         super().__init__()
         self.train, self.val = train, val
-        self.batch_size = batch_size
+        self.batch_size, self.val_batch = batch_size, val_batch
 
     @staticmethod
     def tensors(s: PatchSet) -> TensorDataset:
@@ -258,7 +264,7 @@ class SampleDataModule(L.LightningDataModule):
         return DataLoader(self.tensors(self.train), batch_size=self.batch_size, shuffle=True, drop_last=True)
 
     def val_dataloader(self) -> DataLoader:
-        return DataLoader(self.tensors(self.val), batch_size=256)
+        return DataLoader(self.tensors(self.val), batch_size=self.val_batch)
 
 
 def network_spec(samples: PatchSet, cfg: TrainConfig) -> dict[str, Any]:
@@ -367,7 +373,7 @@ RESUME = "resume.json"
 RESUME_FORMAT = "plantation-resume/1"
 #: Keys that do not change what a training computes: a rerun that changes only these may resume (other
 #: threads may change the last bits of some float sums, so such a resume is not promised bit-identical).
-NOT_CONTENT: tuple[str, ...] = ("out_dir", "run_name", "resume", "trainer.enable_progress_bar", "trainer.log_every_n_steps", "training.threads")
+NOT_CONTENT: tuple[str, ...] = ("out_dir", "run_name", "resume", "trainer.enable_progress_bar", "trainer.log_every_n_steps", "training.threads", "training.inference_batch", "memory_budget_mb")
 
 
 def rank() -> int:
@@ -549,6 +555,34 @@ class Start:
     distilled: dict[str, torch.Tensor] | None = None
 
 
+def training_budget(cfg: TrainConfig, samples: PatchSet) -> TrainingBudget | None:
+    """The inference batch that keeps this process within ``cfg.memory_budget_mb`` (None without a budget), measured from the process as it is now, samples cut.
+
+    Raises:
+        ConfigError: the budget cannot hold the run (see :func:`plantation.model.memory.fit_training_budget`).
+    """
+    if cfg.memory_budget_mb is None:
+        return None
+    import psutil
+
+    distilling = cfg.distillation.enabled and cfg.network.members > 1
+    plan = fit_training_budget(
+        cfg.memory_budget_mb,
+        process_mb=psutil.Process().memory_info().rss / 2**20,
+        dates=int(samples.x.shape[1]),
+        channels=int(samples.x.shape[2]),
+        years=len(np.unique(year_of(samples.dates))),
+        neighbourhood=cfg.patches.neighbourhood,
+        network=asdict(cfg.network),
+        batch_size=cfg.training.batch_size,
+        distil_batch=max(cfg.training.batch_size, 128) if distilling else 0,
+        held_pixels=cfg.distillation.pixels if distilling else 0,
+        inference_batch=cfg.training.inference_batch,
+    )
+    log.info("memory budget %s MB: inference batch %d (estimated peak %.0f MB, %.0f MB of it the process with its samples)", cfg.memory_budget_mb, plan.inference_batch, plan.need_mb, plan.process_mb)
+    return plan
+
+
 def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[TileStack] = (), labels: LabelSet | None = None, start: Start | None = None) -> TrainedModel:
     """Train the ensemble on ``samples`` (split already assigned) and calibrate it.
 
@@ -581,6 +615,7 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
     began = time.perf_counter()
     is_zero = rank() == 0
     doc = prepare_resume(folder, resume_key(cfg, samples, start), resume=cfg.resume)
+    infer = cfg.training.inference_batch
     # What an interrupted run left and this one took up: "finished", or the epochs of the checkpoint continued from.
     resumed: dict[str, int | str] = {}
     for m in range(cfg.network.members):
@@ -620,7 +655,7 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
             warnings.filterwarnings("ignore", message=".*treespec, LeafSpec.*")
             # Members share one checkpoint folder, each with its own file name.
             warnings.filterwarnings("ignore", message=".*exists and is not empty.*")
-            trainer.fit(task, SampleDataModule(train, val, cfg.training.batch_size), ckpt_path=last[0] if last else None, weights_only=True)
+            trainer.fit(task, SampleDataModule(train, val, cfg.training.batch_size, min(256, infer)), ckpt_path=last[0] if last else None, weights_only=True)
         is_zero = trainer.is_global_zero
         best = trainer.checkpoint_callback.best_model_path if trainer.checkpoint_callback else ""
         if best and Path(best).is_file():
@@ -636,7 +671,7 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
     prior = np.bincount(train.target[trusted] if trusted.any() else train.target, minlength=n_out).astype(np.float64)
     prior = np.maximum(prior, 0.5) / np.maximum(prior, 0.5).sum()
     cal = Calibration(temperature=1.0, loss_weights=weights.tolist(), train_prior=prior.tolist())
-    val_logits = member_logits(nets, val)
+    val_logits = member_logits(nets, val, infer)
     uncal = calibrated_log_probs(val_logits, cal).numpy()
     cal.temperature = calibration.fit_temperature(uncal, val.target)
     val_lp = calibrated_log_probs(val_logits, cal).numpy()
@@ -653,7 +688,7 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
     }
     test = samples.part("test")
     if len(test):
-        metrics["test"] = score_samples(nets, cal, test, cfg.calibration)
+        metrics["test"] = score_samples(nets, cal, test, cfg.calibration, batch=infer)
     held, held_name = (test, "test") if len(test) else (val, "val")
     # The metrics above are of the sample-mix probabilities on stratified points; the card's prior applies from here on.
     source = resolve_prior(cfg.calibration, cfg.region.labels)
@@ -677,7 +712,7 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
     cal.interval_masses, cal.interval_coverage = interval_curve(np.exp(calibrated_log_probs(val_logits, cal).numpy()), val.target, samples.outcomes)
     metrics["interval_mass"] = {"nominal": cfg.calibration.interval_level, "mass": cal.interval_mass(cfg.calibration.interval_level)}
     # Reliability of the sample-mix probabilities on the stratified held-out points, with the intervals the maps will carry.
-    metrics["validation"] = reliability_record(nets, replace(cal, target_prior=[]), held, held_name, cfg.calibration)
+    metrics["validation"] = reliability_record(nets, replace(cal, target_prior=[]), held, held_name, cfg.calibration, batch=infer)
     record = {
         **cal.correction(),
         "target_prior": [round(v, 6) for v in cal.target_prior],
@@ -735,7 +770,7 @@ def target_prior(
     if source == "bbse":
         if not stacks:
             raise ConfigError("calibration.prior: 'bbse' needs the region's tiles to draw unlabelled pixels from")
-        pixels = unlabelled_probs(nets, cal, stacks, cfg, n=cfg.calibration.bbse_pixels, seed=cfg.training.seed)
+        pixels = unlabelled_probs(nets, cal, stacks, cfg, n=cfg.calibration.bbse_pixels, seed=cfg.training.seed, chunk=cfg.training.inference_batch)
         return calibration.bbse_prior(val_probs, samples.part("val").target, pixels, train_prior, groups=calibration.outcome_groups(k))
     raise ConfigError(f"calibration.prior: {source!r} is not one of {list(PRIORS)}")
 
@@ -795,7 +830,7 @@ def distil(
     # The parts side by side rather than concatenated: the same items in the same order, without a copy of them all.
     parts = [TensorDataset(torch.from_numpy(train.x), torch.from_numpy(train.valid))]
     if stacks and dc.pixels > 0:
-        for x, v in unlabelled_patches(stacks, cfg, n=dc.pixels, seed=cfg.training.seed + 7919):
+        for x, v in unlabelled_patches(stacks, cfg, n=dc.pixels, seed=cfg.training.seed + 7919, chunk=cfg.training.inference_batch):
             parts.append(TensorDataset(torch.from_numpy(x), torch.from_numpy(v)))
     data = ConcatDataset(parts)
     held = TensorDataset(torch.from_numpy(val.x), torch.from_numpy(val.valid))
@@ -815,7 +850,7 @@ def distil(
             warnings.filterwarnings("ignore", message=".*treespec, LeafSpec.*")
             warnings.filterwarnings("ignore", message=".*exists and is not empty.*")
             data_loader = DataLoader(data, batch_size=max(cfg.training.batch_size, 128), shuffle=True, drop_last=True)
-            trainer.fit(task, data_loader, DataLoader(held, batch_size=256), ckpt_path=last_path, weights_only=True)
+            trainer.fit(task, data_loader, DataLoader(held, batch_size=min(256, cfg.training.inference_batch)), ckpt_path=last_path, weights_only=True)
         best = trainer.checkpoint_callback.best_model_path if trainer.checkpoint_callback else ""
         if best and Path(best).is_file():
             task.load_state_dict(torch.load(best, map_location="cpu", weights_only=True)["state_dict"])
@@ -828,15 +863,15 @@ def distil(
         "epochs": n_epochs,
         "seconds": round(time.perf_counter() - began, 1),
         "tolerance": {"mean_tv_distance": dc.tolerance},
-        "validation": agreement(nets, net, cal, torch.from_numpy(val.x), torch.from_numpy(val.valid)),
+        "validation": agreement(nets, net, cal, torch.from_numpy(val.x), torch.from_numpy(val.valid), batch=cfg.training.inference_batch),
     }
     record["within_tolerance"] = record["validation"]["mean_tv_distance"] <= dc.tolerance
     return (net if record["within_tolerance"] else None), record
 
 
-def score_samples(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchSet, cc: CalibrationConfig) -> dict[str, Any]:
-    """Label-sample metrics (the sample is stratified, so these are not map accuracies)."""
-    probs = np.exp(calibrated_log_probs(member_logits(nets, s), cal).numpy())
+def score_samples(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchSet, cc: CalibrationConfig, *, batch: int = 512) -> dict[str, Any]:
+    """Label-sample metrics (the sample is stratified, so these are not map accuracies); ``batch``: samples through the networks at once."""
+    probs = np.exp(calibrated_log_probs(member_logits(nets, s, batch), cal).numpy())
     years = s.outcomes.years
     summ = summarise(probs, years, cutoff_year=cc.cutoff_year, level=cc.interval_level)
     true_label = s.outcomes.label_code(s.target)
@@ -863,7 +898,7 @@ def score_samples(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchSet, c
 COVERAGE_LEVELS = (0.5, 0.8, 0.9, 0.95)
 
 
-def reliability_record(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchSet, split: str, cc: CalibrationConfig, n_bins: int = 10) -> dict[str, Any]:
+def reliability_record(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchSet, split: str, cc: CalibrationConfig, n_bins: int = 10, *, batch: int = 512) -> dict[str, Any]:
     """How well the calibrated probabilities and intervals hold on held-out points (for the report).
 
     ``reliability``: per equal-width bin of p_conversion, the mean predicted
@@ -878,7 +913,7 @@ def reliability_record(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchS
     curve was not fitted on. The sample is the stratified
     label sample, so these are not map accuracies.
     """
-    probs = np.exp(calibrated_log_probs(member_logits(nets, s), cal).numpy())
+    probs = np.exp(calibrated_log_probs(member_logits(nets, s, batch), cal).numpy())
     years = s.outcomes.years
     true_label = s.outcomes.label_code(s.target)
     true_year = s.outcomes.onset_year(s.target)
@@ -1043,6 +1078,10 @@ def run(
     check_config(cfg)
     threads = set_threads(cfg)
     stacks, labels, samples = loaded if loaded is not None else load_region_samples(cfg, inherit=inherit)
+    # Before the run folder: a budget too small is refused with nothing written.
+    budget = training_budget(cfg, samples)
+    if budget is not None:
+        cfg = replace(cfg, training=replace(cfg.training, inference_batch=budget.inference_batch))
     final = Path(cfg.out_dir) / cfg.run_name
     work = final.with_name(final.name + ".partial")
     # Processes started by DDP re-run this script (LOCAL_RANK / NODE_RANK > 0):
@@ -1059,6 +1098,8 @@ def run(
     if after_fit is not None:
         record.update(after_fit(samples, trained))
     # What each process was given, so a run on a shared machine can be checked for oversubscription.
+    if budget is not None:
+        trained.metrics["memory_budget"] = {**{k: round(v, 1) if isinstance(v, float) else v for k, v in asdict(budget).items()}, "need_mb": round(budget.need_mb, 1)}
     trained.metrics["threads"] = {"torch_per_process": threads or torch.get_num_threads(), "processes_per_machine": cfg.trainer.devices, "usable_cores": usable_cores()}
     split_counts = {name: int((samples.split == i).sum()) for i, name in enumerate(SPLITS)}
     split_counts["dropped_buffer"] = int((samples.split == -1).sum())

@@ -222,18 +222,60 @@ def ddp_threads_and_memory(ws: Workspace, scratch: Path) -> Outcome:
     )
 
 
+#: Keys of the memory cases' training: the full pipeline (distillation, the bbse prior from the region's pixels), few epochs.
+MEMORY_RUN: tuple[str, ...] = ("network.members=2", "training.max_epochs=2", "distillation.max_epochs=2", "trainer.enable_progress_bar=false")
+#: An inference batch far larger than the default, so that without a budget the run would outgrow it.
+LARGE_INFERENCE_BATCH = 4096
+
+
+def _budget_record(run: Path) -> dict[str, Any]:
+    metrics = run / "metrics.json"
+    return json.loads(metrics.read_text()).get("memory_budget", {}) if metrics.is_file() else {}
+
+
 def peak_rss(ws: Workspace, scratch: Path) -> Outcome:
-    """A quick training with the full pipeline (distillation, the bbse prior from the region's pixels) within the memory budget."""
+    """A quick training with the full pipeline (distillation, the bbse prior from the region's pixels) given the configured budget."""
     budget = ws.memory_budget_mb
     runs = scratch / "runs"
-    keys = [f"region={ws.region}", f"out_dir={runs}", "run_name=mem", "network.members=2", "training.max_epochs=2", "distillation.max_epochs=2", "trainer.enable_progress_bar=false"]
+    keys = [f"region={ws.region}", f"out_dir={runs}", "run_name=mem", *MEMORY_RUN, f"memory_budget_mb={budget}"]
     m = run_measured(ws, "train", *keys, log=scratch / "train.log")
     if m.ran.returncode:
         return Outcome(False, f"training failed: {m.ran.last_line}", traceback=m.ran.traceback, detail={"peak_rss_mb": m.peak_rss_mb})
+    plan = _budget_record(runs / "mem")
     return Outcome(
-        held=m.peak_rss_mb <= budget,
-        message=f"peak {m.peak_rss_mb} MB (budget {budget} MB) in {m.ran.seconds:.0f} s",
-        detail={"peak_rss_mb": m.peak_rss_mb, "memory_budget_mb": budget, "seconds": round(m.ran.seconds, 1)},
+        held=m.peak_rss_mb <= budget and bool(plan),
+        message=f"peak {m.peak_rss_mb} MB (budget {budget} MB, estimated {plan.get('need_mb')} MB) in {m.ran.seconds:.0f} s; inference batch {plan.get('inference_batch')}",
+        detail={"peak_rss_mb": m.peak_rss_mb, "memory_budget_mb": budget, "seconds": round(m.ran.seconds, 1), "plan": plan},
+    )
+
+
+def large_inference_batch(ws: Workspace, scratch: Path) -> Outcome:
+    """Training asked for a large inference batch: without a budget its peak exceeds the configured budget; with it, the batch is lowered and the peak stays within."""
+    budget = ws.memory_budget_mb
+    runs = scratch / "runs"
+    keys = [f"region={ws.region}", f"out_dir={runs}", *MEMORY_RUN, f"training.inference_batch={LARGE_INFERENCE_BATCH}"]
+    free = run_measured(ws, "train", *keys, "run_name=unbounded", log=scratch / "unbounded.log")
+    if free.ran.returncode:
+        return Outcome(False, f"the training without a budget failed: {free.ran.last_line}", traceback=free.ran.traceback)
+    bound = run_measured(ws, "train", *keys, "run_name=bounded", f"memory_budget_mb={budget}", log=scratch / "bounded.log")
+    if bound.ran.returncode:
+        return Outcome(False, f"the training with a budget failed: {bound.ran.last_line}", traceback=bound.ran.traceback, detail={"peak_rss_without_budget_mb": free.peak_rss_mb})
+    plan = _budget_record(runs / "bounded")
+    lowered = plan.get("inference_batch", LARGE_INFERENCE_BATCH) < LARGE_INFERENCE_BATCH
+    return Outcome(
+        held=bound.peak_rss_mb <= budget and lowered,
+        message=(
+            f"inference batch {LARGE_INFERENCE_BATCH} lowered to {plan.get('inference_batch')}: peak {bound.peak_rss_mb:,.0f} MB, budget {budget} MB "
+            f"(estimated {plan.get('need_mb')} MB; without the budget: {free.peak_rss_mb:,.0f} MB)"
+        ),
+        detail={
+            "peak_rss_mb": bound.peak_rss_mb,
+            "budget_mb": budget,
+            "peak_rss_without_budget_mb": free.peak_rss_mb,
+            "asked_inference_batch": LARGE_INFERENCE_BATCH,
+            "plan": plan,
+            "seconds": {"unbounded": round(free.ran.seconds, 1), "bounded": round(bound.ran.seconds, 1)},
+        },
     )
 
 
@@ -247,5 +289,11 @@ CASES: list[Case] = [
     Case("train_checkpoint_pickle", "model_file", "a pickle planted as the last checkpoint a killed training resumes from: the rerun refuses it in one line, the pickle never runs", checkpoint_pickle),
     Case("train_resume_record_damaged", "bad_input", "binary bytes in a killed training's resume record: the rerun refuses it in one line naming the file", resume_record_damaged),
     Case("train_ddp_threads", "resource", "DDP training, two processes on one machine: threads x processes within the cores, each process's peak memory within budget", ddp_threads_and_memory),
-    Case("train_peak_rss", "resource", "a quick training with distillation and the bbse prior: peak resident memory of the process tree within the budget", peak_rss),
+    Case("train_peak_rss", "resource", "a quick training with distillation and the bbse prior, given the budget: peak resident memory of the process tree within it", peak_rss),
+    Case(
+        "train_memory_budget",
+        "resource",
+        f"a quick training asking for an inference batch of {LARGE_INFERENCE_BATCH}, run without and with the budget: with it the batch is lowered and the peak stays within",
+        large_inference_batch,
+    ),
 ]
