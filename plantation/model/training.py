@@ -372,7 +372,7 @@ def make_trainer(cfg: TrainerConfig, max_epochs: int, patience: int, folder: Pat
 RESUME = "resume.json"
 RESUME_FORMAT = "plantation-resume/1"
 #: Keys that do not change what a training computes: a rerun that changes only these may resume (other
-#: threads may change the last bits of some float sums, so such a resume is not promised bit-identical).
+#: threads or another inference batch may change the last bits of some float sums, so such a resume is not promised bit-identical).
 NOT_CONTENT: tuple[str, ...] = ("out_dir", "run_name", "resume", "trainer.enable_progress_bar", "trainer.log_every_n_steps", "training.threads", "training.inference_batch", "memory_budget_mb")
 
 
