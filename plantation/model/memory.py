@@ -18,8 +18,11 @@ from plantation.errors import ConfigError
 F32 = 4
 #: What training takes on besides the estimated parts once its samples are cut (Lightning's trainer and logs, the
 #: optimiser's state, memory the allocator keeps after the members' and calibration's passes), MB. Measured on the demo
-#: region (3,000 points, 48 dates, two members, distillation, bbse prior): peaks 340-410 MB above the estimated parts.
+#: region (3,000 points, 48 dates, two members, distillation, bbse prior): peaks 270-340 MB above the estimated parts in five
+#: runs, so 400 leaves a margin.
 TRAIN_OVERHEAD_MB = 400
+#: Samples per batch of the validation passes inside the optimiser's fits (fixed: the validation loss picks the epoch kept).
+VALIDATION_BATCH = 256
 #: Inference batches tried, largest first (pixels through the networks at once outside training steps).
 INFERENCE_BATCHES: tuple[int, ...] = (4096, 2048, 1024, 512, 256, 128, 64)
 
@@ -91,7 +94,8 @@ def fit_training_budget(
     A training step of ``b`` samples holds their inputs and about twice the
     forward pass (activations kept for the backward pass, and their
     gradients); a distillation step of ``distil_batch`` samples (0: no
-    distillation) adds the members' forward pass without gradients. An inference batch of ``B``
+    distillation) adds the members' forward pass without gradients; the
+    fits' validation passes take :data:`VALIDATION_BATCH` samples. An inference batch of ``B``
     holds the pixels as read and as features, and one network's forward
     pass (the members run one after the other). The optimiser's batch size is
     not changed: it changes what is learned.
@@ -104,7 +108,7 @@ def fit_training_budget(
     fwd = series_bytes(pixels=px, dates=dates, channels=channels, years=years, network=network) + recurrent_bytes(pixels=1, years=years, network=network)
     mb = 2.0**20
     held = held_pixels * one / mb
-    step = max(batch_size * (one + 2 * fwd), distil_batch * (one + 3 * fwd)) / mb
+    step = max(batch_size * (one + 2 * fwd), distil_batch * (one + 3 * fwd), VALIDATION_BATCH * (2 * one + fwd)) / mb
     tried = [b for b in INFERENCE_BATCHES if b < inference_batch]
     for b in (inference_batch, *tried):
         plan = TrainingBudget(float(budget_mb), process_mb, held, float(TRAIN_OVERHEAD_MB), step, b, b * (2 * one + fwd) / mb)

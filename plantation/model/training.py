@@ -61,7 +61,7 @@ from plantation.model.card import Calibration, ModelCard, write_validation
 from plantation.model.config import CalibrationConfig, DistillationConfig, NetworkConfig, PatchConfig, SplitConfig, SurrogateConfig, TrainerConfig, TrainingConfig
 from plantation.model.distillation import DistillationTask, agreement
 from plantation.model.losses import per_sample_loss
-from plantation.model.memory import TrainingBudget, fit_training_budget
+from plantation.model.memory import VALIDATION_BATCH, TrainingBudget, fit_training_budget
 from plantation.model.network import ConvRecurrentNet
 from plantation.model.outcomes import MASS_GRID, N_STATIC, Outcomes, group_probabilities, interval_coverage_curve, summarise
 from plantation.model.patches import SPLITS, PatchSet, build_patches, day_of_year_fraction, features, read_patches, windows_touch, year_of
@@ -251,10 +251,10 @@ class SampleDataModule(L.LightningDataModule):
     worker process per loader costs more than it saves for a model this small.
     """
 
-    def __init__(self, train: PatchSet, val: PatchSet, batch_size: int, val_batch: int = 256) -> None:
+    def __init__(self, train: PatchSet, val: PatchSet, batch_size: int) -> None:
         super().__init__()
         self.train, self.val = train, val
-        self.batch_size, self.val_batch = batch_size, val_batch
+        self.batch_size = batch_size
 
     @staticmethod
     def tensors(s: PatchSet) -> TensorDataset:
@@ -264,7 +264,8 @@ class SampleDataModule(L.LightningDataModule):
         return DataLoader(self.tensors(self.train), batch_size=self.batch_size, shuffle=True, drop_last=True)
 
     def val_dataloader(self) -> DataLoader:
-        return DataLoader(self.tensors(self.val), batch_size=self.val_batch)
+        # Fixed, not the inference batch: the validation loss picks the epoch kept, and a batch from measured memory must not change it.
+        return DataLoader(self.tensors(self.val), batch_size=VALIDATION_BATCH)
 
 
 def network_spec(samples: PatchSet, cfg: TrainConfig) -> dict[str, Any]:
@@ -541,6 +542,8 @@ class TrainedModel:
     is_global_zero: bool = True
     #: The network distilled from the members (None: not asked for, a single member, or outside the tolerance).
     distilled: ConvRecurrentNet | None = None
+    #: Samples through the networks at once outside optimiser steps, as the run used it (after a memory budget).
+    inference_batch: int = 512
 
 
 @dataclass
@@ -553,6 +556,10 @@ class Start:
     members: list[dict[str, torch.Tensor]]
     #: State dict of the parent's distilled network (None: the distillation starts from member 0).
     distilled: dict[str, torch.Tensor] | None = None
+
+
+#: Environment variable carrying the first process's budgeted inference batch to the processes DDP starts.
+CHOSEN_INFERENCE_BATCH = "PLANTATION_INFERENCE_BATCH"
 
 
 def training_budget(cfg: TrainConfig, samples: PatchSet) -> TrainingBudget | None:
@@ -655,7 +662,7 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
             warnings.filterwarnings("ignore", message=".*treespec, LeafSpec.*")
             # Members share one checkpoint folder, each with its own file name.
             warnings.filterwarnings("ignore", message=".*exists and is not empty.*")
-            trainer.fit(task, SampleDataModule(train, val, cfg.training.batch_size, min(256, infer)), ckpt_path=last[0] if last else None, weights_only=True)
+            trainer.fit(task, SampleDataModule(train, val, cfg.training.batch_size), ckpt_path=last[0] if last else None, weights_only=True)
         is_zero = trainer.is_global_zero
         best = trainer.checkpoint_callback.best_model_path if trainer.checkpoint_callback else ""
         if best and Path(best).is_file():
@@ -728,7 +735,7 @@ def fit(samples: PatchSet, cfg: TrainConfig, folder: Path, *, stacks: Sequence[T
     if cfg.distillation.enabled and len(nets) > 1:
         # After the calibration: the distilled epistemic term is that of the calibrated members.
         student, metrics["distillation"] = distil(nets, cal, spec, samples, cfg, folder, stacks, start=start.distilled if start is not None else None, resume=doc)
-    return TrainedModel(nets, spec, cal, metrics, is_zero, student)
+    return TrainedModel(nets, spec, cal, metrics, is_zero, student, infer)
 
 
 def interval_curve(probs: np.ndarray, targets: np.ndarray, outcomes: Outcomes) -> tuple[list[float], list[float]]:
@@ -775,7 +782,7 @@ def target_prior(
     raise ConfigError(f"calibration.prior: {source!r} is not one of {list(PRIORS)}")
 
 
-def unlabelled_patches(stacks: Sequence[TileStack], cfg: TrainConfig, *, n: int, seed: int, chunk: int = 1000) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+def unlabelled_patches(stacks: Sequence[TileStack], cfg: TrainConfig, *, n: int, seed: int, chunk: int = 512) -> Iterator[tuple[np.ndarray, np.ndarray]]:
     """Features (m, time, channel, k, k) and validity of up to ``n`` pixels drawn at random (seeded, with replacement) across the tiles, in proportion to their areas.
 
     Yielded in chunks of at most ``chunk`` pixels, read like training
@@ -795,7 +802,7 @@ def unlabelled_patches(stacks: Sequence[TileStack], cfg: TrainConfig, *, n: int,
                 yield np.ascontiguousarray(features(refl[seen], cfg.region.bands, cfg.patches.indices)), np.ascontiguousarray(valid[seen])
 
 
-def unlabelled_probs(nets: list[ConvRecurrentNet], cal: Calibration, stacks: Sequence[TileStack], cfg: TrainConfig, *, n: int, seed: int, chunk: int = 1000) -> np.ndarray:
+def unlabelled_probs(nets: list[ConvRecurrentNet], cal: Calibration, stacks: Sequence[TileStack], cfg: TrainConfig, *, n: int, seed: int, chunk: int = 512) -> np.ndarray:
     """Sample-mix probabilities (m, k) of the pixels of :func:`unlabelled_patches` (memory: one chunk's neighbourhoods)."""
     out = []
     for x, v in unlabelled_patches(stacks, cfg, n=n, seed=seed, chunk=chunk):
@@ -850,7 +857,7 @@ def distil(
             warnings.filterwarnings("ignore", message=".*treespec, LeafSpec.*")
             warnings.filterwarnings("ignore", message=".*exists and is not empty.*")
             data_loader = DataLoader(data, batch_size=max(cfg.training.batch_size, 128), shuffle=True, drop_last=True)
-            trainer.fit(task, data_loader, DataLoader(held, batch_size=min(256, cfg.training.inference_batch)), ckpt_path=last_path, weights_only=True)
+            trainer.fit(task, data_loader, DataLoader(held, batch_size=VALIDATION_BATCH), ckpt_path=last_path, weights_only=True)
         best = trainer.checkpoint_callback.best_model_path if trainer.checkpoint_callback else ""
         if best and Path(best).is_file():
             task.load_state_dict(torch.load(best, map_location="cpu", weights_only=True)["state_dict"])
@@ -1078,10 +1085,14 @@ def run(
     check_config(cfg)
     threads = set_threads(cfg)
     stacks, labels, samples = loaded if loaded is not None else load_region_samples(cfg, inherit=inherit)
-    # Before the run folder: a budget too small is refused with nothing written.
-    budget = training_budget(cfg, samples)
+    # Before the run folder: a budget too small is refused with nothing written. Decided by the first process only:
+    # the processes DDP starts later re-run this job and take its choice from the environment they inherit.
+    budget = training_budget(cfg, samples) if rank() == 0 else None
     if budget is not None:
         cfg = replace(cfg, training=replace(cfg.training, inference_batch=budget.inference_batch))
+        os.environ[CHOSEN_INFERENCE_BATCH] = str(budget.inference_batch)
+    elif rank() > 0 and os.environ.get(CHOSEN_INFERENCE_BATCH):
+        cfg = replace(cfg, training=replace(cfg.training, inference_batch=int(os.environ[CHOSEN_INFERENCE_BATCH])))
     final = Path(cfg.out_dir) / cfg.run_name
     work = final.with_name(final.name + ".partial")
     # Processes started by DDP re-run this script (LOCAL_RANK / NODE_RANK > 0):

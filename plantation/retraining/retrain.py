@@ -94,12 +94,12 @@ def check_retrain(cfg: RetrainConfig) -> None:
         raise ConfigError(f"retrain: lr ({r.lr}) and noise_sds ({r.noise_sds}) must be above 0, move_px ({r.move_px}) at least 0")
 
 
-def _scores(nets: list[ConvRecurrentNet], cal: Any, s: PatchSet, cc: CalibrationConfig) -> dict[str, float]:
-    got = score_samples(nets, cal, s, cc)
+def _scores(nets: list[ConvRecurrentNet], cal: Any, s: PatchSet, cc: CalibrationConfig, batch: int) -> dict[str, float]:
+    got = score_samples(nets, cal, s, cc, batch=batch)
     return {k: float(got[k]) for k in COMPARED}
 
 
-def compare_models(old: art_io.Artefact, new_members: list[ConvRecurrentNet], new_cal: Any, points: PatchSet, cc: CalibrationConfig, *, noise_sds: float = 2.0) -> dict[str, Any]:
+def compare_models(old: art_io.Artefact, new_members: list[ConvRecurrentNet], new_cal: Any, points: PatchSet, cc: CalibrationConfig, *, noise_sds: float = 2.0, batch: int = 512) -> dict[str, Any]:
     """The parent's and the new model's test scores on the same points, and whether each difference exceeds seed-to-seed noise.
 
     Both are scored with the probabilities of the label sample's mix (the
@@ -111,6 +111,7 @@ def compare_models(old: art_io.Artefact, new_members: list[ConvRecurrentNet], ne
 
     Args:
         points: the fixed test points with the grown file's labels, on the new series.
+        batch: points through the networks at once (the run's inference batch, within its memory budget).
     """
     card = old.card
     old_dates = np.asarray(card.dates, dtype="datetime64[D]")
@@ -128,10 +129,10 @@ def compare_models(old: art_io.Artefact, new_members: list[ConvRecurrentNet], ne
     if not known.any():
         out["note"] = "no fixed test point to compare on"
         return out
-    old_all = _scores(old.members, old_cal, theirs, cc)
-    new_all = _scores(new_members, new_cal, mine, cc)
-    old_each = [_scores([m], old_cal, theirs, cc) for m in old.members]
-    new_each = [_scores([m], new_cal, mine, cc) for m in new_members]
+    old_all = _scores(old.members, old_cal, theirs, cc, batch)
+    new_all = _scores(new_members, new_cal, mine, cc, batch)
+    old_each = [_scores([m], old_cal, theirs, cc, batch) for m in old.members]
+    new_each = [_scores([m], new_cal, mine, cc, batch) for m in new_members]
     for k in COMPARED:
         diff = new_all[k] - old_all[k]
         rec: dict[str, Any] = {"parent": round(old_all[k], 4), "new": round(new_all[k], 4), "difference": round(diff, 4)}
@@ -242,7 +243,7 @@ def run(cfg: RetrainConfig, resolved_config: str | None = None, echo: Callable[[
     def after_fit(s: PatchSet, trained: TrainedModel) -> dict[str, Any]:
         keys = list(zip(s.tile, s.row.tolist(), s.col.tolist(), strict=True))
         fixed = np.array([(str(t), r, c) in parent_test for t, r, c in keys]) if parent_test else s.split == 2
-        comparison.update(compare_models(old, trained.members, trained.calibration, s.subset(fixed), tc.calibration, noise_sds=cfg.retrain.noise_sds))
+        comparison.update(compare_models(old, trained.members, trained.calibration, s.subset(fixed), tc.calibration, noise_sds=cfg.retrain.noise_sds, batch=trained.inference_batch))
         comparison["test_points"] = "the parent's test split" if parent_test else "this run's test split (the parent predates points.csv)"
         return {"comparison": comparison}
 

@@ -263,7 +263,8 @@ def large_inference_batch(ws: Workspace, scratch: Path) -> Outcome:
     plan = _budget_record(runs / "bounded")
     lowered = plan.get("inference_batch", LARGE_INFERENCE_BATCH) < LARGE_INFERENCE_BATCH
     return Outcome(
-        held=bound.peak_rss_mb <= budget and lowered,
+        # The budget must have bound: without it the same run outgrows it.
+        held=bound.peak_rss_mb <= budget and lowered and free.peak_rss_mb > budget,
         message=(
             f"inference batch {LARGE_INFERENCE_BATCH} lowered to {plan.get('inference_batch')}: peak {bound.peak_rss_mb:,.0f} MB, budget {budget} MB "
             f"(estimated {plan.get('need_mb')} MB; without the budget: {free.peak_rss_mb:,.0f} MB)"
