@@ -65,7 +65,7 @@ class TrainingBudget:
     overhead_mb: float
     #: The larger of a member's and the distillation's optimiser step.
     step_mb: float
-    #: Pixels through the networks at once outside training steps (validation, scores, the prior, reading unlabelled pixels).
+    #: Pixels through the networks at once outside the fits (calibration, test scores, the prior, reading unlabelled pixels).
     inference_batch: int
     inference_mb: float
 
