@@ -777,21 +777,21 @@ def target_prior(
     if source == "bbse":
         if not stacks:
             raise ConfigError("calibration.prior: 'bbse' needs the region's tiles to draw unlabelled pixels from")
-        pixels = unlabelled_probs(nets, cal, stacks, cfg, n=cfg.calibration.bbse_pixels, seed=cfg.training.seed, chunk=cfg.training.inference_batch)
+        pixels = unlabelled_probs(nets, cal, stacks, cfg, n=cfg.calibration.bbse_pixels, seed=cfg.training.seed)
         return calibration.bbse_prior(val_probs, samples.part("val").target, pixels, train_prior, groups=calibration.outcome_groups(k))
     raise ConfigError(f"calibration.prior: {source!r} is not one of {list(PRIORS)}")
 
 
-def unlabelled_patches(stacks: Sequence[TileStack], cfg: TrainConfig, *, n: int, seed: int, chunk: int = 512) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+def unlabelled_patches(stacks: Sequence[TileStack], cfg: TrainConfig, *, n: int, seed: int) -> Iterator[tuple[np.ndarray, np.ndarray]]:
     """Features (m, time, channel, k, k) and validity of up to ``n`` pixels drawn at random (seeded, with replacement) across the tiles, in proportion to their areas.
 
-    Yielded in chunks of at most ``chunk`` pixels, read like training
+    Yielded in chunks of at most ``cfg.training.inference_batch`` pixels, read like training
     patches; pixels with no clear date are left out.
     """
     rng = np.random.default_rng(seed)
     sizes = np.array([s.grid.height * s.grid.width for s in stacks], dtype=np.float64)
     counts = rng.multinomial(n, sizes / sizes.sum())
-    k = cfg.patches.neighbourhood
+    k, chunk = cfg.patches.neighbourhood, cfg.training.inference_batch
     for stack, m in zip(stacks, counts, strict=True):
         flat = np.sort(rng.integers(0, stack.grid.height * stack.grid.width, int(m)))
         rows, cols = flat // stack.grid.width, flat % stack.grid.width
@@ -802,10 +802,10 @@ def unlabelled_patches(stacks: Sequence[TileStack], cfg: TrainConfig, *, n: int,
                 yield np.ascontiguousarray(features(refl[seen], cfg.region.bands, cfg.patches.indices)), np.ascontiguousarray(valid[seen])
 
 
-def unlabelled_probs(nets: list[ConvRecurrentNet], cal: Calibration, stacks: Sequence[TileStack], cfg: TrainConfig, *, n: int, seed: int, chunk: int = 512) -> np.ndarray:
+def unlabelled_probs(nets: list[ConvRecurrentNet], cal: Calibration, stacks: Sequence[TileStack], cfg: TrainConfig, *, n: int, seed: int) -> np.ndarray:
     """Sample-mix probabilities (m, k) of the pixels of :func:`unlabelled_patches` (memory: one chunk's neighbourhoods)."""
     out = []
-    for x, v in unlabelled_patches(stacks, cfg, n=n, seed=seed, chunk=chunk):
+    for x, v in unlabelled_patches(stacks, cfg, n=n, seed=seed):
         with torch.inference_mode():
             z = torch.stack([net.eval()(torch.from_numpy(x), torch.from_numpy(v)) for net in nets])
         out.append(np.exp(calibrated_log_probs(z, cal).numpy()))
@@ -837,7 +837,7 @@ def distil(
     # The parts side by side rather than concatenated: the same items in the same order, without a copy of them all.
     parts = [TensorDataset(torch.from_numpy(train.x), torch.from_numpy(train.valid))]
     if stacks and dc.pixels > 0:
-        for x, v in unlabelled_patches(stacks, cfg, n=dc.pixels, seed=cfg.training.seed + 7919, chunk=cfg.training.inference_batch):
+        for x, v in unlabelled_patches(stacks, cfg, n=dc.pixels, seed=cfg.training.seed + 7919):
             parts.append(TensorDataset(torch.from_numpy(x), torch.from_numpy(v)))
     data = ConcatDataset(parts)
     held = TensorDataset(torch.from_numpy(val.x), torch.from_numpy(val.valid))
@@ -876,7 +876,7 @@ def distil(
     return (net if record["within_tolerance"] else None), record
 
 
-def score_samples(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchSet, cc: CalibrationConfig, *, batch: int = 512) -> dict[str, Any]:
+def score_samples(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchSet, cc: CalibrationConfig, *, batch: int) -> dict[str, Any]:
     """Label-sample metrics (the sample is stratified, so these are not map accuracies); ``batch``: samples through the networks at once."""
     probs = np.exp(calibrated_log_probs(member_logits(nets, s, batch), cal).numpy())
     years = s.outcomes.years
@@ -905,7 +905,7 @@ def score_samples(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchSet, c
 COVERAGE_LEVELS = (0.5, 0.8, 0.9, 0.95)
 
 
-def reliability_record(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchSet, split: str, cc: CalibrationConfig, n_bins: int = 10, *, batch: int = 512) -> dict[str, Any]:
+def reliability_record(nets: list[ConvRecurrentNet], cal: Calibration, s: PatchSet, split: str, cc: CalibrationConfig, n_bins: int = 10, *, batch: int) -> dict[str, Any]:
     """How well the calibrated probabilities and intervals hold on held-out points (for the report).
 
     ``reliability``: per equal-width bin of p_conversion, the mean predicted

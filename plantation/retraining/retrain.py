@@ -99,7 +99,7 @@ def _scores(nets: list[ConvRecurrentNet], cal: Any, s: PatchSet, cc: Calibration
     return {k: float(got[k]) for k in COMPARED}
 
 
-def compare_models(old: art_io.Artefact, new_members: list[ConvRecurrentNet], new_cal: Any, points: PatchSet, cc: CalibrationConfig, *, noise_sds: float = 2.0, batch: int = 512) -> dict[str, Any]:
+def compare_models(old: art_io.Artefact, new_members: list[ConvRecurrentNet], new_cal: Any, points: PatchSet, cc: CalibrationConfig, *, noise_sds: float = 2.0, batch: int) -> dict[str, Any]:
     """The parent's and the new model's test scores on the same points, and whether each difference exceeds seed-to-seed noise.
 
     Both are scored with the probabilities of the label sample's mix (the
