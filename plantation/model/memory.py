@@ -18,7 +18,7 @@ from plantation.errors import ConfigError
 F32 = 4
 #: What training takes on besides the estimated parts once its samples are cut (Lightning's trainer and logs, the
 #: optimiser's state, memory the allocator keeps after the members' and calibration's passes), MB. Measured on the demo
-#: region (3,000 points, 48 dates, two members, distillation, bbse prior): peaks 270-355 MB above the estimated parts in seven
+#: region (3,000 points, 48 dates, two members, distillation, bbse prior): peaks 270-355 MB above the estimated parts in eight
 #: runs, so 400 leaves a margin.
 TRAIN_OVERHEAD_MB = 400
 #: Samples per batch of the validation passes inside the optimiser's fits (fixed: the validation loss picks the epoch kept).
